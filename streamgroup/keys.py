@@ -1,0 +1,113 @@
+"""Every key, stream, group and limit of the wire contract, in one place.
+
+All keys of one deployment share the namespace written as a Redis hash tag,
+``{NS}:...``, so a single MULTI/EXEC may touch all of them, also on Redis Cluster.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+
+DEFAULT_NS = "sg"
+
+# Limits of the contract.
+MAX_KEY_BYTES = 256  # item keys: 1..256 bytes of UTF-8, no control characters
+MAX_SOURCE_BYTES = 128  # source ids: 1..128 bytes
+MAX_LABEL_BYTES = 64  # side labels
+MAX_ID_BYTES = 128  # qid and aid
+MAX_PACK_BYTES = 1 << 20  # a packed entry's msgpack payload: at most 1 MiB
+MAX_PACK_ANSWERS = 10_000  # a packed entry holds at most this many answers
+
+GROUP = "streamgroup"  # the worker's consumer group on the input streams
+
+STATUS_WAITING = "waiting"
+STATUS_ASKING = "asking"
+STATUS_PLACED = "placed"
+STATUS_UNRESOLVED = "unresolved"
+STATUSES = (STATUS_WAITING, STATUS_ASKING, STATUS_PLACED, STATUS_UNRESOLVED)
+
+WHY_SEED = "seed"
+WHY_PLACE = "place"
+WHY_CHECK = "check"
+WHYS = (WHY_SEED, WHY_PLACE, WHY_CHECK)
+
+_NS_RE = re.compile(r"^[A-Za-z0-9_.\-]{1,64}$")
+
+
+def valid_namespace(ns: str) -> bool:
+    """True when ``ns`` can be used as a namespace (letters, digits, ``_.-``)."""
+    return bool(_NS_RE.match(ns))
+
+
+@dataclass(frozen=True)
+class Keys:
+    """The Redis keys of one namespace."""
+
+    ns: str = DEFAULT_NS
+
+    def _k(self, name: str) -> str:
+        return "{" + self.ns + "}:" + name
+
+    # streams and hashes of the public contract
+    @property
+    def items(self) -> str:
+        return self._k("items")
+
+    @property
+    def answers(self) -> str:
+        return self._k("answers")
+
+    @property
+    def questions(self) -> str:
+        return self._k("questions")
+
+    @property
+    def decisions(self) -> str:
+        return self._k("decisions")
+
+    @property
+    def assign(self) -> str:
+        return self._k("assign")
+
+    @property
+    def dead(self) -> str:
+        return self._k("dead")
+
+    # the worker's private state (readers should not rely on these)
+    @property
+    def epoch(self) -> str:
+        """String: the deployment epoch, written once when the state is created."""
+        return self._k("epoch")
+
+    @property
+    def snapshot(self) -> str:
+        """String: the last engine snapshot (msgpack)."""
+        return self._k("snapshot")
+
+    @property
+    def journal(self) -> str:
+        """Stream: the batches applied since the last snapshot, for replay."""
+        return self._k("journal")
+
+    @property
+    def meta(self) -> str:
+        """Hash: counters and summaries for ``status`` and metrics."""
+        return self._k("meta")
+
+    @property
+    def noise(self) -> str:
+        """Hash: learned reliability per source (msgpack values)."""
+        return self._k("noise")
+
+    @property
+    def history(self) -> str:
+        """Stream: periodic progress samples used by the report."""
+        return self._k("history")
+
+    def all(self) -> list[str]:
+        return [
+            self.items, self.answers, self.questions, self.decisions, self.assign,
+            self.dead, self.epoch, self.snapshot, self.journal, self.meta, self.noise,
+            self.history,
+        ]

@@ -1,0 +1,1 @@
+"""Serving: metrics and health endpoints."""
