@@ -124,3 +124,48 @@ def test_bad_arguments_are_refused() -> None:
         baseline.ab_success_probability(10, 10, 0.5)
     with pytest.raises(ValueError):
         baseline.mixed_limit([0.0, 0.0], 1e-3)
+
+
+# -- the benchmark harness (scripts/bench_spend.py) -----------------------------------
+
+
+def _bench():
+    import importlib.util
+    from pathlib import Path
+
+    path = Path(__file__).resolve().parent.parent / "scripts" / "bench_spend.py"
+    spec = importlib.util.spec_from_file_location("bench_spend", path)
+    assert spec is not None and spec.loader is not None
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod
+
+
+def test_clopper_pearson_matches_its_closed_forms() -> None:
+    """0 errors in n: upper bound 1 - (0.025)^(1/n); n of n: lower bound 0.025^(1/n)."""
+    cp = _bench().clopper_pearson
+    lo, hi = cp(0, 1000)
+    assert lo == 0.0
+    assert hi == pytest.approx(1 - 0.025 ** (1 / 1000), rel=1e-9)
+    lo, hi = cp(50, 50)
+    assert lo == pytest.approx(0.025 ** (1 / 50), rel=1e-9)
+    assert hi == 1.0
+    lo, hi = cp(10, 10_000)
+    assert lo < 1e-3 < hi
+
+
+def test_bench_fixed_votes_agree_with_the_runtime_tail() -> None:
+    """The benchmark's scipy m and the scipy-free m of the runtime module agree."""
+    bench = _bench()
+    for alpha, delta in [(1e-3, 0.6), (1e-3, 0.3), (1e-3, 0.38), (1e-4, 0.2)]:
+        assert bench.fixed_votes_scipy(alpha, delta) == baseline.fixed_votes(alpha, delta)
+
+
+def test_errors_are_counted_up_to_relabelling() -> None:
+    """Engine labels map to the truth by the better bijection; unplaced items are no errors."""
+    count = _bench().count_errors
+    truth = np.array([0, 0, 1, 1, 1])
+    assert count(["1", "1", "0", "0", "0"], truth) == (0, 5)
+    assert count(["1", "0", "0", "0", None], truth) == (1, 4)
+    assert count(["north", "north", "south", None, "north"], truth) == (1, 4)
+    assert count([None] * 5, truth) == (0, 0)
