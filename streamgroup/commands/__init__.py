@@ -1,0 +1,100 @@
+"""Shared pieces of the subcommands: setting flags, the user-error type, the client factory.
+
+Each subcommand lives in its own module with ``NAME``, ``HELP``, ``register(parser)`` and
+``run(args) -> int``; :mod:`streamgroup.cli` lists the modules in one table.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+from collections.abc import Iterable, Mapping
+from dataclasses import fields
+
+from ..errors import StreamgroupError
+from ..settings import ENV_PREFIX, Settings, load_settings
+
+
+class UserError(StreamgroupError):
+    """A mistake of the person at the keyboard: printed as one line, exit code 2."""
+
+
+# What every setting means; also the source of the README's configuration table (a test
+# checks that every Settings field is described here and in the README).
+SETTING_HELP: dict[str, str] = {
+    "redis": "Redis URL (redis://, rediss:// for TLS, unix://); a password in it is never logged",
+    "ns": "namespace: every key is {NS}:name",
+    "alpha": "per-item error target of the sequential test, in (0, 0.5)",
+    "inflight": "W: questions in flight per item (capped by the fewest answers that could "
+                "still end its test)",
+    "max_outstanding": "cap on questions in flight across all items",
+    "budget": "total questions the worker may issue; 0 = unlimited",
+    "item_ceiling": "answers counted for one item before it is marked unresolved",
+    "question_timeout": "seconds before an unanswered question is asked again",
+    "check_rate": "fraction of questions spent re-checking confident items, in [0, 0.5]",
+    "seed": "seed of the planner's random choices (runs are reproducible for a seed)",
+    "batch": "entries read per XREADGROUP and committed per MULTI/EXEC",
+    "block_ms": "milliseconds one XREADGROUP waits for new entries",
+    "consumer": "consumer name in the group (default: hostname-pid); keep it stable "
+                "across restarts so the worker rereads its own pending entries",
+    "claim_idle": "seconds before entries pending at another (dead) consumer are claimed",
+    "pack_questions": "write questions as packed entries (field pack) for fast adapters",
+    "snapshot_every": "seconds between engine snapshots in Redis",
+    "metrics_addr": "HOST:PORT of /metrics, /healthz and /readyz; empty disables it",
+    "log_level": "debug, info, warning or error",
+    "log_format": "json, console, or auto (console on a terminal)",
+    "grace": "seconds allowed to commit the batch in hand after SIGTERM",
+}
+
+CONNECTION_SETTINGS = ("redis", "ns")
+
+
+def flag_name(field: str) -> str:
+    return "--" + field.replace("_", "-")
+
+
+def env_name(field: str) -> str:
+    return ENV_PREFIX + field.upper()
+
+
+def add_setting_flags(parser: argparse.ArgumentParser, names: Iterable[str]) -> None:
+    """Add one flag per setting; defaults stay None so env and file can fill the gap."""
+    defaults = {f.name: f.default for f in fields(Settings)}
+    group = parser.add_argument_group(
+        "settings", f"flags win over {ENV_PREFIX}* environment variables, which win over "
+        "the --config file, which wins over the defaults")
+    for name in names:
+        default = defaults[name]
+        text = f"{SETTING_HELP[name]} [env {env_name(name)}; default {default!r}]"
+        if isinstance(default, bool):
+            group.add_argument(flag_name(name), dest=name, default=None,
+                               action=argparse.BooleanOptionalAction, help=text)
+        else:
+            group.add_argument(flag_name(name), dest=name, default=None, metavar=name.upper(),
+                               help=text.replace("%", "%%"))
+    if "config" not in {a.dest for a in parser._actions}:
+        group.add_argument("--config", default=None, metavar="FILE",
+                           help=f"TOML file of settings (a [streamgroup] table or top-level "
+                                f"keys) [env {ENV_PREFIX}CONFIG]")
+
+
+def settings_from_args(args: argparse.Namespace, names: Iterable[str],
+                       env: Mapping[str, str] | None = None,
+                       **overrides: object) -> Settings:
+    """Flags, then environment, then --config file, then defaults (raises ConfigError)."""
+    flags = {n: getattr(args, n, None) for n in names}
+    flags.update({k: v for k, v in overrides.items() if v is not None})
+    return load_settings(flags, os.environ if env is None else env,
+                         getattr(args, "config", None))
+
+
+def make_client(settings: Settings):  # noqa: ANN201 - avoid importing redis for --help
+    """A :class:`~streamgroup.client.Client` for the configured deployment."""
+    from ..client import Client
+
+    return Client(settings.redis, settings.ns)
+
+
+def example(text: str) -> str:
+    """An epilog with a usage example (kept verbatim by RawDescriptionHelpFormatter)."""
+    return "example:\n" + "\n".join("  " + line for line in text.strip().splitlines())

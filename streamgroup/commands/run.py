@@ -1,0 +1,63 @@
+"""``streamgroup run``: the long-lived worker.
+
+Signals: the first SIGTERM or SIGINT asks the worker to stop (it commits the batch in hand
+within the grace period and exits 0); a second one exits at once. A hard exit is safe by
+design: whatever was not committed is still pending in its stream and is applied once by
+the next run.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import signal
+import sys
+from collections.abc import Callable
+from dataclasses import fields
+from types import FrameType
+
+from ..settings import Settings
+from . import add_setting_flags, example, make_client, settings_from_args
+
+NAME = "run"
+HELP = "run the worker: read items and answers, ask questions, commit decisions"
+ALL_SETTINGS = tuple(f.name for f in fields(Settings))
+
+
+def register(p: argparse.ArgumentParser) -> None:
+    p.epilog = example("""
+streamgroup run --redis redis://127.0.0.1:6379/0 --ns sg --alpha 0.001
+STREAMGROUP_REDIS=rediss://:secret@redis.internal:6380/0 streamgroup run --config sg.toml""")
+    add_setting_flags(p, ALL_SETTINGS)
+
+
+def install_signal_handlers(stop: Callable[[], None]) -> None:
+    """First signal: ``stop()``; second: leave now (the handler only sets state)."""
+    seen = {"n": 0}
+
+    def handler(signum: int, _frame: FrameType | None) -> None:
+        seen["n"] += 1
+        if seen["n"] == 1:
+            stop()
+        else:
+            os.write(2, f"streamgroup run: second {signal.Signals(signum).name}, "
+                        "exiting now\n".encode())
+            os._exit(128 + signum)
+
+    signal.signal(signal.SIGTERM, handler)
+    signal.signal(signal.SIGINT, handler)
+
+
+def run(args: argparse.Namespace) -> int:
+    settings = settings_from_args(args, ALL_SETTINGS)
+    from ..logs import configure_logging
+    from ..stream.worker import Worker
+
+    # Fail fast, as one line, on a wrong URL or a Redis that is not there; once running,
+    # the worker rides out lost connections with backoff instead.
+    with make_client(settings) as client:
+        client.redis.ping()
+    configure_logging(settings.log_level, settings.log_format, sys.stderr)
+    worker = Worker(settings)
+    install_signal_handlers(worker.request_stop)
+    return int(worker.run())
