@@ -29,12 +29,12 @@ streamgroup demo --items 3000 --alpha 0.0001 --seed 7 --report demo-report""")
 
 
 def run(args: argparse.Namespace) -> int:
-    from ..demo import DemoOptions, run_demo
-
     if not 10 <= args.items <= 1_000_000:
         raise UserError(f"--items must be between 10 and 1000000 (got {args.items})")
     if not 0 < args.alpha < 0.5:
         raise UserError(f"--alpha must be in (0, 0.5) (got {args.alpha})")
+    from ..demo import DemoOptions, run_demo
+
     opts = DemoOptions(items=args.items, alpha=args.alpha, seed=args.seed, report=args.report,
                        redis_url=args.redis, embedded=args.embedded, quiet=args.quiet)
     summary = run_demo(opts)

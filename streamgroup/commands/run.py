@@ -50,13 +50,13 @@ def install_signal_handlers(stop: Callable[[], None]) -> None:
 
 def run(args: argparse.Namespace) -> int:
     settings = settings_from_args(args, ALL_SETTINGS)
-    from ..logs import configure_logging
-    from ..stream.worker import Worker
-
     # Fail fast, as one line, on a wrong URL or a Redis that is not there; once running,
     # the worker rides out lost connections with backoff instead.
     with make_client(settings) as client:
         client.redis.ping()
+    from ..logs import configure_logging
+    from ..stream.worker import Worker
+
     configure_logging(settings.log_level, settings.log_format, sys.stderr)
     worker = Worker(settings)
     install_signal_handlers(worker.request_stop)
