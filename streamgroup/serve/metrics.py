@@ -39,6 +39,8 @@ class WorkerMetrics:
         self.items = Gauge(p + "items", "Items by status.", ["status"], registry=r)
         self.spend = Gauge(p + "spend_answers", "Answers counted so far (the spend).",
                            registry=r)
+        self.budget = Gauge(p + "budget_answers", "Configured spend budget in answers "
+                            "(0 = unlimited); set once at start-up.", registry=r)
         self.revisions = Counter(p + "revisions", "Commits overturned by later answers.",
                                  registry=r)
         self.decision_seconds = Histogram(
