@@ -26,6 +26,7 @@ from .keys import (
     MAX_PACK_ANSWERS,
     MAX_PACK_BYTES,
     MAX_SOURCE_BYTES,
+    STATUSES,
     Keys,
     valid_namespace,
 )
@@ -278,6 +279,11 @@ class Client:
     def count_assignments(self) -> int:
         return int(self.redis.hlen(self.keys.assign))
 
+    def status(self) -> dict[str, Any]:
+        """A read-only summary: items by status, spend, outstanding questions, dead letters,
+        stream lengths with consumer-group lag and pending, and the learned noise."""
+        return read_status(self)
+
     # -- crowd adapters --------------------------------------------------------------------
     def ensure_group(self, group: str, start: str = "0") -> None:
         """Create the adapter's consumer group on ``{NS}:questions`` if it is missing.
@@ -335,3 +341,64 @@ class Client:
                 self.ack_questions(group, [entry_id])
             if first and len(batch) < count:
                 first = False
+
+
+def _number(v: Any) -> Any:
+    s = _text(v)
+    for conv in (int, float):
+        try:
+            return conv(s)
+        except (TypeError, ValueError):
+            pass
+    return s
+
+
+def _groups(r: redis.Redis, stream: str) -> list[dict[str, Any]]:
+    """XINFO GROUPS of one stream (empty when the stream does not exist yet)."""
+    try:
+        info = r.xinfo_groups(stream)
+    except redis.ResponseError:
+        return []
+    out = []
+    for g in info:
+        g = {_text(k): _text(v) for k, v in g.items()}
+        out.append({"group": g.get("name"), "consumers": g.get("consumers"),
+                    "pending": g.get("pending"), "lag": g.get("lag"),
+                    "last_delivered": g.get("last-delivered-id")})
+    return out
+
+
+def read_status(client: Client) -> dict[str, Any]:
+    """What :meth:`Client.status` returns; every read, no write."""
+    r, k = client.redis, client.keys
+    meta = {_text(a): _number(b) for a, b in r.hgetall(k.meta).items()}
+    items = {s: meta.get(f"items_{s}") for s in STATUSES}
+    if all(v is None for v in items.values()):
+        # No summary from a worker yet: count the records themselves.
+        counts = dict.fromkeys(STATUSES, 0)
+        for rec in client.assignments():
+            counts[rec["status"]] = counts.get(rec["status"], 0) + 1
+        items = counts
+    sources = []
+    for name, raw in r.hgetall(k.noise).items():
+        try:
+            value = msgpack.unpackb(raw, raw=False)
+        except (ValueError, msgpack.UnpackException):
+            continue
+        row = value if isinstance(value, dict) else {"delta": value}
+        sources.append({"source": _text(name), **row})
+    sources.sort(key=lambda s: -(s.get("answers") or 0))
+    streams = {}
+    for name in ("items", "answers", "questions"):
+        key = getattr(k, name)
+        streams[name] = {"length": int(r.xlen(key)), "groups": _groups(r, key)}
+    return {
+        "ns": client.ns,
+        "items": items,
+        "spend": meta.get("spend"),
+        "questions_outstanding": meta.get("outstanding"),
+        "dead_letters": int(r.xlen(k.dead)),
+        "meta": meta,
+        "streams": streams,
+        "sources": sources,
+    }
