@@ -27,7 +27,7 @@ SUBCOMMANDS: tuple[str, ...] = (
     "streamgroup.commands.export",
     "streamgroup.commands.status",
     "streamgroup.commands.demo",
-    # the report command is added here by its own module
+    "streamgroup.report.command",
 )
 
 EXIT_OK, EXIT_BUG, EXIT_USER = 0, 1, 2

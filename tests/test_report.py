@@ -127,3 +127,17 @@ def test_limit_of_a_mixed_crowd_counts_wrong_sources_flipped():
     assert per_item_limit(both) == pytest.approx(one, rel=0.03)
     assert per_item_limit(diluted) == pytest.approx(2 * one, rel=0.05)
     assert per_item_limit(RunData(ns="x", alpha=1e-3)) is None
+
+
+def test_cli_report_writes_the_page_and_fails_in_one_line(redis_url, tmp_path, capsys):
+    """`streamgroup report --out DIR` prints the path; an empty namespace exits 2, one line."""
+    from streamgroup.cli import main
+
+    fill_run(redis_url)
+    out = tmp_path / "r"
+    assert main(["report", "--redis", redis_url, "--ns", NS, "--out", str(out)]) == 0
+    assert capsys.readouterr().out.strip() == str(out / "report.html")
+    assert len(images((out / "report.html").read_text())) == 4
+    assert main(["report", "--redis", redis_url, "--ns", "empty", "--out", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "no run to report on" in err

@@ -10,7 +10,6 @@ report never writes to Redis.
 from __future__ import annotations
 
 from .data import RunData, per_item_limit, read_run
-from .page import add_report_command, build_report, render_html, run_report_command
+from .page import build_report, render_html
 
-__all__ = ["RunData", "add_report_command", "build_report", "per_item_limit", "read_run",
-           "render_html", "run_report_command"]
+__all__ = ["RunData", "build_report", "per_item_limit", "read_run", "render_html"]

@@ -72,12 +72,20 @@ def _scan_hash(client: Any, key: str) -> Iterator[tuple[str, bytes]]:
         yield _s(k), v
 
 
-def read_run(client: Any, ns: str, alpha: float | None = None) -> RunData:
-    """Decode the run's history, assignments and learned noise from Redis (read-only)."""
+def read_run(client: Any, ns: str, alpha: float | None = None,
+             default_alpha: float = 1e-3) -> RunData:
+    """Decode the run's history, assignments and learned noise from Redis (read-only).
+
+    ``alpha`` (for the limit): as given, else the worker's own (``alpha`` in ``{NS}:meta``),
+    else ``default_alpha``.
+    """
     keys = Keys(ns)
     if alpha is None:
         raw = client.hget(keys.meta, "alpha")
-        alpha = float(_s(raw)) if raw else 1e-3
+        try:
+            alpha = float(_s(raw)) if raw else default_alpha
+        except ValueError:
+            alpha = default_alpha
     data = RunData(ns=ns, alpha=alpha, history=_read_history(client, keys.history))
     status: list[str] = []
     answers: list[int] = []

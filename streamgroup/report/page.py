@@ -2,11 +2,9 @@
 
 from __future__ import annotations
 
-import argparse
 import html
 import os
 import time
-from typing import Any
 
 from ..errors import StateError, StreamgroupError
 from ..keys import STATUSES
@@ -63,13 +61,14 @@ def render_html(data: RunData, source: str) -> str:
             f"<table><tr><th>summary</th><th></th></tr>{table}</table>{body}</body></html>")
 
 
-def build_report(url: str, ns: str, out_dir: str, alpha: float | None = None) -> str:
+def build_report(url: str, ns: str, out_dir: str, alpha: float | None = None,
+                 default_alpha: float = 1e-3) -> str:
     """Read the run in ``ns`` from Redis at ``url`` and write ``out_dir/report.html``."""
     import redis
 
     client = redis.Redis.from_url(url, socket_timeout=30, socket_connect_timeout=10)
     try:
-        data = read_run(client, ns, alpha)
+        data = read_run(client, ns, alpha, default_alpha)
     except redis.RedisError as exc:
         raise StreamgroupError(f"cannot read {redact_url(url)}: {exc}") from None
     finally:
@@ -83,23 +82,3 @@ def build_report(url: str, ns: str, out_dir: str, alpha: float | None = None) ->
         fh.write(render_html(data, redact_url(url)))
     os.replace(tmp, path)  # a reader never sees half a page
     return path
-
-
-def add_report_command(subparsers: Any) -> argparse.ArgumentParser:
-    """Register ``report --out DIR``; the handler is set as ``func(args, settings) -> int``."""
-    p = subparsers.add_parser(
-        "report", help="write a self-contained HTML report of a run",
-        description="Write DIR/report.html: plots of progress, spend against the per-item "
-                    "limit, answers per item and learned source reliability, read from Redis.",
-        epilog="example: streamgroup report --redis redis://127.0.0.1:6379/0 --ns sg "
-               "--out ./report",
-        formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("--out", required=True, metavar="DIR", help="directory for report.html")
-    p.set_defaults(func=run_report_command)
-    return p
-
-
-def run_report_command(args: argparse.Namespace, settings: Any) -> int:
-    path = build_report(settings.redis, settings.ns, args.out, alpha=None)
-    print(path)
-    return 0
