@@ -18,3 +18,774 @@ API (stable; the stream layer, the demo and the benchmarks code against it):
 - ``snapshot() -> bytes`` and ``Engine.restore(data) -> Engine``: a restored engine behaves
   exactly like the original (same future questions, qids and decisions).
 """
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Sequence
+from typing import Any
+
+import msgpack
+import numpy as np
+
+from ..errors import EngineInputError
+from ..keys import (
+    STATUS_ASKING,
+    STATUS_PLACED,
+    STATUS_UNRESOLVED,
+    STATUS_WAITING,
+    WHY_CHECK,
+    WHY_PLACE,
+    WHY_SEED,
+)
+from . import bootstrap, noise, planner, validate
+from .columns import Columns
+from .evidence import decision_error
+from .ledger import UNPLACED, Ledger
+from .pairset import MAX_ITEMS, MAX_SOURCES, PairSet, pair_keys
+from .sprt import threshold, weight
+from .types import APPLIED, DUPLICATE, Answer, EngineConfig, Question, Record
+
+SNAPSHOT_VERSION = 1
+STATUS_NAMES = (STATUS_WAITING, STATUS_ASKING, STATUS_PLACED, STATUS_UNRESOLVED)
+WAITING, ASKING, PLACED, UNRESOLVED = range(4)
+WHY_NAMES = (WHY_SEED, WHY_PLACE, WHY_CHECK)
+SEED, PLACE, CHECK = range(3)
+Q_OPEN, Q_ANSWERED, Q_EXPIRED = range(3)
+
+ANCHOR_FACTOR = 0.01  # an item joins the reference pool when its error is <= alpha * this
+BLOCK_START = 16  # first bootstrap block size
+BLOCK_MAX = 800  # the block stops growing here
+MIN_ANCHORS = 8  # reference members needed before placing the other items
+REFIT_GROWTH = 0.10  # re-learn the sources when counted answers grew by this fraction
+REFIT_MIN = 200
+
+_ITEM_FIELDS: dict[str, tuple[Any, Any]] = {
+    "status": (np.int8, WAITING),
+    "inflight": (np.int32, 0),
+    "asked": (np.int32, 0),
+    "rev": (np.int32, 0),
+    "first_ms": (np.int64, -1),
+    "dirty": (np.bool_, False),
+    "shown_side": (np.int8, UNPLACED),  # side and status last handed out by take_changes
+    "shown_status": (np.int8, -1),
+    "block": (np.int32, -1),  # position in the bootstrap block, or -1
+}
+_Q_FIELDS: dict[str, tuple[Any, Any]] = {
+    "target": (np.int32, 0),
+    "partner": (np.int32, 0),
+    "ts": (np.int64, 0),
+    "state": (np.int8, Q_OPEN),
+    "why": (np.int8, PLACE),
+}
+
+
+def _check_config(c: EngineConfig) -> None:
+    if not (0.0 < c.alpha < 0.5) or math.isnan(c.alpha):
+        raise EngineInputError(f"alpha must be in (0, 0.5), got {c.alpha!r}")
+    for name in ("inflight", "max_outstanding", "item_ceiling", "question_timeout_ms"):
+        if getattr(c, name) < 1:
+            raise EngineInputError(f"{name} must be at least 1, got {getattr(c, name)!r}")
+    if c.budget < 0:
+        raise EngineInputError(f"budget must be >= 0, got {c.budget!r}")
+    if not (0.0 <= c.check_rate <= 0.5):
+        raise EngineInputError(f"check_rate must be in [0, 0.5], got {c.check_rate!r}")
+
+
+class Engine:
+    """Evidence, decisions, noise learning and planning for one two-group deployment."""
+
+    def __init__(self, config: EngineConfig | None = None) -> None:
+        self.config = config or EngineConfig()
+        _check_config(self.config)
+        self.boundary = threshold(self.config.alpha)
+        self.ledger = Ledger()
+        self.items = Columns(_ITEM_FIELDS)
+        self.q = Columns(_Q_FIELDS, 64)
+        self.q_low = 0  # every qid below this is answered or expired
+        self.keys: list[str] = []
+        self.index: dict[str, int] = {}
+        self.source_names: list[str] = []
+        self.source_index: dict[str, int] = {}
+        self.delta = np.zeros(0)
+        self.se = np.zeros(0)
+        self.src_answers = np.zeros(0)
+        self.pooled = 0.0
+        self.pooled_se = noise.SE_NEW
+        self.labels: list[str | None] = [None, None]
+        self.seen = PairSet()
+        self.pool = np.zeros(0, dtype=np.int64)  # reference members, in joining order
+        self.pool_base = 0
+        self.phase = "boot"
+        self.block = np.zeros(0, dtype=np.int64)
+        self.block_state = np.zeros((0, 0), dtype=np.int8)  # 0 unasked, 1 asked, 2 answered
+        self.counted_at_fit = 0
+        self.issued = [0, 0, 0]
+        self.spend = 0
+        self.duplicates = 0
+        self.revisions = 0
+        self.outstanding = 0
+        self.latencies: list[float] = []
+        self.now_ms = 0
+
+    # -- lookups ----------------------------------------------------------------
+    def __len__(self) -> int:
+        return len(self.keys)
+
+    def label(self, slot: int) -> str:
+        return self.labels[slot] or str(slot)
+
+    def record(self, key: str) -> Record | None:
+        i = self.index.get(key)
+        return None if i is None else self._record(i)
+
+    def _record(self, i: int) -> Record:
+        led = self.ledger.items
+        side = int(led["side"][i])
+        llr = float(led["llr"][i])
+        status = int(self.items["status"][i])
+        return Record(
+            key=self.keys[i],
+            side=None if side == UNPLACED else self.label(side),
+            status=STATUS_NAMES[status],
+            llr=round(llr if side == 1 else -llr if side == 0 else abs(llr), 6),
+            answers=int(led["count"][i]),
+            rev=int(self.items["rev"][i]),
+            pinned=bool(led["pinned"][i]),
+        )
+
+    def take_changes(self) -> list[Record]:
+        """Records changed since the last call (each item once, in item order)."""
+        dirty = np.nonzero(self.items.view("dirty"))[0]
+        out = [self._record(int(i)) for i in dirty]
+        self.items["dirty"][dirty] = False
+        self.items["shown_side"][dirty] = self.ledger.items["side"][dirty]
+        self.items["shown_status"][dirty] = self.items["status"][dirty]
+        return out
+
+    def take_latencies(self) -> list[float]:
+        """Seconds from first question to commit, for items committed since the last call."""
+        out, self.latencies = self.latencies, []
+        return out
+
+    def done(self) -> bool:
+        st = self.items.view("status")
+        return bool(len(st)) and bool(np.all((st == PLACED) | (st == UNRESOLVED)))
+
+    def stats(self) -> dict[str, Any]:
+        st = self.items.view("status")
+        counts = np.bincount(st, minlength=4)
+        return {
+            "items": {name: int(counts[k]) for k, name in enumerate(STATUS_NAMES)},
+            "spend": self.spend,
+            "bootstrap_spend": int(self.issued[SEED]),
+            "outstanding": self.outstanding,
+            "issued": {name: int(self.issued[k]) for k, name in enumerate(WHY_NAMES)},
+            "revisions": self.revisions,
+            "duplicates": self.duplicates,
+            "pooled_delta": round(self.pooled, 6),
+            "pooled_se": round(self.pooled_se, 6),
+            "phase": self.phase,
+            "reference": len(self.pool),
+            "sources": len(self.source_names),
+        }
+
+    def sources(self) -> list[dict[str, Any]]:
+        counts = np.bincount(self.ledger.answer("src"), minlength=len(self.source_names))
+        return [
+            {"source": name, "answers": int(counts[j]), "delta": round(float(self.delta[j]), 6),
+             "se": round(float(self.se[j]), 6)}
+            for j, name in enumerate(self.source_names)
+        ]
+
+    # -- validation ---------------------------------------------------------------
+    def validate_item(self, key: Any, side: Any = None) -> str | None:
+        err = validate.item_key(key)
+        if err or side is None:
+            return err
+        err = validate.side_label(side)
+        if err:
+            return err
+        if self._slot_for(side, self.labels) is None:
+            bound = ", ".join(str(x) for x in self.labels if x is not None)
+            return f"side label {side!r} would be a third group (bound: {bound})"
+        i = self.index.get(key)
+        if i is not None and self.ledger.items["pinned"][i]:
+            have = self.label(int(self.ledger.items["side"][i]))
+            if have != side:
+                return f"item {key!r} is already pinned to side {have!r}"
+        return None
+
+    def validate_answer(self, ans: Any) -> str | None:
+        if not isinstance(ans, Answer):
+            return f"expected an Answer, got {type(ans).__name__}"
+        err = (validate.item_key(ans.a, "a") or validate.item_key(ans.b, "b")
+               or validate.same_flag(ans.same) or validate.source_id(ans.source))
+        if err:
+            return err
+        if ans.a == ans.b:
+            return "a and b are the same item"
+        if ans.source not in self.source_index and len(self.source_names) >= MAX_SOURCES:
+            return f"too many sources (limit {MAX_SOURCES})"
+        if ans.qid is not None:
+            err = validate.qid(ans.qid)
+            if err:
+                return err
+            n = int(ans.qid)
+            if n >= self.q.n:
+                return f"qid {ans.qid!r} is not one this worker issued"
+            pair = {self.keys[self.q["target"][n]], self.keys[self.q["partner"][n]]}
+            if pair != {ans.a, ans.b}:
+                return f"qid {ans.qid!r} was asked about another pair"
+        return None
+
+    @staticmethod
+    def _slot_for(side: str, labels: list[str | None]) -> int | None:
+        if side in labels:
+            return labels.index(side)
+        if side in ("0", "1") and labels[int(side)] is None:
+            return int(side)
+        for k in (0, 1):
+            if labels[k] is None and str(k) not in labels:
+                return k
+        return None
+
+    # -- input ------------------------------------------------------------------
+    def add_items(self, items: Iterable[tuple[str, str | None]]) -> list[str]:
+        batch = list(items)
+        labels = list(self.labels)
+        pins: dict[str, str] = {}
+        for pos, (key, side) in enumerate(batch):
+            err = self.validate_item(key, side)
+            if err is None and side is not None:
+                slot = self._slot_for(side, labels)
+                if slot is None:
+                    err = f"side label {side!r} would be a third group"
+                elif key in pins and pins[key] != side:
+                    err = f"item {key!r} is pinned twice to different sides"
+                else:
+                    labels[slot] = side
+                    pins[key] = side
+            if err:
+                raise EngineInputError(f"item {pos}: {err}")
+        if len(self.keys) + len(batch) > MAX_ITEMS:
+            raise EngineInputError(f"too many items (limit {MAX_ITEMS})")
+        out = []
+        relabelled = labels != self.labels
+        self.labels = labels
+        for key, side in batch:
+            i = self.index.get(key)
+            fresh = i is None
+            if fresh:
+                i = self._register(key)
+            if side is None:
+                out.append(APPLIED if fresh else DUPLICATE)
+                continue
+            if self.ledger.items["pinned"][i]:
+                out.append(DUPLICATE)
+                continue
+            self._pin(i, labels.index(side))
+            out.append(APPLIED)
+        if relabelled:
+            self.items["dirty"][: len(self.keys)] = True
+        return out
+
+    def _register(self, key: str) -> int:
+        i = len(self.keys)
+        self.keys.append(key)
+        self.index[key] = i
+        self.ledger.add_items(1)
+        self.items.grow(1)
+        self.items["dirty"][i] = True
+        return i
+
+    def _register_many(self, keys: Sequence[str]) -> np.ndarray:
+        out = np.empty(len(keys), dtype=np.int64)
+        for k, key in enumerate(keys):
+            i = self.index.get(key)
+            out[k] = self._register(key) if i is None else i
+        return out
+
+    def _pin(self, i: int, slot: int) -> None:
+        led = self.ledger.items
+        was = int(led["side"][i])
+        led["pinned"][i] = True
+        led["side"][i] = slot
+        self.items["status"][i] = PLACED
+        self.items["dirty"][i] = True
+        if was != UNPLACED and was != slot:
+            self.items["rev"][i] += 1
+            self.revisions += 1
+            self.ledger.recompute(self.delta, self.se)
+        if was == UNPLACED:
+            released = self.ledger.release_pending()
+            self.ledger.count(released, self.delta, self.se)
+        if self.phase == "run":
+            self.pool = np.append(self.pool, i)
+
+    def _source_ids(self, names: Sequence[str]) -> np.ndarray:
+        out = np.empty(len(names), dtype=np.int64)
+        for k, name in enumerate(names):
+            j = self.source_index.get(name)
+            if j is None:
+                j = len(self.source_names)
+                self.source_names.append(name)
+                self.source_index[name] = j
+                self.delta = np.append(self.delta, 0.0)
+                self.se = np.append(self.se, noise.SE_NEW)
+                self.src_answers = np.append(self.src_answers, 0.0)
+            out[k] = j
+        return out
+
+    def add_answers(self, answers: Sequence[Answer], now_ms: int = 0) -> list[str]:
+        """Count new answers; return "applied" or "duplicate" for each, in order."""
+        answers = list(answers)
+        for pos, ans in enumerate(answers):
+            err = self.validate_answer(ans)
+            if err:
+                raise EngineInputError(f"answer {pos}: {err}")
+        self.now_ms = max(self.now_ms, int(now_ms))
+        if not answers:
+            return []
+        a = self._register_many([x.a for x in answers])
+        b = self._register_many([x.b for x in answers])
+        src = self._source_ids([x.source for x in answers])
+        same = np.fromiter((bool(x.same) for x in answers), dtype=bool, count=len(answers))
+        fresh = self.seen.add_new(pair_keys(a, b, src))
+        # A qid answered twice is a duplicate even from another source.
+        for k, ans in enumerate(answers):
+            if ans.qid is None:
+                continue
+            n = int(ans.qid)
+            if self.q["state"][n] == Q_ANSWERED:
+                fresh[k] = False
+            else:  # answered, even if the (pair, source) was heard before
+                self._close_question(n, Q_ANSWERED)
+        out = [APPLIED if f else DUPLICATE for f in fresh.tolist()]
+        self.duplicates += int((~fresh).sum())
+        if not fresh.any():
+            return out
+        a, b, src, same = a[fresh], b[fresh], src[fresh], same[fresh]
+        self.spend += len(a)
+        self._touch(np.concatenate([a, b]))
+        if self.phase == "boot":
+            self._mark_block_answers(a, b)
+        idx = self.ledger.append_answers(a, b, src, same)
+        targets = self.ledger.count(idx, self.delta, self.se)
+        if self.phase == "run":
+            if self._counted() >= max(REFIT_MIN, self.counted_at_fit * (1 + REFIT_GROWTH)):
+                self._refit()
+                self._decide(np.arange(len(self.keys)))
+            else:
+                self._decide(targets)
+        return out
+
+    def _counted(self) -> int:
+        return self.ledger.n_answers
+
+    def _touch(self, idx: np.ndarray) -> None:
+        st = self.items["status"]
+        waiting = idx[st[idx] == WAITING]
+        st[waiting] = ASKING
+        self.items["dirty"][idx] = True
+
+    def _close_question(self, n: int, state: int) -> None:
+        if self.q["state"][n] == Q_OPEN:
+            self.outstanding -= 1
+            if self.q["why"][n] == PLACE:  # only placement questions hold an item's slot
+                self.items["inflight"][self.q["target"][n]] -= 1
+            elif self.q["why"][n] == SEED and state == Q_EXPIRED:
+                self._block_mark(self.q["target"][n], self.q["partner"][n], 0)
+        self.q["state"][n] = state
+
+    # -- decisions --------------------------------------------------------------
+    def _refit(self, cold: bool = False) -> None:
+        fit = noise.fit(self.ledger, self.delta, self.se, cold=cold)
+        self.delta, self.se, self.src_answers = fit.delta, fit.se, fit.answers
+        self.pooled, self.pooled_se = fit.pooled, fit.pooled_se
+        self.counted_at_fit = self._counted()
+
+    def _decide(self, touched: np.ndarray) -> None:
+        """Commit, revise or give up on the touched items, following every consequence."""
+        led = self.ledger.items
+        alpha = self.config.alpha
+        todo = np.unique(touched)
+        for _ in range(64):
+            if len(todo) == 0:
+                return
+            todo = todo[~led["pinned"][todo]]
+            llr, spread = led["llr"][todo], led["spread"][todo]
+            err = decision_error(llr, spread)
+            ok = err <= alpha
+            lean = (llr > 0).astype(np.int8)
+            side = led["side"][todo]
+            newly = todo[ok & (side == UNPLACED)]
+            flips = todo[ok & (side != UNPLACED) & (lean != side)]
+            if len(newly):
+                led["side"][newly] = lean[ok & (side == UNPLACED)]
+                self._committed(newly)
+            if len(flips):
+                led["side"][flips] = 1 - led["side"][flips]
+                self.items["rev"][flips] += 1
+                self.revisions += len(flips)
+                self.items["dirty"][flips] = True
+            strong = todo[err <= alpha * ANCHOR_FACTOR]
+            if len(strong):
+                self._grow_pool(strong)
+            self._give_up(todo[~ok])
+            if len(flips):
+                self.ledger.recompute(self.delta, self.se)
+                todo = np.arange(len(self.keys))
+            elif len(newly):
+                released = self.ledger.release_pending()
+                todo = self.ledger.count(released, self.delta, self.se)
+                todo = np.unique(todo)
+            else:
+                return
+
+    def _committed(self, idx: np.ndarray) -> None:
+        st = self.items["status"]
+        st[idx] = PLACED
+        self.items["dirty"][idx] = True
+        first = self.items["first_ms"][idx]
+        asked = first[first >= 0]
+        self.latencies.extend(((self.now_ms - asked) / 1000.0).tolist())
+
+    def _give_up(self, idx: np.ndarray) -> None:
+        if len(idx) == 0:
+            return
+        cnt = self.ledger.items["count"][idx]
+        st = self.items["status"][idx]
+        stuck = idx[(cnt >= self.config.item_ceiling) & (st != PLACED) & (st != UNRESOLVED)]
+        if len(stuck):
+            self.items["status"][stuck] = UNRESOLVED
+            self.items["dirty"][stuck] = True
+
+    def _grow_pool(self, idx: np.ndarray) -> None:
+        if self.phase != "run":
+            return
+        idx = idx[self.ledger.items["side"][idx] != UNPLACED]
+        known = np.isin(idx, self.pool)
+        if (~known).any():
+            self.pool = np.concatenate([self.pool, idx[~known]])
+
+    # -- bootstrap --------------------------------------------------------------
+    def _block_mark(self, a: Any, b: Any, value: int) -> None:
+        pos = self.items["block"]
+        pa, pb = pos[a], pos[b]
+        ok = (pa >= 0) & (pb >= 0)
+        if np.ndim(ok) == 0:
+            if ok and self.block_state[pa, pb] != 2:
+                self.block_state[pa, pb] = self.block_state[pb, pa] = value
+            return
+        pa, pb = pa[ok], pb[ok]
+        self.block_state[pa, pb] = value
+        self.block_state[pb, pa] = value
+
+    def _mark_block_answers(self, a: np.ndarray, b: np.ndarray) -> None:
+        self._block_mark(a, b, 2)
+
+    def _extend_block(self, size: int) -> None:
+        """Grow the block to ``size`` members: pinned items first, then in arrival order."""
+        pos = self.items["block"]
+        n = len(self.keys)
+        have = len(self.block)
+        if size <= have:
+            return
+        order = np.arange(n)
+        outside = order[pos[:n] < 0]
+        pinned = self.ledger.items["pinned"][outside]
+        chosen = np.concatenate([outside[pinned], outside[~pinned]])[: size - have]
+        self.block = np.concatenate([self.block, chosen])
+        pos[chosen] = np.arange(have, have + len(chosen))
+        m = len(self.block)
+        state = np.zeros((m, m), dtype=np.int8)
+        state[:have, :have] = self.block_state
+        np.fill_diagonal(state, 2)
+        # Pairs answered before they were in the block still count as answered.
+        la, lb = self.ledger.answer("a"), self.ledger.answer("b")
+        both = (pos[la] >= 0) & (pos[lb] >= 0)
+        state[pos[la[both]], pos[lb[both]]] = 2
+        state[pos[lb[both]], pos[la[both]]] = 2
+        self.block_state = state
+
+    def _plan_block(self, now_ms: int, room: int) -> list[Question]:
+        n = len(self.keys)
+        if len(self.block) == 0:
+            if n < 2:
+                return []
+            pinned = int(self.ledger.item("pinned").sum())
+            self._extend_block(min(n, max(BLOCK_START, min(pinned, BLOCK_MAX))))
+        elif len(self.block) < BLOCK_START and n > len(self.block):
+            self._extend_block(min(n, BLOCK_START))
+        st = self.block_state
+        if (st == 2).all():
+            self._solve_block()
+            return []
+        i, j = np.nonzero(np.triu(st == 0, 1))
+        if len(i) == 0 or room <= 0:
+            return []
+        i, j = i[:room], j[:room]
+        st[i, j] = st[j, i] = 1
+        return self._issue(self.block[i], self.block[j], SEED, now_ms)
+
+    def _solve_block(self) -> None:
+        led = self.ledger.items
+        pos = self.items["block"]
+        members = self.block
+        la, lb = self.ledger.answer("a"), self.ledger.answer("b")
+        inside = (pos[la] >= 0) & (pos[lb] >= 0)
+        x = self.ledger.answer("same")[inside].astype(np.float64)
+        sides = bootstrap.block_sides(len(members), pos[la[inside]], pos[lb[inside]], x)
+        pinned = led["pinned"][members]
+        if pinned.any() and (sides[pinned] != led["side"][members[pinned]]).mean() > 0.5:
+            sides = 1 - sides
+        free = members[~pinned]
+        led["side"][free] = sides[~pinned]
+        self.ledger.redirect_all()
+        self._refit(cold=True)
+        strong = self._admit(members, pinned)
+        can_grow = len(members) < min(len(self.keys), BLOCK_MAX)
+        if strong.sum() < MIN_ANCHORS and can_grow:
+            led["side"][free] = UNPLACED
+            self.ledger.redirect_all()
+            self.ledger.recompute(self.delta, self.se)
+            self._extend_block(bootstrap.grow_size(len(members), len(self.keys)))
+            return
+        if not pinned.any() and strong.any():
+            first = members[np.argmax(strong)]
+            if led["side"][first] == 1:  # side 0 is the side of the first reference item
+                led["side"][free] = 1 - led["side"][free]
+        weak = members[~strong]
+        led["side"][weak] = UNPLACED
+        self.ledger.redirect_all()
+        self._refit()
+        self.pool = members[strong].astype(np.int64)
+        self.pool_base = len(self.pool)
+        self._committed(members[strong & ~pinned])
+        self.items["dirty"][members] = True
+        self.phase = "run"
+        if len(self.pool) == 0:  # nothing could be learned: a person must look
+            st = self.items.view("status")
+            st[(st != PLACED)] = UNRESOLVED
+            self.items["dirty"][: len(self.keys)] = True
+            return
+        self._decide(np.arange(len(self.keys)))
+
+    def _admit(self, members: np.ndarray, pinned: np.ndarray) -> np.ndarray:
+        """Members whose evidence from the other admitted members alone is strong.
+
+        Dropping a weak member removes its answers from the others' evidence, so the
+        check repeats until the admitted set is stable: every reference member then
+        stands on answers among reference members only.
+        """
+        led = self.ledger.items
+        keep = np.ones(len(members), dtype=bool)
+        sides = led["side"][members].copy()
+        for _ in range(len(members)):
+            err = decision_error(led["llr"][members], led["spread"][members])
+            ok = pinned | (keep & (err <= self.config.alpha * ANCHOR_FACTOR))
+            if (ok == keep).all():
+                break
+            keep = ok
+            led["side"][members] = np.where(keep, sides, UNPLACED)
+            self.ledger.redirect_all()
+            self.ledger.recompute(self.delta, self.se)
+        led["side"][members] = sides
+        return keep
+
+    # -- planning ---------------------------------------------------------------
+    def plan(self, now_ms: int) -> list[Question]:
+        """The questions to send now, within every cap."""
+        self.now_ms = max(self.now_ms, int(now_ms))
+        now = self.now_ms
+        self._expire(now)
+        cfg = self.config
+        room = cfg.max_outstanding - self.outstanding
+        if cfg.budget:
+            room = min(room, cfg.budget - sum(self.issued))
+        if room <= 0:
+            return []
+        if self.phase == "boot":
+            out = self._plan_block(now, room)
+            if self.phase == "boot":
+                return out
+            room -= len(out)
+        else:
+            out = []
+        return out + self._plan_place(now, room)
+
+    def _best_step(self) -> float:
+        seen = self.src_answers > 0
+        if not seen.any():
+            return abs(float(weight(self.pooled)))
+        return float(np.max(np.abs(weight(self.delta[seen]))))
+
+    def _plan_place(self, now_ms: int, room: int) -> list[Question]:
+        if room <= 0 or len(self.pool) == 0:
+            return []
+        cfg = self.config
+        led = self.ledger.items
+        st = self.items.view("status")
+        cand = np.nonzero((st == WAITING) | (st == ASKING))[0]
+        cand = cand[led["side"][cand] == UNPLACED]
+        if len(cand) == 0:
+            return []
+        need = planner.answers_still_needed(led["llr"][cand], self.boundary, self._best_step())
+        room_each = planner.slots(cand, need, self.items["inflight"][cand],
+                                  led["count"][cand], cfg.inflight, cfg.item_ceiling)
+        cand, room_each = cand[room_each > 0], room_each[room_each > 0]
+        if len(cand) == 0:
+            return []
+        targets = np.repeat(cand, room_each)[:room]
+        # k-th slot of an item in this round, so its partners are distinct
+        starts = np.cumsum(room_each) - room_each
+        offset = (np.arange(len(targets)) - np.repeat(starts, room_each)[: len(targets)])
+        k = self.items["asked"][targets].astype(np.uint64) + offset.astype(np.uint64)
+        partners = self._partners(targets, k)
+        out = self._issue(targets, partners, PLACE, now_ms)
+        checks = planner.check_count(len(out), cfg.check_rate, self.q.n)
+        checks = min(checks, room - len(out))
+        if checks > 0 and len(self.pool) >= 2:
+            salt = np.arange(self.q.n, self.q.n + checks, dtype=np.uint64)
+            ia = (planner.mix(salt ^ np.uint64(5)) % np.uint64(len(self.pool))).astype(np.int64)
+            ib = (planner.mix(salt ^ np.uint64(9)) % np.uint64(len(self.pool) - 1)).astype(
+                np.int64)
+            ib = ib + (ib >= ia)
+            out += self._issue(self.pool[ia], self.pool[ib], CHECK, now_ms)
+        return out
+
+    def _active_pool(self) -> int:
+        """Pool members in rotation: it grows only by doublings, so that each item's
+        rotation stays stable and rarely meets the same member twice."""
+        base = self.pool_base or len(self.pool)
+        size = base
+        while size * 2 <= len(self.pool):
+            size *= 2
+        return size
+
+    def _partners(self, targets: np.ndarray, k: np.ndarray) -> np.ndarray:
+        """The k-th partner of each target: the reference pool in a per-item rotation, then
+        (once an item has met every member) any placed item, so pairs do not repeat."""
+        h = planner.mix(targets.astype(np.uint64))
+        size = np.uint64(self._active_pool())
+        out = self.pool[((h + k) % size).astype(np.int64)]
+        beyond = k >= size
+        if beyond.any():
+            placed = np.nonzero(self.ledger.item("side") != UNPLACED)[0]
+            pick = (planner.mix(h[beyond] ^ k[beyond]) % np.uint64(len(placed))).astype(np.int64)
+            out[beyond] = placed[pick]
+        return out
+
+    def _issue(self, targets: np.ndarray, partners: np.ndarray, why: int,
+               now_ms: int) -> list[Question]:
+        count = len(targets)
+        if count == 0:
+            return []
+        qids = self.q.grow(count)
+        q = self.q
+        q["target"][qids] = targets
+        q["partner"][qids] = partners
+        q["ts"][qids] = now_ms
+        q["state"][qids] = Q_OPEN
+        q["why"][qids] = why
+        self.outstanding += count
+        self.issued[why] += count
+        it = self.items
+        if why == PLACE:
+            np.add.at(it["inflight"], targets, 1)
+            np.add.at(it["asked"], targets, 1)
+        for side in (targets, partners) if why != CHECK else ():
+            fresh = side[it["first_ms"][side] < 0]
+            it["first_ms"][fresh] = now_ms
+        self._touch(np.asarray(targets, dtype=np.int64))
+        swap = planner.uniform(qids.astype(np.uint64), 3) < 0.5
+        keys = self.keys
+        name = WHY_NAMES[why]
+        out = []
+        for qid, t, p, s in zip(qids.tolist(), targets.tolist(), partners.tolist(),
+                                swap.tolist(), strict=True):
+            a, b = (keys[p], keys[t]) if s else (keys[t], keys[p])
+            out.append(Question(str(qid), a, b, name, now_ms))
+        return out
+
+    def _expire(self, now_ms: int) -> None:
+        q = self.q
+        lo, n = self.q_low, q.n
+        if lo >= n:
+            return
+        state = q["state"][lo:n]
+        late = np.nonzero((state == Q_OPEN)
+                          & (q["ts"][lo:n] + self.config.question_timeout_ms <= now_ms))[0]
+        for off in late.tolist():
+            self._close_question(lo + off, Q_EXPIRED)
+        open_ = np.nonzero(q["state"][lo:n] == Q_OPEN)[0]
+        self.q_low = lo + (int(open_[0]) if len(open_) else n - lo)
+
+    # -- snapshot ---------------------------------------------------------------
+    def snapshot(self) -> bytes:
+        """Everything needed to continue exactly where this engine stands."""
+        c = self.config
+        state = {
+            "v": SNAPSHOT_VERSION,
+            "config": [c.alpha, c.inflight, c.max_outstanding, c.budget, c.item_ceiling,
+                       c.question_timeout_ms, c.check_rate, c.seed],
+            "keys": self.keys,
+            "sources": self.source_names,
+            "delta": self.delta.tobytes(),
+            "se": self.se.tobytes(),
+            "src_answers": self.src_answers.tobytes(),
+            "pooled": [self.pooled, self.pooled_se],
+            "labels": self.labels,
+            "seen": self.seen.to_bytes(),
+            "pool": self.pool.astype(np.int64).tobytes(),
+            "phase": self.phase,
+            "block": self.block.astype(np.int64).tobytes(),
+            "block_state": self.block_state.tobytes(),
+            "counters": [self.counted_at_fit, *self.issued, self.spend, self.duplicates,
+                         self.revisions, self.outstanding, self.now_ms, self.q_low, self.pool_base],
+            "ledger": self.ledger.to_state(),
+            "items": self.items.to_state(),
+            "q": self.q.to_state(),
+        }
+        return msgpack.packb(state, use_bin_type=True)
+
+    @classmethod
+    def restore(cls, data: bytes) -> Engine:
+        try:
+            st = msgpack.unpackb(data, raw=False)
+            if st.get("v") != SNAPSHOT_VERSION:
+                raise EngineInputError(f"snapshot version {st.get('v')!r} is not supported")
+            eng = cls(EngineConfig(*st["config"]))
+            eng.keys = list(st["keys"])
+            eng.index = {k: i for i, k in enumerate(eng.keys)}
+            eng.source_names = list(st["sources"])
+            eng.source_index = {k: i for i, k in enumerate(eng.source_names)}
+            eng.delta = np.frombuffer(st["delta"], dtype=np.float64).copy()
+            eng.se = np.frombuffer(st["se"], dtype=np.float64).copy()
+            eng.src_answers = np.frombuffer(st["src_answers"], dtype=np.float64).copy()
+            eng.pooled, eng.pooled_se = st["pooled"]
+            eng.labels = list(st["labels"])
+            eng.seen = PairSet.from_bytes(st["seen"])
+            eng.pool = np.frombuffer(st["pool"], dtype=np.int64).copy()
+            eng.phase = st["phase"]
+            eng.block = np.frombuffer(st["block"], dtype=np.int64).copy()
+            m = len(eng.block)
+            eng.block_state = np.frombuffer(st["block_state"], dtype=np.int8).copy().reshape(m, m)
+            (eng.counted_at_fit, s0, s1, s2, eng.spend, eng.duplicates, eng.revisions,
+             eng.outstanding, eng.now_ms, eng.q_low, eng.pool_base) = st["counters"]
+            eng.issued = [s0, s1, s2]
+            eng.ledger = Ledger.from_state(st["ledger"])
+            eng.items.load_state(st["items"])
+            eng.q.load_state(st["q"])
+        except EngineInputError:
+            raise
+        except (ValueError, KeyError, TypeError, msgpack.UnpackException) as exc:
+            raise EngineInputError(f"snapshot is unreadable: {exc}") from None
+        return eng
+
+    def nbytes(self) -> int:
+        """Approximate memory held by the numpy state (excludes the key strings)."""
+        return (self.ledger.nbytes() + self.items.nbytes() + self.q.nbytes()
+                + self.seen.sorted.nbytes + self.pool.nbytes + self.block_state.nbytes)
+

@@ -48,7 +48,7 @@ class Record:
     key: str
     side: str | None
     status: str
-    llr: float  # evidence (natural log) for the chosen side; for undecided items, for the leading side
+    llr: float  # evidence (natural log) for the chosen side; undecided: for the leading side
     answers: int  # answers counted for this item
     rev: int  # times a commit was overturned
     pinned: bool

@@ -1,0 +1,48 @@
+"""Growable, named numpy columns of equal length (struct-of-arrays state)."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+
+class Columns:
+    """Named numpy arrays that grow together by doubling."""
+
+    def __init__(self, fields: dict[str, tuple[Any, Any]], capacity: int = 16) -> None:
+        self.fields = fields
+        self.n = 0
+        self.data = {k: np.full(capacity, fill, dtype=dt) for k, (dt, fill) in fields.items()}
+
+    def __getitem__(self, name: str) -> np.ndarray:
+        """The full-capacity array: index it with valid positions only."""
+        return self.data[name]
+
+    def view(self, name: str) -> np.ndarray:
+        return self.data[name][: self.n]
+
+    def grow(self, count: int) -> np.ndarray:
+        start, need = self.n, self.n + count
+        cap = len(next(iter(self.data.values())))
+        if need > cap:
+            new_cap = max(need, cap * 2)
+            for k, (dt, fill) in self.fields.items():
+                arr = np.full(new_cap, fill, dtype=dt)
+                arr[:start] = self.data[k][:start]
+                self.data[k] = arr
+        self.n = need
+        return np.arange(start, need)
+
+    def to_state(self) -> dict[str, Any]:
+        return {"n": self.n, "cols": {k: self.view(k).tobytes() for k in self.fields}}
+
+    def load_state(self, st: dict[str, Any]) -> None:
+        n = int(st["n"])
+        self.n = 0
+        self.grow(n)
+        for k, (dt, _) in self.fields.items():
+            self.data[k][:n] = np.frombuffer(st["cols"][k], dtype=dt)
+
+    def nbytes(self) -> int:
+        return sum(a.nbytes for a in self.data.values())

@@ -1,0 +1,47 @@
+"""The weight of one answer and the error of a decision: computed here and nowhere else.
+
+An answer from a source of bias d about a target whose partner's side is wrong with
+probability eps is right with probability (1 + d (1 - 2 eps)) / 2, so it moves the
+target's log-likelihood ratio by w = ln((1 + d') / (1 - d')), d' = d (1 - 2 eps).
+A per-item difficulty would join here as a further factor on d'.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+_CLIP = 0.999999
+# Three-point Gauss-Hermite rule for E[f(L)], L ~ N(mu, sigma^2).
+_GH_Z = np.array([-np.sqrt(3.0), 0.0, np.sqrt(3.0)])
+_GH_W = np.array([1.0 / 6.0, 2.0 / 3.0, 1.0 / 6.0])
+
+
+def answer_weights(
+    delta: np.ndarray, se: np.ndarray, partner_eps: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Per answer: (w, s) where w is the LLR step and s = |dw/d delta| * se(delta).
+
+    ``s`` is how far the step could move if the source's bias were one standard error
+    off; decisions integrate over it so that a young estimate is used cautiously.
+    """
+    shrink = 1.0 - 2.0 * np.clip(partner_eps, 0.0, 0.5)
+    d = np.clip(delta * shrink, -_CLIP, _CLIP)
+    w = np.log1p(d) - np.log1p(-d)
+    s = np.abs(shrink * 2.0 / (1.0 - d * d)) * se
+    return w, s
+
+
+def decision_error(llr: np.ndarray, spread: np.ndarray) -> np.ndarray:
+    """Probability that the side sign(llr) is wrong, averaged over the weights' uncertainty.
+
+    With exact weights this is 1 / (1 + e^|llr|); the average over L ~ N(|llr|, spread^2)
+    is never smaller (the function is convex there), so uncertainty delays commits.
+    """
+    mag = np.abs(np.asarray(llr, dtype=float))[..., None] + np.asarray(spread)[..., None] * _GH_Z
+    return (_GH_W / (1.0 + np.exp(np.minimum(mag, 700.0)))).sum(axis=-1)
+
+
+def reference_eps(llr: np.ndarray, pinned: np.ndarray) -> np.ndarray:
+    """Chance that a placed item's side is wrong, as seen by the items compared with it."""
+    eps = 1.0 / (1.0 + np.exp(np.minimum(np.abs(llr), 700.0)))
+    return np.where(pinned, 0.0, eps)

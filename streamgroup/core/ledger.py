@@ -1,0 +1,184 @@
+"""The evidence ledger: every counted answer, and the evidence it gives each item.
+
+Evidence is kept as one signed log-likelihood ratio per item (side 1 over side 0). An
+answer counts for an item once its partner is placed: answers against a placed item count
+at once; an answer between two unplaced items waits (``direction`` 0) and counts for one
+of them as soon as the other is placed. ``direction`` is a bit set: 1 = counts for ``a``,
+2 = counts for ``b``. For more than two groups the per-item scalar becomes a vector over
+groups (plus "none of these yet"); the answer store and the directions stay as they are.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from .columns import Columns
+from .evidence import answer_weights, reference_eps
+
+UNPLACED = -1
+
+_ITEM_FIELDS: dict[str, tuple[Any, Any]] = {
+    "side": (np.int8, UNPLACED),
+    "llr": (np.float64, 0.0),
+    "spread": (np.float64, 0.0),
+    "count": (np.int32, 0),
+    "pinned": (np.bool_, False),
+}
+_ANSWER_FIELDS: dict[str, Any] = {
+    "a": np.int32,
+    "b": np.int32,
+    "src": np.int32,
+    "same": np.int8,  # +1 same, -1 different
+    "direction": np.int8,
+}
+
+
+class Ledger:
+    """Item evidence and the answer store, as growable numpy columns."""
+
+    def __init__(self) -> None:
+        self.items = Columns(_ITEM_FIELDS)
+        self.answers = Columns({k: (dt, 0) for k, dt in _ANSWER_FIELDS.items()}, 64)
+        self.pending = np.zeros(0, dtype=np.int64)  # answers with direction 0
+
+    @property
+    def n_items(self) -> int:
+        return self.items.n
+
+    @property
+    def n_answers(self) -> int:
+        return self.answers.n
+
+    # -- views ----------------------------------------------------------------
+    def item(self, name: str) -> np.ndarray:
+        return self.items.view(name)
+
+    def answer(self, name: str) -> np.ndarray:
+        return self.answers.view(name)
+
+    # -- growth ---------------------------------------------------------------
+    def add_items(self, count: int) -> np.ndarray:
+        return self.items.grow(count)
+
+    def append_answers(self, a: np.ndarray, b: np.ndarray, src: np.ndarray,
+                       same: np.ndarray) -> np.ndarray:
+        """Store answers; set their directions from the current placements."""
+        idx = self.answers.grow(len(a))
+        ans = self.answers
+        ans["a"][idx] = a
+        ans["b"][idx] = b
+        ans["src"][idx] = src
+        ans["same"][idx] = np.where(same, 1, -1)
+        side = self.items["side"]
+        placed_a = side[a] != UNPLACED
+        placed_b = side[b] != UNPLACED
+        direction = np.where(placed_b, 1, 0) | np.where(placed_a, 2, 0)
+        ans["direction"][idx] = direction
+        waiting = idx[direction == 0]
+        if len(waiting):
+            self.pending = np.concatenate([self.pending, waiting])
+        return idx
+
+    # -- evidence -------------------------------------------------------------
+    def _contributions(self, idx: np.ndarray, delta: np.ndarray, se: np.ndarray,
+                       trust_partners: bool = False
+                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(target, step, spread) for every (answer, counted endpoint) among ``idx``."""
+        ans = self.answers
+        a, b, d = ans["a"][idx], ans["b"][idx], ans["direction"][idx]
+        src, same = ans["src"][idx], ans["same"][idx]
+        for_a = (d & 1) != 0
+        for_b = (d & 2) != 0
+        target = np.concatenate([a[for_a], b[for_b]])
+        partner = np.concatenate([b[for_a], a[for_b]])
+        s = np.concatenate([src[for_a], src[for_b]])
+        x = np.concatenate([same[for_a], same[for_b]]).astype(np.float64)
+        side = self.items["side"]
+        if trust_partners:
+            eps = np.zeros(len(partner))
+        else:
+            eps = reference_eps(self.items["llr"][partner], self.items["pinned"][partner])
+        w, spread = answer_weights(delta[s], se[s], eps)
+        sign = x * (2.0 * side[partner] - 1.0)
+        return target, sign * w, spread
+
+    def count(self, idx: np.ndarray, delta: np.ndarray, se: np.ndarray) -> np.ndarray:
+        """Add the evidence of answers ``idx`` (already given directions); return targets."""
+        if len(idx) == 0:
+            return np.zeros(0, dtype=np.int64)
+        target, step, spread = self._contributions(idx, delta, se)
+        np.add.at(self.items["llr"], target, step)
+        np.add.at(self.items["spread"], target, spread)
+        np.add.at(self.items["count"], target, 1)
+        return target
+
+    def recompute(self, delta: np.ndarray, se: np.ndarray, settle: bool = False) -> None:
+        """Rebuild every item's evidence from all counted answers (after new weights).
+
+        Each answer is discounted by its partner's chance of being wrong, read from the
+        partner's current evidence; ``settle`` first builds that evidence without the
+        discount, for items placed together whose evidence is not known yet.
+        """
+        n = self.n_items
+        idx = np.arange(self.n_answers)
+        if settle:
+            target, step, _ = self._contributions(idx, delta, se, trust_partners=True)
+            self.items["llr"][:n] = np.bincount(target, weights=step, minlength=n)[:n]
+        target, step, spread = self._contributions(idx, delta, se)
+        self.items["llr"][:n] = np.bincount(target, weights=step, minlength=n)[:n]
+        self.items["spread"][:n] = np.bincount(target, weights=spread, minlength=n)[:n]
+        self.items["count"][:n] = np.bincount(target, minlength=n)[:n]
+
+    def release_pending(self) -> np.ndarray:
+        """Give directions to waiting answers whose partner is now placed; return them."""
+        if len(self.pending) == 0:
+            return self.pending
+        ans = self.answers
+        p = self.pending
+        side = self.items["side"]
+        placed_a = side[ans["a"][p]] != UNPLACED
+        placed_b = side[ans["b"][p]] != UNPLACED
+        ready = placed_a | placed_b
+        if not ready.any():
+            return np.zeros(0, dtype=np.int64)
+        got = p[ready]
+        ans["direction"][got] = (np.where(placed_b[ready], 1, 0)
+                                 | np.where(placed_a[ready], 2, 0))
+        self.pending = p[~ready]
+        return got
+
+    def redirect_all(self) -> None:
+        """Recompute every answer's direction from the current placements.
+
+        Used after the bootstrap and after revisions, when the set of placed items changed
+        in ways the incremental path does not follow.
+        """
+        ans = self.answers
+        side = self.items["side"]
+        a, b = self.answer("a"), self.answer("b")
+        placed_a = side[a] != UNPLACED
+        placed_b = side[b] != UNPLACED
+        d = np.where(placed_b, 1, 0) | np.where(placed_a, 2, 0)
+        ans["direction"][: self.n_answers] = d
+        self.pending = np.nonzero(d == 0)[0]
+
+    # -- snapshot -------------------------------------------------------------
+    def to_state(self) -> dict[str, Any]:
+        return {
+            "items": self.items.to_state(),
+            "answers": self.answers.to_state(),
+            "pending": self.pending.astype(np.int64).tobytes(),
+        }
+
+    @classmethod
+    def from_state(cls, st: dict[str, Any]) -> Ledger:
+        out = cls()
+        out.items.load_state(st["items"])
+        out.answers.load_state(st["answers"])
+        out.pending = np.frombuffer(st["pending"], dtype=np.int64).copy()
+        return out
+
+    def nbytes(self) -> int:
+        return self.items.nbytes() + self.answers.nbytes() + self.pending.nbytes

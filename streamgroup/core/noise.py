@@ -1,0 +1,83 @@
+"""Learning how reliable each source is, from the answers themselves.
+
+One-coin EM per source: an answer from source j is right with probability (1 + d_j) / 2.
+The E-step takes each item's side posterior from the ledger's evidence (computed with the
+current d); the M-step sets d_j to the mean expected agreement of source j's answers with
+the posterior relation of the two items. A likelihood method: optional stopping does not
+bias it. The prior (``PRIOR`` pseudo-answers of agreement 0) pulls a young source towards
+d = 0, i.e. towards no weight, so a source is trusted only once its answers earn it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .ledger import Ledger
+
+PRIOR = 2.0  # pseudo-answers that shrink a young source's bias towards 0
+SE_NEW = 1.0  # standard error of a source never fitted
+
+
+@dataclass
+class NoiseFit:
+    delta: np.ndarray  # per source
+    se: np.ndarray  # per source
+    answers: np.ndarray  # informative answers per source (sum of squared relation certainty)
+    pooled: float
+    pooled_se: float
+
+
+def side_posterior(ledger: Ledger) -> np.ndarray:
+    """P(side = 1) per item: exact for pinned items, logistic of the evidence otherwise."""
+    llr = ledger.item("llr")
+    p = 1.0 / (1.0 + np.exp(-np.clip(llr, -700, 700)))
+    pinned = ledger.item("pinned")
+    side = ledger.item("side")
+    return np.where(pinned, side.astype(np.float64), p)
+
+
+def hard_posterior(ledger: Ledger) -> np.ndarray:
+    """P(side = 1) taking every placed item's side as certain (unplaced: 1/2)."""
+    side = ledger.item("side")
+    return np.where(side >= 0, side.astype(np.float64), 0.5)
+
+
+def m_step(ledger: Ledger, n_sources: int, p: np.ndarray | None = None) -> NoiseFit:
+    """One M-step over every answer that counts for at least one endpoint."""
+    counted = ledger.answer("direction") != 0
+    a = ledger.answer("a")[counted]
+    b = ledger.answer("b")[counted]
+    src = ledger.answer("src")[counted]
+    x = ledger.answer("same")[counted].astype(np.float64)
+    if p is None:
+        p = side_posterior(ledger)
+    r = (2.0 * p[a] - 1.0) * (2.0 * p[b] - 1.0)  # expected relation sign: +1 same, -1 different
+    agree = np.bincount(src, weights=x * r, minlength=n_sources)
+    info = np.bincount(src, weights=r * r, minlength=n_sources)
+    total = np.bincount(src, minlength=n_sources).astype(np.float64)
+    delta = np.clip(agree / (total + PRIOR), -0.995, 0.995)
+    se = np.sqrt(np.maximum(1.0 - delta**2, 0.05) / (info + PRIOR))
+    n = float(total.sum())
+    pooled = float(np.clip(agree.sum() / (n + PRIOR), -0.995, 0.995))
+    pooled_se = float(np.sqrt(max(1.0 - pooled**2, 0.05) / (info.sum() + PRIOR)))
+    return NoiseFit(delta, se, info, pooled, pooled_se)
+
+
+def fit(ledger: Ledger, delta: np.ndarray, se: np.ndarray, iterations: int = 3,
+        cold: bool = False) -> NoiseFit:
+    """Alternate evidence and source biases a few times, warm-started from ``delta``.
+
+    ``cold`` starts from the placed sides taken as certain (the bootstrap's first fit,
+    where every source's bias is still unknown and a zero weight would be a fixed point).
+    """
+    n_sources = len(delta)
+    result = NoiseFit(delta, se, np.zeros(n_sources), 0.0, SE_NEW)
+    if cold:
+        result = m_step(ledger, n_sources, hard_posterior(ledger))
+    for k in range(iterations):
+        ledger.recompute(result.delta, result.se, settle=cold and k == 0)
+        result = m_step(ledger, n_sources)
+    ledger.recompute(result.delta, result.se)
+    return result

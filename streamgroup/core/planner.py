@@ -1,0 +1,59 @@
+"""Choosing the next questions: pure array arithmetic over the engine's state."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+
+
+def mix(x: np.ndarray | int) -> np.ndarray:
+    """splitmix64: a stateless, well-spread hash; drives every planning 'coin'."""
+    with np.errstate(over="ignore"):
+        z = np.asarray(x, dtype=np.uint64) + _GOLDEN
+        z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+        z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+        return z ^ (z >> np.uint64(31))
+
+
+def uniform(x: np.ndarray | int, salt: int) -> np.ndarray:
+    """Deterministic uniforms in [0, 1) from integers and a salt."""
+    h = mix(np.asarray(x, dtype=np.uint64) ^ mix(salt))
+    return (h >> np.uint64(11)).astype(np.float64) / float(1 << 53)
+
+
+def answers_still_needed(llr: np.ndarray, boundary: float, best_step: float) -> np.ndarray:
+    """The fewest further answers that could still end each item's walk.
+
+    Never having more than this in flight means no answer in flight can turn out to be
+    unneeded, so parallel questions cost latency, not spend.
+    """
+    if best_step <= 0:
+        return np.ones(len(llr), dtype=np.int64)
+    gap = np.maximum(boundary - np.abs(llr), 0.0)
+    return np.maximum(np.ceil(gap / best_step - 1e-9), 1).astype(np.int64)
+
+
+def slots(
+    candidates: np.ndarray,
+    need: np.ndarray,
+    inflight: np.ndarray,
+    counted: np.ndarray,
+    window: int,
+    ceiling: int,
+) -> np.ndarray:
+    """Questions to add now per candidate: within W, the need, and the per-item ceiling."""
+    room = np.minimum(need, window) - inflight
+    room = np.minimum(room, ceiling - counted - inflight)
+    return np.maximum(room, 0)
+
+
+def check_count(placed_questions: int, rate: float, salt: int) -> int:
+    """How many check questions to add beside ``placed_questions`` (deterministic rounding)."""
+    if rate <= 0 or placed_questions <= 0:
+        return 0
+    want = placed_questions * rate
+    whole = math.floor(want)
+    return whole + int(uniform(salt, 17)[()] < want - whole)
