@@ -1,0 +1,311 @@
+"""Decoding and validation of input stream entries, and the dead letters for bad ones.
+
+Entries arrive as ``(entry_id, {field: value})`` with bytes on both sides (the worker reads
+with ``decode_responses=False`` so that a producer's invalid UTF-8 becomes a dead letter
+instead of an exception inside the client library).
+
+Rules (see the contract in the README):
+
+- ``{NS}:items``: ``key`` (1-256 bytes of UTF-8, no control characters) and an optional
+  ``side`` (1-64 bytes, same character rules). Unknown extra fields are ignored.
+- ``{NS}:answers``: ``a``, ``b`` (item keys, a != b), ``same`` (``1`` or ``0``), optional
+  ``source`` (1-128 bytes), ``qid`` and ``aid`` (1-128 bytes each). Or a single field
+  ``pack``: a msgpack array of maps with those keys (``same`` may then be 0/1 or a bool).
+
+Packed entries have hard limits: the payload is at most ``MAX_PACK_BYTES`` (1 MiB) and
+holds at most ``MAX_PACK_ANSWERS`` (10,000) answers; the depth is fixed at two (an array
+of maps whose values are scalars), and each map has at most ``MAX_PACK_FIELDS`` keys. A
+pack that breaks a structural limit is dead-lettered whole (nothing of it is applied); a
+well-formed pack with some bad elements has those elements dead-lettered one by one
+(``origin`` ends in ``#index``) and the good ones applied.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import msgpack
+
+from ..core.types import Answer
+from ..keys import (
+    MAX_ID_BYTES,
+    MAX_KEY_BYTES,
+    MAX_LABEL_BYTES,
+    MAX_PACK_ANSWERS,
+    MAX_PACK_BYTES,
+    MAX_SOURCE_BYTES,
+)
+
+MAX_PACK_FIELDS = 16  # keys in one packed answer map (six are meaningful)
+DEAD_VALUE_BYTES = 4096  # a dead letter repeats at most this much of a packed element's value
+
+# Reasons for the metrics label `reason` (a small fixed set, see serve/metrics.py).
+MALFORMED = "malformed"
+BAD_KEY = "bad_key"
+BAD_VALUE = "bad_value"
+UNKNOWN_QID = "unknown_qid"
+BAD_PACK = "bad_pack"
+TOO_LARGE = "too_large"
+ENGINE = "engine"
+
+# C0 controls and DEL in bytes, plus the C1 controls U+0080..U+009F as UTF-8 (0xC2 0x80-9F).
+_CTRL_B = re.compile(rb"[\x00-\x1f\x7f]|\xc2[\x80-\x9f]")
+_CTRL_S = re.compile("[\x00-\x1f\x7f-\x9f]")
+
+Entry = tuple[bytes, dict[bytes, bytes]]
+
+
+@dataclass(slots=True)
+class Dead:
+    """A rejected entry (or packed element) on its way to ``{NS}:dead``."""
+
+    fields: dict[str, Any]  # the original fields (bytes or str values)
+    reason: str  # readable by a person
+    kind: str  # one of the metrics reason labels
+    origin: str  # "stream entry-id" (packed elements: "stream entry-id#index")
+
+    def to_fields(self) -> dict[bytes | str, bytes | str]:
+        out: dict[bytes | str, bytes | str] = {}
+        for k, v in self.fields.items():
+            name = k.decode("utf-8", "replace") if isinstance(k, bytes) else str(k)
+            if name in ("reason", "origin"):  # keep the original, do not let it mask ours
+                name = "_" + name
+            out[name] = v if isinstance(v, (bytes, str)) else _scalar_text(v)
+        out["reason"] = self.reason
+        out["origin"] = self.origin
+        return out
+
+
+@dataclass(slots=True)
+class Decoded:
+    """What one batch of entries of a stream turned into."""
+
+    items: list[tuple[str, str | None]] = field(default_factory=list)
+    answers: list[Answer] = field(default_factory=list)
+    aids: list[str | None] = field(default_factory=list)  # parallel to answers
+    origins: list[str] = field(default_factory=list)  # parallel to answers / items
+    dead: list[Dead] = field(default_factory=list)
+    missing: int = 0  # pending entries whose content was deleted before we read it
+
+
+def _scalar_text(v: Any) -> str:
+    text = v.decode("utf-8", "replace") if isinstance(v, bytes) else repr(v)
+    return text[:DEAD_VALUE_BYTES]
+
+
+class _Bad(Exception):
+    def __init__(self, kind: str, reason: str) -> None:
+        super().__init__(reason)
+        self.kind = kind
+        self.reason = reason
+
+
+def _text(raw: bytes, name: str, limit: int) -> str:
+    """Validate one bytes field as a contract string (1..limit bytes, UTF-8, no controls)."""
+    n = len(raw)
+    if n == 0 or n > limit:
+        raise _Bad(BAD_KEY if name in ("a", "b", "key") else BAD_VALUE,
+                   f"{name} must be 1 to {limit} bytes (got {n})")
+    if _CTRL_B.search(raw) is not None:
+        raise _Bad(BAD_KEY if name in ("a", "b", "key") else BAD_VALUE,
+                   f"{name} contains a control character")
+    try:
+        return raw.decode()
+    except UnicodeDecodeError:
+        raise _Bad(BAD_KEY if name in ("a", "b", "key") else BAD_VALUE,
+                   f"{name} is not valid UTF-8") from None
+
+
+def _stext(v: Any, name: str, limit: int) -> str:
+    """Validate one packed value (a str; bytes are accepted if they are UTF-8)."""
+    if isinstance(v, bytes):
+        return _text(v, name, limit)
+    if not isinstance(v, str):
+        raise _Bad(BAD_VALUE, f"{name} must be a string (got {type(v).__name__})")
+    n = len(v)
+    if n == 0 or (n * 4 > limit and len(v.encode()) > limit):
+        kind = BAD_KEY if name in ("a", "b") else BAD_VALUE
+        raise _Bad(kind, f"{name} must be 1 to {limit} bytes")
+    if _CTRL_S.search(v) is not None:
+        raise _Bad(BAD_KEY if name in ("a", "b") else BAD_VALUE,
+                   f"{name} contains a control character")
+    return v
+
+
+def decode_items(stream: str, entries: Iterable[Entry]) -> Decoded:
+    """Turn ``{NS}:items`` entries into ``(key, side)`` pairs and dead letters."""
+    out = Decoded()
+    items, origins, dead = out.items, out.origins, out.dead
+    for eid, fields in entries:
+        if not fields:
+            out.missing += 1
+            continue
+        try:
+            raw = fields.get(b"key")
+            if raw is None:
+                raise _Bad(MALFORMED, "missing field key")
+            key = _text(raw, "key", MAX_KEY_BYTES)
+            rside = fields.get(b"side")
+            side = None if rside is None else _text(rside, "side", MAX_LABEL_BYTES)
+        except _Bad as bad:
+            dead.append(Dead(fields, bad.reason, bad.kind, f"{stream} {eid.decode()}"))
+            continue
+        items.append((key, side))
+        origins.append(f"{stream} {eid.decode()}")
+    return out
+
+
+def decode_answers(stream: str, entries: Iterable[Entry]) -> Decoded:
+    """Turn ``{NS}:answers`` entries (plain or packed) into answers and dead letters."""
+    out = Decoded()
+    answers, aids, origins, dead = out.answers, out.aids, out.origins, out.dead
+    for eid, fields in entries:
+        if not fields:
+            out.missing += 1
+            continue
+        pack = fields.get(b"pack")
+        if pack is not None:
+            _decode_pack(stream, eid, fields, pack, out)
+            continue
+        try:
+            ra, rb, rs = fields.get(b"a"), fields.get(b"b"), fields.get(b"same")
+            if ra is None or rb is None or rs is None:
+                missing = [n for n, v in (("a", ra), ("b", rb), ("same", rs)) if v is None]
+                raise _Bad(MALFORMED, "missing field " + ", ".join(missing))
+            if ra == rb:
+                raise _Bad(BAD_VALUE, "a and b are the same item")
+            a = _text(ra, "a", MAX_KEY_BYTES)
+            b = _text(rb, "b", MAX_KEY_BYTES)
+            if rs == b"1":
+                same = True
+            elif rs == b"0":
+                same = False
+            else:
+                raise _Bad(BAD_VALUE, "same must be 1 or 0")
+            v = fields.get(b"source")
+            source = "" if v is None else _text(v, "source", MAX_SOURCE_BYTES)
+            v = fields.get(b"qid")
+            qid = None if v is None else _text(v, "qid", MAX_ID_BYTES)
+            v = fields.get(b"aid")
+            aid = None if v is None else _text(v, "aid", MAX_ID_BYTES)
+        except _Bad as bad:
+            dead.append(Dead(fields, bad.reason, bad.kind, f"{stream} {eid.decode()}"))
+            continue
+        answers.append(Answer(a, b, same, source, qid))
+        aids.append(aid)
+        origins.append(f"{stream} {eid.decode()}")
+    return out
+
+
+def _unpack_pack(pack: bytes) -> list[Any]:
+    if len(pack) > MAX_PACK_BYTES:
+        raise _Bad(TOO_LARGE, f"pack is {len(pack)} bytes; the limit is {MAX_PACK_BYTES}")
+    try:
+        data = msgpack.unpackb(
+            pack, raw=False, strict_map_key=False, max_array_len=MAX_PACK_ANSWERS,
+            max_map_len=MAX_PACK_FIELDS, max_str_len=MAX_PACK_BYTES,
+            max_bin_len=MAX_PACK_BYTES, max_ext_len=0,
+        )
+    except ValueError as exc:  # includes the length limits above and bad UTF-8
+        text = str(exc)
+        if "exceeds max_array_len" in text:
+            raise _Bad(TOO_LARGE, f"pack holds more than {MAX_PACK_ANSWERS} answers") from None
+        raise _Bad(BAD_PACK, f"pack is not valid msgpack within the limits ({text})") from None
+    except Exception as exc:  # noqa: BLE001 - msgpack raises several unrelated types
+        raise _Bad(BAD_PACK, f"pack is not valid msgpack ({type(exc).__name__})") from None
+    if not isinstance(data, list):
+        raise _Bad(BAD_PACK, f"pack must be a msgpack array (got {type(data).__name__})")
+    if not data:
+        raise _Bad(BAD_PACK, "pack is an empty array")
+    return data
+
+
+def _decode_pack(stream: str, eid: bytes, fields: dict[bytes, bytes], pack: bytes,
+                 out: Decoded) -> None:
+    origin = f"{stream} {eid.decode()}"
+    try:
+        if len(fields) != 1:
+            raise _Bad(MALFORMED, "a pack entry carries only the field pack")
+        data = _unpack_pack(pack)
+    except _Bad as bad:
+        out.dead.append(Dead(fields, bad.reason, bad.kind, origin))
+        return
+    answers, aids, origins = out.answers, out.aids, out.origins
+    for i, el in enumerate(data):
+        try:
+            if not isinstance(el, dict):
+                raise _Bad(MALFORMED, f"pack element must be a map (got {type(el).__name__})")
+            va, vb, vs = el.get("a"), el.get("b"), el.get("same")
+            if va is None or vb is None or vs is None:
+                missing = [n for n, v in (("a", va), ("b", vb), ("same", vs)) if v is None]
+                raise _Bad(MALFORMED, "missing field " + ", ".join(missing))
+            a = _stext(va, "a", MAX_KEY_BYTES)
+            b = _stext(vb, "b", MAX_KEY_BYTES)
+            if a == b:
+                raise _Bad(BAD_VALUE, "a and b are the same item")
+            if vs is True or vs is False:
+                same = vs
+            elif type(vs) is int and (vs == 0 or vs == 1):
+                same = vs == 1
+            elif vs in ("1", "0", b"1", b"0"):
+                same = vs in ("1", b"1")
+            else:
+                raise _Bad(BAD_VALUE, "same must be 1, 0, true or false")
+            v = el.get("source")
+            source = "" if v is None else _stext(v, "source", MAX_SOURCE_BYTES)
+            v = el.get("qid")
+            qid = None if v is None else _stext(v, "qid", MAX_ID_BYTES)
+            v = el.get("aid")
+            aid = None if v is None else _stext(v, "aid", MAX_ID_BYTES)
+        except _Bad as bad:
+            shown = el if isinstance(el, dict) else {"element": el}
+            out.dead.append(Dead(dict(shown), bad.reason, bad.kind, f"{origin}#{i}"))
+            continue
+        answers.append(Answer(a, b, same, source, qid))
+        aids.append(aid)
+        origins.append(f"{origin}#{i}")
+
+
+# -- encoding of the worker's own outputs ---------------------------------------------------
+
+
+def pack_answers(answers: Sequence[Answer], aids: Sequence[str | None] | None = None) -> bytes:
+    """The ``pack`` field value for a batch of answers (used by clients, tests, benches)."""
+    rows = []
+    for i, ans in enumerate(answers):
+        m: dict[str, Any] = {"a": ans.a, "b": ans.b, "same": 1 if ans.same else 0}
+        if ans.source:
+            m["source"] = ans.source
+        if ans.qid is not None:
+            m["qid"] = ans.qid
+        if aids is not None and aids[i] is not None:
+            m["aid"] = aids[i]
+        rows.append(m)
+    return msgpack.packb(rows, use_bin_type=True)
+
+
+def answer_fields(ans: Answer, aid: str | None = None) -> dict[str, str]:
+    """The fields of a one-answer ``{NS}:answers`` entry."""
+    f = {"a": ans.a, "b": ans.b, "same": "1" if ans.same else "0"}
+    if ans.source:
+        f["source"] = ans.source
+    if ans.qid is not None:
+        f["qid"] = ans.qid
+    if aid is not None:
+        f["aid"] = aid
+    return f
+
+
+def decode_questions(entries: Iterable[Entry]) -> list[dict[str, Any]]:
+    """Read ``{NS}:questions`` entries (plain or packed) into dicts (for adapters, tests)."""
+    out: list[dict[str, Any]] = []
+    for _eid, fields in entries:
+        pack = fields.get(b"pack")
+        if pack is not None:
+            out.extend(msgpack.unpackb(pack, raw=False))
+        else:
+            out.append({k.decode(): v.decode() for k, v in fields.items()})
+    return out

@@ -1,0 +1,133 @@
+"""Entry decoding and validation: good entries decode, bad ones become readable dead letters."""
+
+from __future__ import annotations
+
+import msgpack
+import pytest
+
+from streamgroup.core.types import Answer
+from streamgroup.keys import MAX_PACK_ANSWERS, MAX_PACK_BYTES
+from streamgroup.stream import codec
+from streamgroup.stream.codec import decode_answers, decode_items, pack_answers
+
+S = "{t}:answers"
+
+
+def _e(i: int, **fields: object) -> tuple[bytes, dict[bytes, bytes]]:
+    return (f"{i}-0".encode(), {k.encode(): v if isinstance(v, bytes) else str(v).encode()
+                                for k, v in fields.items()})
+
+
+def test_plain_answer_decodes_with_optional_fields() -> None:
+    """A full answer entry yields one Answer with source, qid and its aid alongside."""
+    d = decode_answers(S, [_e(1, a="shard-1", b="shard-2", same="1", source="s1", qid="7",
+                              aid="p-1"), _e(2, a="shard-1", b="shard-3", same="0")])
+    assert d.answers == [Answer("shard-1", "shard-2", True, "s1", "7"),
+                         Answer("shard-1", "shard-3", False, "", None)]
+    assert d.aids == ["p-1", None]
+    assert d.origins == [f"{S} 1-0", f"{S} 2-0"]
+    assert not d.dead
+
+
+@pytest.mark.parametrize("fields, kind, words", [
+    ({"b": "x", "same": "1"}, codec.MALFORMED, "missing field a"),
+    ({"a": "x", "b": "y"}, codec.MALFORMED, "missing field same"),
+    ({"a": "x", "b": "x", "same": "1"}, codec.BAD_VALUE, "same item"),
+    ({"a": "x", "b": "y", "same": "yes"}, codec.BAD_VALUE, "same must be 1 or 0"),
+    ({"a": "", "b": "y", "same": "1"}, codec.BAD_KEY, "a must be 1 to 256 bytes"),
+    ({"a": "k" * 257, "b": "y", "same": "1"}, codec.BAD_KEY, "a must be 1 to 256 bytes"),
+    ({"a": "x\ny", "b": "y", "same": "1"}, codec.BAD_KEY, "control character"),
+    ({"a": "x\u0085", "b": "y", "same": "1"}, codec.BAD_KEY, "control character"),
+    ({"a": b"\xff\xfe", "b": "y", "same": "1"}, codec.BAD_KEY, "not valid UTF-8"),
+    ({"a": "x", "b": "y", "same": "1", "source": "s" * 129}, codec.BAD_VALUE, "source"),
+    ({"a": "x", "b": "y", "same": "1", "qid": ""}, codec.BAD_VALUE, "qid"),
+    ({"a": "x", "b": "y", "same": "1", "aid": "a" * 129}, codec.BAD_VALUE, "aid"),
+])
+def test_bad_answer_entries_become_dead_letters(fields, kind, words) -> None:
+    """Each malformed answer is rejected alone, with a reason naming the problem."""
+    good = _e(1, a="p", b="q", same="1")
+    d = decode_answers(S, [good, _e(2, **fields), _e(3, a="p", b="r", same="0")])
+    assert [x.b for x in d.answers] == ["q", "r"]
+    assert len(d.dead) == 1
+    dead = d.dead[0]
+    assert dead.kind == kind
+    assert words in dead.reason
+    assert dead.origin == f"{S} 2-0"
+    out = dead.to_fields()
+    assert out["reason"] == dead.reason and out["origin"] == f"{S} 2-0"
+    assert set(fields) <= set(out)
+
+
+def test_item_entries_validate_key_and_side() -> None:
+    """Items need a valid key; an optional side is checked like a key; bad ones die alone."""
+    d = decode_items("{t}:items", [_e(1, key="shard-1"), _e(2, key="shard-2", side="north"),
+                                   _e(3, side="north"), _e(4, key="a\tb"),
+                                   _e(5, key="k", side="s" * 65)])
+    assert d.items == [("shard-1", None), ("shard-2", "north")]
+    assert [x.kind for x in d.dead] == [codec.MALFORMED, codec.BAD_KEY, codec.BAD_VALUE]
+
+
+def test_deleted_pending_entries_are_counted_not_decoded() -> None:
+    """A pending entry whose content was deleted (empty fields) is counted as missing."""
+    d = decode_answers(S, [(b"1-0", {}), _e(2, a="p", b="q", same="1")])
+    assert d.missing == 1 and len(d.answers) == 1 and not d.dead
+
+
+def test_packed_answers_round_trip_with_bool_and_int_same() -> None:
+    """A pack of maps decodes to the same answers, same as 0/1 or a bool, in order."""
+    answers = [Answer(f"k{i}", f"k{i + 1}", i % 2 == 0, f"s{i % 3}", str(i) if i % 2 else None)
+               for i in range(50)]
+    payload = pack_answers(answers, [f"aid{i}" if i % 5 == 0 else None for i in range(50)])
+    d = decode_answers(S, [(b"9-1", {b"pack": payload})])
+    assert d.answers == answers
+    assert d.aids[0] == "aid0" and d.aids[1] is None
+    assert d.origins[3] == f"{S} 9-1#3"
+    raw = msgpack.packb([{"a": "x", "b": "y", "same": True}, {"a": "x", "b": "z", "same": 0}])
+    d = decode_answers(S, [(b"1-0", {b"pack": raw})])
+    assert [x.same for x in d.answers] == [True, False]
+
+
+def test_bad_elements_of_a_pack_die_alone() -> None:
+    """In a well-formed pack, each bad element is dead-lettered with its index; the rest apply."""
+    raw = msgpack.packb([
+        {"a": "x", "b": "y", "same": 1},
+        {"a": "x", "b": "x", "same": 1},
+        "not a map",
+        {"a": "x", "b": "y", "same": 2},
+        {"a": "x", "b": ["nested"], "same": 1},
+        {"a": "x", "b": "w", "same": 0, "source": 5},
+        {"a": "x", "b": "v", "same": 0},
+    ])
+    d = decode_answers(S, [(b"4-0", {b"pack": raw})])
+    assert [x.b for x in d.answers] == ["y", "v"]
+    assert [x.origin for x in d.dead] == [f"{S} 4-0#{i}" for i in (1, 2, 3, 4, 5)]
+    assert [x.kind for x in d.dead] == [codec.BAD_VALUE, codec.MALFORMED, codec.BAD_VALUE,
+                                        codec.BAD_VALUE, codec.BAD_VALUE]
+    assert all(isinstance(v, str) for x in d.dead for v in x.to_fields().values())
+
+
+@pytest.mark.parametrize("fields, kind", [
+    ({b"pack": b"\xc1"}, codec.BAD_PACK),  # 0xc1 is never used in msgpack
+    ({b"pack": msgpack.packb({"a": "x"})}, codec.BAD_PACK),  # a map, not an array
+    ({b"pack": msgpack.packb([])}, codec.BAD_PACK),
+    ({b"pack": msgpack.packb([{"a": "x", "b": "y", "same": 1}]), b"a": b"x"}, codec.MALFORMED),
+    ({b"pack": msgpack.packb([{"a": "x", "b": "y", "same": 1}] * (MAX_PACK_ANSWERS + 1))},
+     codec.TOO_LARGE),
+    ({b"pack": msgpack.packb(["x" * (MAX_PACK_BYTES // 1000)] * 1001)}, codec.TOO_LARGE),
+    ({b"pack": msgpack.packb([{str(i): i for i in range(codec.MAX_PACK_FIELDS + 1)}])},
+     codec.BAD_PACK),
+])
+def test_structurally_bad_packs_die_whole(fields, kind) -> None:
+    """A pack beyond the size, count or shape limits is rejected whole: nothing applies."""
+    d = decode_answers(S, [(b"5-0", fields), _e(6, a="p", b="q", same="1")])
+    assert len(d.answers) == 1 and d.answers[0].b == "q"
+    assert len(d.dead) == 1 and d.dead[0].kind == kind
+    assert d.dead[0].origin == f"{S} 5-0"
+
+
+def test_dead_letter_never_masks_reason_and_origin() -> None:
+    """An entry that carries its own reason/origin fields keeps them under a prefixed name."""
+    d = decode_answers(S, [_e(1, a="p", reason="mine", origin="elsewhere")])
+    out = d.dead[0].to_fields()
+    assert out["_reason"] == b"mine" and out["_origin"] == b"elsewhere"
+    assert out["reason"].startswith("missing field")
