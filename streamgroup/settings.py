@@ -46,6 +46,11 @@ class Settings:
     log_level: str = "info"
     log_format: str = "auto"  # auto | json | console
     grace: float = 10.0  # seconds allowed to finish the batch in hand on SIGTERM
+    aid_window: int = 100_000  # recent producer aids remembered for deduplication
+    questions_maxlen: int = 100_000  # approximate caps of the output streams (0 = none)
+    decisions_maxlen: int = 100_000
+    dead_maxlen: int = 100_000
+    history_every: float = 5.0  # seconds between progress samples in {NS}:history
 
     def __post_init__(self) -> None:
         def bad(name: str, why: str) -> ConfigError:
@@ -58,7 +63,7 @@ class Settings:
             raise bad("ns", "use 1-64 letters, digits, '_', '.' or '-'")
         if not (0.0 < self.alpha < 0.5) or math.isnan(self.alpha):
             raise bad("alpha", "must be in (0, 0.5)")
-        for name in ("inflight", "max_outstanding", "item_ceiling", "batch"):
+        for name in ("inflight", "max_outstanding", "item_ceiling", "batch", "aid_window"):
             if getattr(self, name) < 1:
                 raise bad(name, "must be at least 1")
         if self.inflight > 64:
@@ -67,7 +72,11 @@ class Settings:
             raise bad("budget", "must be 0 (unlimited) or positive")
         if not (0.0 <= self.check_rate <= 0.5):
             raise bad("check_rate", "must be in [0, 0.5]")
-        for name in ("question_timeout", "claim_idle", "snapshot_every", "grace"):
+        for name in ("questions_maxlen", "decisions_maxlen", "dead_maxlen"):
+            if getattr(self, name) < 0:
+                raise bad(name, "must be 0 (uncapped) or positive")
+        for name in ("question_timeout", "claim_idle", "snapshot_every", "grace",
+                     "history_every"):
             v = getattr(self, name)
             if not (v > 0) or math.isinf(v):
                 raise bad(name, "must be a positive number of seconds")

@@ -44,6 +44,11 @@ SETTING_HELP: dict[str, str] = {
     "log_level": "debug, info, warning or error",
     "log_format": "json, console, or auto (console on a terminal)",
     "grace": "seconds allowed to commit the batch in hand after SIGTERM",
+    "aid_window": "how many recent producer aids are remembered to drop repeated answers",
+    "questions_maxlen": "approximate cap (MAXLEN ~) of {NS}:questions; 0 = uncapped",
+    "decisions_maxlen": "approximate cap (MAXLEN ~) of {NS}:decisions; 0 = uncapped",
+    "dead_maxlen": "approximate cap (MAXLEN ~) of {NS}:dead; 0 = uncapped",
+    "history_every": "seconds between progress samples written to {NS}:history",
 }
 
 CONNECTION_SETTINGS = ("redis", "ns")

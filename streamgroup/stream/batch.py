@@ -1,0 +1,155 @@
+"""Processing one batch of entries purely: decode, filter, apply to the engine, plan.
+
+No I/O here: the worker hands in the entries it read and gets back everything the commit
+needs. The engine is mutated; the caller either commits the result or throws the whole
+in-memory state away and reloads it from Redis.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from dataclasses import dataclass, field
+
+from ..core.types import APPLIED, Answer, Question, Record
+from ..errors import EngineInputError
+from .codec import ENGINE, UNKNOWN_QID, Dead, Entry, decode_answers, decode_items
+from .state import OP_ANSWERS, OP_ITEMS, Batch, WorkerState, answers_payload
+
+
+@dataclass
+class Outcome:
+    """Everything a processed batch hands to the commit and the metrics."""
+
+    batch: Batch
+    records: list[Record] = field(default_factory=list)
+    decisions: list[Record] = field(default_factory=list)
+    questions: list[Question] = field(default_factory=list)
+    dead: list[tuple[str, Dead]] = field(default_factory=list)  # (input stream, letter)
+    counts: Counter[str] = field(default_factory=Counter)
+
+
+def _engine_kind(reason: str) -> str:
+    return UNKNOWN_QID if "qid" in reason else ENGINE
+
+
+def _apply_items(state: WorkerState, items: list[tuple[str, str | None]],
+                 origins: list[str], stream: str, out: Outcome) -> None:
+    counts = out.counts
+    try:
+        results = state.apply_items(items)
+        out.batch.ops.append([OP_ITEMS, [[k, s] for k, s in items]])
+    except EngineInputError:
+        # Some item is bad (or clashes with another one of this batch): apply one at a
+        # time so the good ones still go in and each bad one gets its own reason.
+        results = []
+        for (key, side), origin in zip(items, origins, strict=True):
+            reason = state.engine.validate_item(key, side)
+            if reason is None:
+                try:
+                    results.extend(state.apply_items([(key, side)]))
+                    out.batch.ops.append([OP_ITEMS, [[key, side]]])
+                    continue
+                except EngineInputError as exc:
+                    reason = str(exc)
+            fields = {"key": key} if side is None else {"key": key, "side": side}
+            out.dead.append((stream, Dead(fields, reason, ENGINE, origin)))
+            counts["dead:" + ENGINE] += 1
+    applied = sum(1 for r in results if r == APPLIED)
+    counts["items_applied"] += applied
+    counts["dup:item"] += len(results) - applied
+
+
+def _apply_answers(state: WorkerState, answers: list[Answer], aids: list[str | None],
+                   origins: list[str], stream: str, now_ms: int, out: Outcome) -> None:
+    counts, batch = out.counts, out.batch
+    window = state.aids
+    if any(a is not None for a in aids):
+        keep_a: list[Answer] = []
+        keep_aid: list[str | None] = []
+        keep_o: list[str] = []
+        fresh: set[str] = set()
+        for ans, aid, origin in zip(answers, aids, origins, strict=True):
+            if aid is not None:
+                if aid in fresh or aid in window:
+                    counts["dup:aid"] += 1
+                    continue
+                fresh.add(aid)
+            keep_a.append(ans)
+            keep_aid.append(aid)
+            keep_o.append(origin)
+        answers, aids, origins = keep_a, keep_aid, keep_o
+    if not answers:
+        return
+    try:
+        results = state.apply_answers(answers, now_ms)
+        batch.ops.append([OP_ANSWERS, answers_payload(answers)])
+        batch.aids.extend(a for a in aids if a is not None)
+    except EngineInputError:
+        good: list[Answer] = []
+        good_aids: list[str] = []
+        for ans, aid, origin in zip(answers, aids, origins, strict=True):
+            reason = state.engine.validate_answer(ans)
+            if reason is None:
+                good.append(ans)
+                if aid is not None:
+                    good_aids.append(aid)
+                continue
+            kind = _engine_kind(reason)
+            out.dead.append((stream, Dead(_answer_fields(ans, aid), reason, kind, origin)))
+            counts["dead:" + kind] += 1
+        results = []
+        if good:
+            # validate_answer looks at each answer alone; answers of one batch do not
+            # depend on one another, so the rest goes in as one call.
+            results = state.apply_answers(good, now_ms)
+            batch.ops.append([OP_ANSWERS, answers_payload(good)])
+            batch.aids.extend(good_aids)
+        answers = good
+    for ans, r in zip(answers, results, strict=True):
+        if r == APPLIED:
+            counts["applied"] += 1
+        else:
+            counts["dup:qid" if ans.qid is not None else "dup:pair_source"] += 1
+
+
+def _answer_fields(ans: Answer, aid: str | None) -> dict[str, str]:
+    f = {"a": ans.a, "b": ans.b, "same": "1" if ans.same else "0"}
+    if ans.source:
+        f["source"] = ans.source
+    if ans.qid is not None:
+        f["qid"] = ans.qid
+    if aid is not None:
+        f["aid"] = aid
+    return f
+
+
+def process(state: WorkerState, items_stream: str, items: list[Entry],
+            answers_stream: str, answers: list[Entry], now_ms: int) -> Outcome:
+    """Apply one batch (items before answers), plan, and collect what must be committed."""
+    out = Outcome(Batch(state.seq + 1, now_ms))
+    counts = out.counts
+    if items:
+        di = decode_items(items_stream, items)
+        counts["entries:items"] += len(items)
+        counts["missing"] += di.missing
+        for d in di.dead:
+            out.dead.append((items_stream, d))
+            counts["dead:" + d.kind] += 1
+        if di.items:
+            _apply_items(state, di.items, di.origins, items_stream, out)
+    if answers:
+        da = decode_answers(answers_stream, answers)
+        counts["entries:answers"] += len(answers)
+        counts["missing"] += da.missing
+        for d in da.dead:
+            out.dead.append((answers_stream, d))
+            counts["dead:" + d.kind] += 1
+        if da.answers:
+            _apply_answers(state, da.answers, da.aids, da.origins, answers_stream, now_ms, out)
+    out.questions = state.engine.plan(now_ms)
+    out.records = state.engine.take_changes()
+    for k in [k for k, v in counts.items() if not v]:
+        del counts[k]
+    out.batch.counts = counts
+    out.decisions = state.finish(out.batch, out.records)
+    return out

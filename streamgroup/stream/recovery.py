@@ -1,0 +1,140 @@
+"""Start-up: connect, check the deployment epoch, load the snapshot and replay the journal.
+
+The committed state of a namespace is ``{NS}:snapshot`` plus the ``{NS}:journal`` entries
+written after it (one per committed batch). The epoch key ``{NS}:epoch`` is written once,
+in the same transaction as the first snapshot, so the two always exist together. Any
+other combination means data was lost or the keys were mixed up, and the worker refuses
+to start rather than silently starting over (which would re-spend every paid answer).
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from collections.abc import Iterator
+from typing import Any
+
+import redis
+from redis.backoff import NoBackoff
+from redis.retry import Retry
+
+from ..errors import StateError
+from ..keys import GROUP, Keys
+from ..settings import Settings
+from .state import Batch, WorkerState
+
+JOURNAL_CHUNK = 200  # journal entries fetched per XRANGE during replay
+
+
+def connect(settings: Settings) -> redis.Redis:
+    """A client that never retries on its own.
+
+    redis-py's default retry would re-send a MULTI/EXEC whose reply was lost, and so could
+    commit a batch twice; the worker retries itself, after reloading its state.
+    """
+    timeout = max(10.0, settings.block_ms / 1000.0 + 10.0)
+    return redis.Redis.from_url(
+        settings.redis, decode_responses=False, retry=Retry(NoBackoff(), 0),
+        socket_timeout=timeout, socket_connect_timeout=5.0, socket_keepalive=True,
+        health_check_interval=0, single_connection_client=True,
+    )
+
+
+def ensure_groups(client: redis.Redis, keys: Keys) -> None:
+    """Create the worker's group on both input streams (reading from the very start)."""
+    for stream in (keys.items, keys.answers):
+        try:
+            client.xgroup_create(stream, GROUP, id="0", mkstream=True)
+        except redis.ResponseError as exc:
+            if "BUSYGROUP" not in str(exc):
+                raise
+
+
+def new_epoch(now: float) -> str:
+    return f"{int(now * 1000)}-{os.urandom(6).hex()}"
+
+
+def load_state(client: redis.Redis, keys: Keys, settings: Settings,
+               clock: Any = time.time) -> WorkerState:
+    """The committed state of the namespace, creating it on the very first start."""
+    pipe = client.pipeline(transaction=False)
+    pipe.get(keys.epoch)
+    pipe.get(keys.snapshot)
+    pipe.exists(keys.journal)
+    pipe.exists(keys.assign)
+    epoch_raw, snap, has_journal, has_assign = pipe.execute()
+    if epoch_raw is None:
+        present = [name for name, there in (("snapshot", snap is not None),
+                                            ("journal", has_journal), ("assign", has_assign))
+                   if there]
+        if present:
+            raise StateError(
+                f"namespace {keys.ns!r} has {', '.join(present)} but no epoch key "
+                f"{keys.epoch}: its state is incomplete or foreign; refusing to start over "
+                f"(delete the namespace's keys to start afresh)")
+        return _create(client, keys, settings, clock)
+    epoch = epoch_raw.decode()
+    if snap is None:
+        raise StateError(
+            f"namespace {keys.ns!r} has epoch {epoch} but no snapshot {keys.snapshot}: the "
+            f"committed state was lost (a Redis restart without persistence?); refusing "
+            f"to start over")
+    state = WorkerState.from_snapshot(snap, epoch, settings.aid_window)
+    replay_journal(client, keys, state)
+    return state
+
+
+def _create(client: redis.Redis, keys: Keys, settings: Settings, clock: Any) -> WorkerState:
+    epoch = new_epoch(clock())
+    state = WorkerState.fresh(settings.engine_config(), epoch, settings.aid_window)
+    pipe = client.pipeline(transaction=True)
+    pipe.set(keys.epoch, epoch, nx=True)
+    pipe.set(keys.snapshot, state.snapshot_bytes(int(clock() * 1000)), nx=True)
+    created, _ = pipe.execute()
+    if not created:  # another worker created the namespace a moment ago: use its state
+        return load_state(client, keys, settings, clock)
+    return state
+
+
+def journal_entries(client: redis.Redis, keys: Keys) -> Iterator[Batch]:
+    start = "-"
+    while True:
+        rows = client.xrange(keys.journal, min=start, max="+", count=JOURNAL_CHUNK)
+        if not rows:
+            return
+        for _eid, fields in rows:
+            yield Batch.from_journal(fields[b"b"])
+        start = "(" + rows[-1][0].decode()
+
+
+def replay_journal(client: redis.Redis, keys: Keys, state: WorkerState) -> int:
+    """Re-apply every journaled batch newer than the snapshot; returns how many."""
+    n = 0
+    for batch in journal_entries(client, keys):
+        if batch.seq <= state.seq:
+            continue
+        if batch.seq != state.seq + 1:
+            raise StateError(f"journal {keys.journal} jumps from batch {state.seq} to "
+                             f"{batch.seq}: entries are missing")
+        state.replay(batch)
+        n += 1
+    return n
+
+
+def claim_idle(client: redis.Redis, stream: str, consumer: str, idle_ms: int,
+               count: int) -> int:
+    """Move entries idle at other consumers (for longer than ``idle_ms``) to us.
+
+    They then sit in our own pending list and are read with id ``0`` like our own
+    leftovers. Returns how many were claimed.
+    """
+    start = "0-0"
+    claimed = 0
+    while True:
+        reply = client.execute_command("XAUTOCLAIM", stream, GROUP, consumer, idle_ms, start,
+                                       "COUNT", count, "JUSTID")
+        nxt, ids = reply[0], reply[1]
+        claimed += len(ids)
+        if nxt in (b"0-0", "0-0"):
+            return claimed
+        start = nxt

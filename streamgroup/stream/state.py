@@ -1,0 +1,199 @@
+"""The worker's replayable state: the engine plus what the worker itself must remember.
+
+Everything here is rebuilt exactly by ``snapshot + journal replay``:
+
+- the engine (``Engine.snapshot`` / ``Engine.restore``; deterministic, so replaying the
+  journaled calls reproduces the same records, qids and questions);
+- ``seq``: the number of the last committed batch (journal entries carry theirs; replay
+  skips any entry not newer than the snapshot, so a stray repeat can never double-apply);
+- the window of recent ``aid`` values (bounded, FIFO; the journal lists the aids each
+  batch accepted, so replay rebuilds the window exactly);
+- the side/status last published per item, to write ``{NS}:decisions`` only on a change;
+- counters (dead letters by reason, duplicates by kind, ...), journaled as per-batch deltas.
+"""
+
+from __future__ import annotations
+
+from collections import Counter, OrderedDict
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import msgpack
+
+from ..core.engine import Engine
+from ..core.types import Answer, EngineConfig, Record
+from ..errors import StateError
+from ..keys import STATUSES
+
+SNAPSHOT_VERSION = 1
+JOURNAL_VERSION = 1
+DEFAULT_AID_WINDOW = 100_000
+
+# ops in a journal entry, in the order they were applied
+OP_ITEMS = "i"
+OP_ANSWERS = "a"
+
+_STATUS_CODE = {s: i for i, s in enumerate(STATUSES)}
+
+
+class AidWindow:
+    """The most recent ``capacity`` accepted aids; older ones are forgotten (FIFO)."""
+
+    def __init__(self, capacity: int = DEFAULT_AID_WINDOW) -> None:
+        self.capacity = capacity
+        self._seen: OrderedDict[str, None] = OrderedDict()
+
+    def __contains__(self, aid: str) -> bool:
+        return aid in self._seen
+
+    def __len__(self) -> int:
+        return len(self._seen)
+
+    def add(self, aid: str) -> None:
+        seen = self._seen
+        seen[aid] = None
+        if len(seen) > self.capacity:
+            seen.popitem(last=False)
+
+    def extend(self, aids: Iterable[str]) -> None:
+        for aid in aids:
+            self.add(aid)
+
+    def items(self) -> list[str]:
+        return list(self._seen)
+
+
+@dataclass
+class Batch:
+    """What one batch applied: the journal entry's content, plus what to publish."""
+
+    seq: int
+    now_ms: int
+    ops: list[list[Any]] = field(default_factory=list)  # [[op, payload], ...]
+    aids: list[str] = field(default_factory=list)
+    counts: Counter[str] = field(default_factory=Counter)
+
+    def journal_bytes(self) -> bytes:
+        return msgpack.packb(
+            {"v": JOURNAL_VERSION, "s": self.seq, "t": self.now_ms, "ops": self.ops,
+             "aids": self.aids, "c": dict(self.counts)},
+            use_bin_type=True,
+        )
+
+    @staticmethod
+    def from_journal(data: bytes) -> Batch:
+        m = msgpack.unpackb(data, raw=False)
+        if m.get("v") != JOURNAL_VERSION:
+            raise StateError(f"journal entry has version {m.get('v')!r}; "
+                             f"this worker reads version {JOURNAL_VERSION}")
+        return Batch(int(m["s"]), int(m["t"]), m["ops"], m["aids"], Counter(m["c"]))
+
+
+def answers_payload(answers: Sequence[Answer]) -> list[list[Any]]:
+    return [[x.a, x.b, x.same, x.source, x.qid] for x in answers]
+
+
+def answers_from_payload(rows: Sequence[Sequence[Any]]) -> list[Answer]:
+    return [Answer(r[0], r[1], bool(r[2]), r[3], r[4]) for r in rows]
+
+
+class WorkerState:
+    """The engine plus the worker's own replayable memory."""
+
+    def __init__(self, engine: Engine, epoch: str, aid_window: int = DEFAULT_AID_WINDOW
+                 ) -> None:
+        self.engine = engine
+        self.epoch = epoch
+        self.seq = 0
+        self.aids = AidWindow(aid_window)
+        self.counters: Counter[str] = Counter()
+        self.published: dict[str, int] = {}  # key -> code of the side/status last published
+        self._labels: dict[str | None, int] = {None: 0}
+
+    # -- applying -----------------------------------------------------------------------
+    def apply_items(self, items: list[tuple[str, str | None]]) -> list[str]:
+        return self.engine.add_items(items)
+
+    def apply_answers(self, answers: list[Answer], now_ms: int) -> list[str]:
+        return self.engine.add_answers(answers, now_ms)
+
+    def replay(self, batch: Batch) -> None:
+        """Re-run one journaled batch; its questions and records are not published again."""
+        if batch.seq <= self.seq:
+            return  # already covered by the snapshot or a previous entry
+        for op, payload in batch.ops:
+            if op == OP_ITEMS:
+                self.engine.add_items([(k, s) for k, s in payload])
+            elif op == OP_ANSWERS:
+                self.engine.add_answers(answers_from_payload(payload), batch.now_ms)
+            else:
+                raise StateError(f"journal entry {batch.seq} has an unknown op {op!r}")
+        self.engine.plan(batch.now_ms)
+        self.finish(batch, self.engine.take_changes())
+
+    def finish(self, batch: Batch, records: Iterable[Record]) -> list[Record]:
+        """Fold a committed (or replayed) batch into the worker's memory.
+
+        Returns the records whose side or status changed (the decisions to publish).
+        """
+        self.seq = batch.seq
+        self.aids.extend(batch.aids)
+        self.counters.update(batch.counts)
+        changed: list[Record] = []
+        pub = self.published
+        for r in records:
+            code = self._code(r)
+            if pub.get(r.key) != code:
+                pub[r.key] = code
+                changed.append(r)
+        return changed
+
+    def _code(self, r: Record) -> int:
+        labels = self._labels
+        side = labels.get(r.side)
+        if side is None:
+            side = labels[r.side] = len(labels)
+        return side * 8 + _STATUS_CODE.get(r.status, 7)
+
+    # -- snapshots ----------------------------------------------------------------------
+    def snapshot_bytes(self, now_ms: int) -> bytes:
+        labels = sorted(self._labels.items(), key=lambda kv: kv[1])
+        return msgpack.packb(
+            {"v": SNAPSHOT_VERSION, "epoch": self.epoch, "seq": self.seq, "t": now_ms,
+             "engine": self.engine.snapshot(), "aids": self.aids.items(),
+             "counters": dict(self.counters), "labels": [k for k, _ in labels],
+             "pub_keys": list(self.published), "pub_codes": list(self.published.values())},
+            use_bin_type=True,
+        )
+
+    @staticmethod
+    def from_snapshot(data: bytes, epoch: str, aid_window: int) -> WorkerState:
+        try:
+            m = msgpack.unpackb(data, raw=False, strict_map_key=False)
+        except Exception as exc:  # noqa: BLE001 - any decoding failure means the same
+            raise StateError(f"the snapshot cannot be decoded ({type(exc).__name__})"
+                             ) from None
+        if not isinstance(m, dict) or m.get("v") != SNAPSHOT_VERSION:
+            raise StateError("the snapshot has an unknown format or version")
+        if m["epoch"] != epoch:
+            raise StateError(f"the snapshot belongs to epoch {m['epoch']!r}, but the "
+                             f"namespace's epoch is {epoch!r}: the state is inconsistent")
+        st = WorkerState(Engine.restore(m["engine"]), epoch, aid_window)
+        st.seq = int(m["seq"])
+        st.aids.extend(m["aids"])
+        st.counters.update(m["counters"])
+        st._labels = {k: i for i, k in enumerate(m["labels"])}
+        st.published = dict(zip(m["pub_keys"], m["pub_codes"], strict=True))
+        return st
+
+    @staticmethod
+    def fresh(config: EngineConfig, epoch: str, aid_window: int) -> WorkerState:
+        return WorkerState(Engine(config), epoch, aid_window)
+
+    def meta_fields(self) -> Mapping[str, int | str]:
+        """Absolute counter values for ``{NS}:meta`` (idempotent to write)."""
+        out: dict[str, int | str] = {"seq": self.seq, "epoch": self.epoch}
+        for k, v in self.counters.items():
+            out[k] = v
+        return out

@@ -1,0 +1,413 @@
+"""The worker: one short loop of read batch -> process purely -> commit in one MULTI/EXEC.
+
+Reading order after every (re)start: this consumer's own pending entries first (id ``0``),
+then entries left idle by other consumers (XAUTOCLAIM, also re-checked every
+``claim_idle`` seconds), then new entries (``>``). A crash or a lost connection before EXEC
+leaves the batch pending, so it is applied exactly once later; after a lost connection the
+in-memory state is thrown away and reloaded from Redis, because the worker cannot know
+whether the last EXEC took effect.
+
+Exit codes of :meth:`Worker.run`: 0 after a requested stop, 1 after an unexpected error
+(logged with its traceback), 3 when the state in Redis is inconsistent (StateError).
+"""
+
+from __future__ import annotations
+
+import random
+import time
+from collections.abc import Callable
+from typing import Any
+
+import redis
+import structlog
+
+from ..errors import StateError
+from ..keys import GROUP, Keys
+from ..serve.metrics import WorkerMetrics
+from ..settings import Settings
+from . import recovery
+from .batch import Outcome, process
+from .commit import Caps, build_commit, execute
+from .state import WorkerState
+
+EXIT_OK, EXIT_ERROR, EXIT_STATE = 0, 1, 3
+BACKOFF_BASE = 0.1  # seconds; doubled per failed attempt, jittered, capped
+BACKOFF_CAP = 5.0
+IDLE_PLAN_EVERY = 1.0  # seconds between plan() calls while no entries arrive
+GAUGES_EVERY = 0.5  # seconds between refreshes of engine-derived gauges
+GROUP_INFO_EVERY = 5.0  # seconds between XINFO GROUPS reads (lag and pending gauges)
+
+_CONN_ERRORS = (redis.ConnectionError, redis.TimeoutError, ConnectionError, TimeoutError)
+
+log = structlog.get_logger("streamgroup.worker")
+
+
+class Worker:
+    """Drives the engine from ``{NS}:items`` and ``{NS}:answers``; see the module doc."""
+
+    def __init__(self, settings: Settings, metrics: WorkerMetrics | None = None,
+                 clock: Callable[[], float] = time.time) -> None:
+        self.settings = settings
+        self.metrics = metrics
+        self.clock = clock
+        self.keys = Keys(settings.ns)
+        self.caps = Caps(settings.questions_maxlen, settings.decisions_maxlen,
+                         settings.dead_maxlen)
+        self.state: WorkerState | None = None
+        self.client: redis.Redis | None = None
+        self._stop = False
+        self._pending_first = True
+        self._next_claim = 0.0
+        self._next_plan = 0.0
+        self._next_snapshot = 0.0
+        self._next_gauges = 0.0
+        self._next_group_info = 0.0
+        self._next_history = 0.0
+        self._revisions_seen = 0
+        self.batches = 0
+        self.retries = 0
+        self.health: Any = None
+
+    # -- control ------------------------------------------------------------------------
+    def request_stop(self) -> None:
+        """Ask the loop to stop after the batch in hand (safe from a signal handler)."""
+        self._stop = True
+
+    @property
+    def stopping(self) -> bool:
+        return self._stop
+
+    def run(self) -> int:
+        """Connect, recover, loop until stopped; return the process exit code."""
+        http = None
+        self._log = log.bind(ns=self.settings.ns, consumer=self.settings.consumer_name)
+        try:
+            http = self._start_http()
+            self.start()
+            while not self._stop:
+                self.step()
+            self._final_snapshot()
+            self._log.info("worker stopped", reason="stop requested", batches=self.batches)
+            return EXIT_OK
+        except StateError as exc:
+            self._log.error("worker stopped", reason="inconsistent state", error=str(exc))
+            return EXIT_STATE
+        except _Stopped:
+            self._log.info("worker stopped", reason="stop requested while reconnecting")
+            return EXIT_OK
+        except Exception:  # noqa: BLE001 - the supervisor restarts us; say why first
+            self._log.exception("worker stopped", reason="unexpected error")
+            return EXIT_ERROR
+        finally:
+            if self.health is not None:
+                self.health.set_ready(False)
+            if http is not None:
+                http.close()
+            self.close()
+
+    def _start_http(self) -> Any:
+        if not self.settings.metrics_addr:
+            return None
+        from ..serve.http import Health, start_http
+
+        if self.metrics is None:
+            self.metrics = WorkerMetrics()
+        self.health = Health(metrics=self.metrics)
+        return start_http(self.settings.metrics_addr, self.metrics, self.health)
+
+    def start(self) -> None:
+        """Connect and load the committed state (retrying while Redis is unreachable)."""
+        if not hasattr(self, "_log"):
+            self._log = log.bind(ns=self.settings.ns, consumer=self.settings.consumer_name)
+        self._with_backoff(self._recover)
+
+    def close(self) -> None:
+        if self.client is not None:
+            self.client.close()
+            self.client = None
+
+    def _recover(self) -> None:
+        self.close()
+        self.state = None
+        client = recovery.connect(self.settings)
+        client.ping()
+        recovery.ensure_groups(client, self.keys)
+        t0 = time.monotonic()
+        self.state = recovery.load_state(client, self.keys, self.settings, self.clock)
+        self.client = client
+        self._pending_first = True
+        self._next_claim = 0.0
+        now = self.clock()
+        self._next_snapshot = now + self.settings.snapshot_every
+        self._revisions_seen = int(self.state.engine.stats()["revisions"])
+        self._log.info("state loaded", seq=self.state.seq, epoch=self.state.epoch,
+                       seconds=round(time.monotonic() - t0, 3))
+        if self.metrics is not None:
+            if hasattr(self.metrics, "budget"):
+                self.metrics.budget.set(self.settings.budget)
+            self._refresh_gauges(force=True)
+        if self.health is not None:
+            self.health.set_ready(True)
+
+    def _with_backoff(self, fn: Callable[[], Any]) -> Any:
+        attempt = 0
+        while True:
+            try:
+                return fn()
+            except _CONN_ERRORS as exc:
+                attempt += 1
+                self.retries += 1
+                if self.metrics is not None:
+                    self.metrics.redis_retries.inc()
+                if self.health is not None:
+                    self.health.set_ready(False)
+                delay = min(BACKOFF_CAP, BACKOFF_BASE * 2 ** min(attempt, 16))
+                delay *= random.uniform(0.5, 1.0)
+                self._log.warning("redis unreachable; retrying", error=str(exc),
+                                  attempt=attempt, delay=round(delay, 3))
+                self._sleep(delay)
+
+    def _sleep(self, seconds: float) -> None:
+        deadline = time.monotonic() + seconds
+        while True:
+            if self._stop:
+                raise _Stopped
+            left = deadline - time.monotonic()
+            if left <= 0:
+                return
+            time.sleep(min(left, 0.05))
+
+    # -- the loop -----------------------------------------------------------------------
+    def step(self) -> int:
+        """One turn: read a batch, process it, commit it. Returns the entries consumed."""
+        try:
+            return self._turn()
+        except _CONN_ERRORS as exc:
+            self.retries += 1
+            if self.metrics is not None:
+                self.metrics.redis_retries.inc()
+            self._log.warning("connection lost; reloading state", error=str(exc))
+            if self.health is not None:
+                self.health.set_ready(False)
+            self.state = None
+            self._sleep(BACKOFF_BASE * random.uniform(0.5, 1.0))
+            self._with_backoff(self._recover)
+            return 0
+
+    def run_until(self, predicate: Callable[[Worker], bool], timeout: float) -> bool:
+        """Start if needed and step until ``predicate(self)`` holds (for tests)."""
+        if self.state is None:
+            self.start()
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if predicate(self):
+                return True
+            self.step()
+        return predicate(self)
+
+    def _turn(self) -> int:
+        assert self.client is not None and self.state is not None
+        client, keys, s = self.client, self.keys, self.settings
+        now = self.clock()
+        if not self._pending_first and now >= self._next_claim:
+            self._claim(now)
+        if self._pending_first:
+            ids, block = ("0", "0"), None
+        else:
+            ids, block = (">", ">"), (None if self._stop else s.block_ms)
+        t0 = time.perf_counter()
+        reply = client.xreadgroup(GROUP, s.consumer_name, {keys.items: ids[0],
+                                                           keys.answers: ids[1]},
+                                  count=s.batch, block=block)
+        items: list[Any] = []
+        answers: list[Any] = []
+        for name, entries in reply or ():
+            if name == keys.items.encode():
+                items = entries
+            else:
+                answers = entries
+        n = len(items) + len(answers)
+        if n == 0:
+            if self._pending_first:
+                self._pending_first = False
+                return 0
+            now = self.clock()
+            if now < self._next_plan or not self._worth_planning():
+                self._periodic(now)
+                return 0
+        now = self.clock()
+        out = process(self.state, keys.items, items, keys.answers, answers, int(now * 1000))
+        self._commit(out, items, answers, now)
+        self._next_plan = now + IDLE_PLAN_EVERY
+        self.batches += 1
+        self._after_batch(out, time.perf_counter() - t0, now)
+        return n
+
+    def _worth_planning(self) -> bool:
+        """With no input, plan() matters only while some item is still undecided."""
+        assert self.state is not None
+        items = self.state.engine.stats()["items"]
+        return bool(items.get("waiting", 0) or items.get("asking", 0))
+
+    def _commit(self, out: Outcome, items: list[Any], answers: list[Any], now: float) -> None:
+        assert self.client is not None and self.state is not None
+        state, keys = self.state, self.keys
+        snapshot = None
+        if now >= self._next_snapshot:
+            snapshot = state.snapshot_bytes(int(now * 1000))
+            self._next_snapshot = now + self.settings.snapshot_every
+        plan = build_commit(
+            keys, self.caps, records=out.records, decisions=out.decisions,
+            questions=out.questions, dead=[d for _, d in out.dead],
+            journal=None if snapshot is not None else out.batch.journal_bytes(),
+            snapshot=snapshot, meta=state.meta_fields(),
+            acks={keys.items: [e[0] for e in items], keys.answers: [e[0] for e in answers]},
+            group=GROUP, pack_questions=self.settings.pack_questions,
+        )
+        execute(self.client, plan)
+
+    def _final_snapshot(self) -> None:
+        """On a clean stop, fold the journal into a snapshot so the next start is quick."""
+        if self.client is None or self.state is None:
+            return
+        try:
+            plan = build_commit(
+                self.keys, self.caps, records=[], decisions=[], questions=[], dead=[],
+                journal=None, snapshot=self.state.snapshot_bytes(int(self.clock() * 1000)),
+                meta=self.state.meta_fields(), acks={}, group=GROUP, pack_questions=False)
+            execute(self.client, plan)
+        except _CONN_ERRORS as exc:  # nothing is lost: the journal still holds it all
+            self._log.warning("final snapshot skipped", error=str(exc))
+
+    def _claim(self, now: float) -> None:
+        assert self.client is not None
+        idle_ms = int(self.settings.claim_idle * 1000)
+        claimed = 0
+        for stream in (self.keys.items, self.keys.answers):
+            claimed += recovery.claim_idle(self.client, stream, self.settings.consumer_name,
+                                           idle_ms, self.settings.batch)
+        self._next_claim = now + self.settings.claim_idle / 2
+        if claimed:
+            self._log.info("claimed idle entries of other consumers", entries=claimed)
+            self._pending_first = True
+
+    # -- metrics and progress -----------------------------------------------------------
+    def _after_batch(self, out: Outcome, seconds: float, now: float) -> None:
+        if self.health is not None:
+            self.health.beat()
+        m = self.metrics
+        if m is not None:
+            c = out.counts
+            m.batches.inc()
+            m.batch_seconds.observe(seconds)
+            if c["applied"]:
+                m.answers_applied.inc(c["applied"])
+            if c["items_applied"]:
+                m.items_added.inc(c["items_applied"])
+            for kind in ("qid", "aid", "pair_source", "item"):
+                if c["dup:" + kind]:
+                    m.answers_duplicate.labels(kind=kind).inc(c["dup:" + kind])
+            for stream, d in out.dead:
+                m.entries_rejected.labels(stream=stream.rsplit(":", 1)[-1],
+                                          reason=d.kind).inc()
+            if out.questions:
+                whys: dict[str, int] = {}
+                for q in out.questions:
+                    whys[q.why] = whys.get(q.why, 0) + 1
+                for why, k in whys.items():
+                    m.questions_issued.labels(why=why).inc(k)
+            take = getattr(self.state.engine, "take_latencies", None) if self.state else None
+            if take is not None:
+                for sec in take():
+                    m.decision_seconds.observe(sec)
+        self._periodic(now)
+
+    def _periodic(self, now: float) -> None:
+        if self.health is not None:
+            self.health.beat()
+        self._refresh_gauges()
+        if now >= self._next_history:
+            self._next_history = now + self.settings.history_every
+            self._write_history(now)
+        if self.metrics is not None and now >= self._next_group_info:
+            self._next_group_info = now + GROUP_INFO_EVERY
+            self._group_info()
+
+    def _refresh_gauges(self, force: bool = False) -> None:
+        m, state = self.metrics, self.state
+        if m is None or state is None:
+            return
+        t = time.monotonic()
+        if not force and t < self._next_gauges:
+            return
+        self._next_gauges = t + GAUGES_EVERY
+        st = state.engine.stats()
+        m.set_items(st["items"])
+        m.spend.set(st["spend"])
+        m.questions_outstanding.set(st["outstanding"])
+        m.noise_pooled.set(st["pooled_delta"])
+        rev = int(st["revisions"])
+        if rev > self._revisions_seen:
+            m.revisions.inc(rev - self._revisions_seen)
+        self._revisions_seen = rev
+        m.set_sources(state.engine.sources())
+
+    def _write_history(self, now: float) -> None:
+        if self.client is None or self.state is None:
+            return
+        st = self.state.engine.stats()
+        items = st["items"]
+        self.client.xadd(self.keys.history, {
+            "ts": int(now * 1000), "placed": items.get("placed", 0),
+            "asking": items.get("asking", 0), "waiting": items.get("waiting", 0),
+            "unresolved": items.get("unresolved", 0), "spend": st["spend"],
+            "outstanding": st["outstanding"]}, maxlen=self.caps.history, approximate=True)
+
+    def _group_info(self) -> None:
+        assert self.client is not None and self.metrics is not None
+        for stream, label in ((self.keys.items, "items"), (self.keys.answers, "answers")):
+            for g in self.client.xinfo_groups(stream):
+                if g.get("name") in (GROUP.encode(), GROUP):
+                    lag = g.get("lag")
+                    if lag is not None:
+                        self.metrics.consumer_lag.labels(stream=label).set(int(lag))
+                    self.metrics.pending.labels(stream=label).set(int(g.get("pending", 0)))
+
+
+class _Stopped(Exception):
+    """A stop was requested while waiting to reconnect (nothing is lost: all is pending)."""
+
+
+def main(argv: list[str] | None = None) -> int:
+    """``python -m streamgroup.stream.worker --redis URL --ns NS [--name value ...]``."""
+    import argparse
+    import os
+    import signal
+    import sys
+    from dataclasses import fields
+
+    from ..settings import load_settings
+
+    p = argparse.ArgumentParser(prog="python -m streamgroup.stream.worker")
+    for f in fields(Settings):
+        p.add_argument("--" + f.name.replace("_", "-"), dest=f.name, default=None)
+    args = p.parse_args(argv)
+    settings = load_settings(vars(args), env={})
+    worker = Worker(settings)
+    hits = {"n": 0}
+
+    def on_signal(signum: int, _frame: Any) -> None:
+        hits["n"] += 1
+        if hits["n"] > 1:
+            os._exit(128 + signum)
+        worker.request_stop()
+
+    signal.signal(signal.SIGTERM, on_signal)
+    signal.signal(signal.SIGINT, on_signal)
+    code = worker.run()
+    sys.stdout.flush()
+    return code
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
