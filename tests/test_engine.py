@@ -1,0 +1,227 @@
+"""The placement engine against the simulated crowd and against outside references."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.stats import beta as beta_dist
+
+from streamgroup.core import sprt
+from streamgroup.core.engine import Engine
+from streamgroup.core.types import Answer, EngineConfig
+from streamgroup.errors import EngineInputError
+from streamgroup.sim import Crowd, mixed_sources
+
+
+def run(engine: Engine, crowd: Crowd, max_rounds: int = 2000) -> int:
+    """Drive the engine in rounds until every item is placed or unresolved."""
+    now = 0
+    for rounds in range(max_rounds):
+        if engine.done():
+            return rounds
+        qs = engine.plan(now)
+        engine.add_answers(crowd.answer_now(qs), now)
+        now += 1000
+    raise AssertionError("engine did not finish")
+
+
+def errors_against_truth(engine: Engine, crowd: Crowd) -> tuple[int, int]:
+    """(wrong, placed) with the engine's side labels mapped to the truth by majority."""
+    side = engine.ledger.item("side")
+    placed = side >= 0
+    agree = int((side[placed] == crowd.truth[placed]).sum())
+    total = int(placed.sum())
+    return min(agree, total - agree), total
+
+
+def clopper_pearson_lower(k: int, n: int, level: float = 0.95) -> float:
+    """Lower end of the two-sided Clopper-Pearson interval (via scipy.stats.beta)."""
+    return 0.0 if k == 0 else float(beta_dist.ppf((1 - level) / 2, k, n - k + 1))
+
+
+def test_spend_and_error_near_the_closed_forms() -> None:
+    """Unknown delta=0.6: spend per item near Wald's E[N] and error consistent with alpha."""
+    n, alpha, delta = 4000, 1e-2, 0.6
+    crowd = Crowd(n, delta=delta, seed=11)
+    eng = Engine(EngineConfig(alpha=alpha, max_outstanding=10**6))
+    eng.add_items((k, None) for k in crowd.keys)
+    run(eng, crowd)
+    wrong, placed = errors_against_truth(eng, crowd)
+    assert placed == n
+    # Gambler's ruin closed forms (Wald, "Sequential Analysis", 1947) via streamgroup.core.sprt.
+    limit = sprt.per_item_limit(n, alpha, delta)
+    assert eng.stats()["spend"] <= 1.10 * limit
+    assert clopper_pearson_lower(wrong, placed) <= alpha
+
+
+def test_inflight_window_costs_no_spend() -> None:
+    """W=8 questions in flight per item spend within 2% of W=1 on the same crowd."""
+    spends = []
+    for window in (1, 8):
+        crowd = Crowd(3000, delta=0.6, seed=5)
+        eng = Engine(EngineConfig(alpha=1e-3, inflight=window, max_outstanding=10**6))
+        eng.add_items((k, None) for k in crowd.keys)
+        rounds = run(eng, crowd)
+        spends.append((eng.stats()["spend"], rounds))
+    (s1, r1), (s8, r8) = spends
+    assert s8 <= 1.02 * s1
+    assert r8 < r1 / 2
+
+
+def test_learns_each_sources_bias() -> None:
+    """Per-source EM recovers careful, random and reliably wrong sources within 0.12."""
+    crowd = Crowd(3000, sources=mixed_sources(20), seed=2)
+    eng = Engine(EngineConfig(alpha=1e-3, max_outstanding=10**6))
+    eng.add_items((k, None) for k in crowd.keys)
+    run(eng, crowd)
+    learned = {s["source"]: s["delta"] for s in eng.sources()}
+    for name, true in zip(crowd.source_names, crowd.deltas, strict=True):
+        assert abs(learned[name] - true) < 0.12, (name, true, learned[name])
+    wrong, placed = errors_against_truth(eng, crowd)
+    assert clopper_pearson_lower(wrong, placed) <= 1e-3
+
+
+def test_pinned_items_orient_sides_and_stay() -> None:
+    """Pinned labels name the sides; pinned items never move; others land with their group."""
+    crowd = Crowd(600, delta=0.6, seed=3)
+    labels = ("north", "south")
+    pins = [(k, labels[crowd.side_of(k)]) for k in crowd.keys[:30]]
+    eng = Engine(EngineConfig(max_outstanding=10**6))
+    eng.add_items(pins)
+    eng.add_items((k, None) for k in crowd.keys[30:])
+    run(eng, crowd)
+    wrong = 0
+    for k in crowd.keys:
+        rec = eng.record(k)
+        assert rec is not None and rec.status == "placed"
+        wrong += rec.side != labels[crowd.side_of(k)]
+    assert wrong <= 3
+    assert all(eng.record(k).pinned and eng.record(k).side == s for k, s in pins)
+
+
+def test_answer_counted_once_however_often_delivered() -> None:
+    """Redelivered answers (same qid, or same pair and source) are duplicates, not evidence."""
+    crowd = Crowd(200, delta=0.6, seed=4)
+    eng = Engine(EngineConfig(max_outstanding=10**6))
+    eng.add_items((k, None) for k in crowd.keys)
+    qs = eng.plan(0)
+    answers = crowd.answer_now(qs)
+    assert set(eng.add_answers(answers, 0)) == {"applied"}
+    spend = eng.stats()["spend"]
+    again = eng.add_answers(answers + [Answer(x.a, x.b, x.same, x.source) for x in answers], 1)
+    assert set(again) == {"duplicate"}
+    assert eng.stats()["spend"] == spend
+
+
+def test_late_answers_revise_a_commit() -> None:
+    """Answers after a commit still count; an overturned commit flips and counts a revision."""
+    eng = Engine(EngineConfig(alpha=0.05, max_outstanding=10**6))
+    crowd = Crowd(300, delta=0.8, seed=9)
+    eng.add_items((k, None) for k in crowd.keys)
+    run(eng, crowd)
+    victim = next(k for k in crowd.keys if not eng.record(k).pinned
+                  and eng.record(k).answers <= 3 and k not in
+                  {eng.keys[i] for i in eng.pool.tolist()})
+    before = eng.record(victim)
+    anchors = [eng.keys[i] for i in eng.pool.tolist()]
+    # A flood of confident answers from new sources saying the opposite of the commit.
+    flips = []
+    for j, other in enumerate(anchors):
+        same = eng.record(other).side != before.side
+        flips.append(Answer(victim, other, same, f"late-{j % 3}"))
+    eng.add_answers(flips, 10)
+    # Teach the engine that the late sources agree with the crowd elsewhere, then refit.
+    teach = []
+    for j in range(3):
+        for x in range(60):
+            a, b = crowd.keys[(7 * x + j) % 300], crowd.keys[(11 * x + 5 + j) % 300]
+            if a != b and a != victim and b != victim:
+                truth = crowd.side_of(a) == crowd.side_of(b)
+                teach.append(Answer(a, b, truth, f"late-{j}"))
+    eng.add_answers(teach, 20)
+    eng._refit()
+    eng._decide(np.arange(len(eng.keys)))
+    after = eng.record(victim)
+    assert after.side != before.side
+    assert after.rev == before.rev + 1
+    assert eng.stats()["revisions"] >= 1
+
+
+@pytest.mark.parametrize(
+    ("bad", "words"),
+    [
+        (Answer("shard-1", "shard-1", True), "same item"),
+        (Answer("", "shard-2", True), "empty"),
+        (Answer("x" * 300, "shard-2", True), "over the limit"),
+        (Answer("shard-1", "shard-2", float("nan")), "NaN"),  # type: ignore[arg-type]
+        (Answer("shard-1", "shard-2", 2), "1 or 0"),  # type: ignore[arg-type]
+        (Answer("shard-1", "sh\x00rd", True), "control"),
+        (Answer("shard-1", "shard-2", True, qid="999"), "not one this worker issued"),
+    ],
+)
+def test_bad_answers_raise_and_apply_nothing(bad: Answer, words: str) -> None:
+    """A bad answer raises EngineInputError naming the problem; the good ones beside it wait."""
+    eng = Engine()
+    good = Answer("shard-a", "shard-b", True, "s1")
+    with pytest.raises(EngineInputError, match=words):
+        eng.add_answers([good, bad])
+    assert len(eng) == 0 and eng.stats()["spend"] == 0
+
+
+def test_third_side_label_and_unknown_labels_are_rejected() -> None:
+    """Two-group mode: a third pinned label is an error and nothing of the batch is applied."""
+    eng = Engine()
+    eng.add_items([("shard-1", "north"), ("shard-2", "south")])
+    with pytest.raises(EngineInputError, match="third group"):
+        eng.add_items([("shard-3", None), ("shard-4", "east")])
+    assert len(eng) == 2
+    with pytest.raises(EngineInputError, match="already pinned"):
+        eng.add_items([("shard-1", "south")])
+
+
+def test_snapshot_restore_continues_identically() -> None:
+    """A restored engine asks the same questions and reaches the same records."""
+    crowd = Crowd(400, sources=mixed_sources(10), seed=6)
+    a = Engine(EngineConfig(max_outstanding=500, inflight=3))
+    a.add_items((k, None) for k in crowd.keys)
+    now = 0
+    for _ in range(30):
+        a.add_answers(crowd.answer_now(a.plan(now)), now)
+        now += 1000
+    b = Engine.restore(a.snapshot())
+    crowd_b = Crowd(400, sources=mixed_sources(10), seed=6)
+    crowd_b.rng = np.random.default_rng(123)
+    crowd.rng = np.random.default_rng(123)
+    for _ in range(200):
+        qa, qb = a.plan(now), b.plan(now)
+        assert qa == qb
+        a.add_answers(crowd.answer_now(qa), now)
+        b.add_answers(crowd_b.answer_now(qb), now)
+        now += 1000
+        if a.done():
+            break
+    assert a.done() and b.done()
+    assert [a.record(k) for k in crowd.keys] == [b.record(k) for k in crowd.keys]
+
+
+def test_ceiling_makes_items_unresolved() -> None:
+    """With only random clickers, items reach their ceiling and go to a person."""
+    crowd = Crowd(80, sources=[0.0, 0.0], seed=8)
+    eng = Engine(EngineConfig(item_ceiling=12, max_outstanding=10**6))
+    eng.add_items((k, None) for k in crowd.keys)
+    run(eng, crowd, max_rounds=3000)
+    counts = eng.stats()["items"]
+    assert counts["unresolved"] > 0
+    assert counts["placed"] + counts["unresolved"] == 80
+
+
+def test_timeouts_reissue_questions() -> None:
+    """A question unanswered past its timeout frees the item's slot and is asked anew."""
+    crowd = Crowd(100, delta=0.6, seed=1)
+    eng = Engine(EngineConfig(question_timeout_ms=5000, max_outstanding=10**6))
+    eng.add_items((k, None) for k in crowd.keys)
+    first = eng.plan(0)
+    assert first and eng.plan(1000) == []
+    again = eng.plan(6000)
+    assert {frozenset((q.a, q.b)) for q in again} == {frozenset((q.a, q.b)) for q in first}
+    assert eng.stats()["outstanding"] == len(again)
