@@ -12,8 +12,10 @@ Yardsticks:
   (gambler's-ruin closed form, Wald 1947); with ``--mixed``, n times the mean length of
   the SPRT that knows every source's delta, by Monte Carlo over 100,000 walks.
 - ``fixed_baseline``: the two-phase method (streamgroup.core.baseline): an A x B bootstrap
-  sized to give a reference of the engine's size that is all correct with probability
-  >= 0.99, then per other item the smallest odd m whose binomial majority error is <= alpha
+  sized to give a reference of the engine's size (its bootstrap's reference, or m if that
+  is larger, since each item votes against m distinct members) that is all correct with
+  probability >= 0.99 (exact closed form, see the module), then per other item the
+  smallest odd m whose binomial majority error is <= alpha
   (m from scipy.stats.binom here). With ``--mixed`` the method cannot tell sources apart,
   so it runs on the pooled delta (mean over the crowd's sources; exact, because each answer
   comes from an independent uniformly random source).
@@ -105,12 +107,13 @@ def bootstrap_spend(stats: dict[str, Any]) -> int:
     raise KeyError("engine.stats() reports no bootstrap spend ('bootstrap_spend' or issued.seed)")
 
 
-def reference_size(stats: dict[str, Any]) -> int:
-    for path in (("reference",), ("reference_size",), ("bootstrap", "reference")):
-        v = _stat(stats, *path)
-        if v is not None:
-            return int(v)
-    return DEFAULT_REFERENCE
+def reference_size(engine: Any) -> int:
+    """Members of the reference the engine's bootstrap produced (before it grew by placing)."""
+    base = getattr(engine, "pool_base", None)
+    if base:
+        return int(base)
+    v = _stat(engine.stats(), "reference")
+    return int(v) if v is not None else DEFAULT_REFERENCE
 
 
 def simulate(args: argparse.Namespace) -> dict[str, Any]:
@@ -186,13 +189,17 @@ def yardsticks(args: argparse.Namespace, reference: int) -> dict[str, Any]:
         limit_se = 0.0
         d_fixed = args.delta
     m = fixed_votes_scipy(args.alpha, d_fixed)
-    b = baseline.ab_size(reference, d_fixed, REFERENCE_CONFIDENCE)
-    two = baseline.two_phase_spend(args.n, reference, b, m)
+    # Each item votes against m distinct reference members, so the method's reference holds
+    # at least m (ours may be smaller: it places by the SPRT, not by a fixed vote).
+    r = max(reference, m)
+    b = baseline.ab_size(r, d_fixed, REFERENCE_CONFIDENCE)
+    two = baseline.two_phase_spend(args.n, r, b, m)
     return {
         "per_item_limit": limit,
         "per_item_limit_stderr": limit_se,
         "fixed_delta": d_fixed,
         "fixed_votes": m,
+        "fixed_reference": r,
         "fixed_block": b,
         "fixed_bootstrap_questions": two.bootstrap,
         "fixed_baseline": two.spend,
@@ -207,7 +214,7 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
     stats = engine.stats()
     spend = int(stats["spend"])
     boot = bootstrap_spend(stats)
-    reference = reference_size(stats)
+    reference = reference_size(engine)
     labels = [r.side if r is not None and r.status == "placed" else None for r in records]
     errors, placed = count_errors(labels, crowd.truth)
     unresolved = sum(1 for r in records if r is not None and r.status == "unresolved")

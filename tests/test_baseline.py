@@ -169,3 +169,19 @@ def test_errors_are_counted_up_to_relabelling() -> None:
     assert count(["1", "0", "0", "0", None], truth) == (1, 4)
     assert count(["north", "north", "south", None, "north"], truth) == (1, 4)
     assert count([None] * 5, truth) == (0, 0)
+
+
+@pytest.mark.parametrize("mixed", [False, True])
+def test_small_bench_run_meets_the_error_target(mixed: bool) -> None:
+    """A 1500-item run places every item with an error rate consistent with alpha."""
+    bench = _bench()
+    flags = ["--n", "1500", "--delta", "0.6", "--alpha", "1e-3", "--seed", "3", "--json"]
+    res = bench.run(bench.parse(flags + (["--mixed"] if mixed else [])))
+    assert res["stopped"] is None
+    assert res["placed"] + res["unresolved"] == 1500
+    assert res["error_ci95"][0] <= 1e-3
+    assert res["questions"] > res["bootstrap_questions"] > 0
+    # Far below the two-phase method; past the bootstrap (which dominates at this n),
+    # not far above the limit.
+    assert res["questions"] < res["fixed_baseline"]
+    assert (res["questions"] - res["bootstrap_questions"]) / res["per_item_limit"] < 1.6
