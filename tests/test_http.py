@@ -119,3 +119,57 @@ def test_bad_addresses_are_rejected(addr):
 def test_ipv6_loopback_form_parses():
     """[::1]:PORT is accepted for IPv6 loopback."""
     assert parse_addr("[::1]:9464") == ("::1", 9464)
+
+
+# -- a running worker ---------------------------------------------------------------
+
+# Metrics a run must move (first scrape after ready vs the scrape at the end): sample name
+# and the label filter. The others must be present; revisions and reconnects legitimately
+# stay at zero in a clean run, and the lag/pending gauges are back near zero at the end.
+MOVING = [
+    ("streamgroup_answers_applied_total", {}),
+    ("streamgroup_answers_duplicate_total", {}),
+    ("streamgroup_entries_rejected_total", {}),
+    ("streamgroup_items_added_total", {}),
+    ("streamgroup_questions_issued_total", {"why": "place"}),
+    ("streamgroup_items", {"status": "placed"}),
+    ("streamgroup_spend_answers", {}),
+    ("streamgroup_decision_seconds_count", {}),
+    ("streamgroup_batch_seconds_count", {}),
+    ("streamgroup_batches_total", {}),
+    ("streamgroup_source_answers", {}),
+]
+
+
+@pytest.mark.redis
+@pytest.mark.slow
+def test_scrape_a_running_worker_every_metric_present_and_moving(redis_url):
+    """A live worker's /metrics parses, names every declared metric, and moves with the run."""
+    pytest.importorskip("streamgroup.stream.worker")
+    from tests.liveworker import LiveWorker, scrape, total
+
+    declared = {fam.name for fam in WorkerMetrics().registry.collect()}
+    with LiveWorker(redis_url) as live:
+        fam0, first = scrape(live.url)
+        assert declared <= fam0, declared - fam0
+        assert total(first, "streamgroup_ready") == 1
+        assert get(live.url + "/healthz")[0] == 200
+        live.client.push_items(live.crowd.keys)
+        live.client.redis.xadd(live.client.keys.answers, {"a": "shard-000001"})  # malformed
+        for _ in range(2):  # the same producer id twice: the repeat is a duplicate
+            live.client.push_answer("shard-000001", "shard-000002", True, "src-000", aid="x1")
+        live.run_to_end()
+        # Gauges refresh on a timer: wait for the learned noise to reach the endpoint.
+        live.wait(lambda: scrape(live.url)[1].get("streamgroup_source_bias"), 10,
+                  "per-source series")
+        fam1, last = scrape(live.url)
+    assert declared <= fam1
+    for name, labels in MOVING:
+        assert total(last, name, **labels) > total(first, name, **labels), name
+    assert total(last, "streamgroup_noise_pooled_bias") > 0.2
+    assert {dict(k)["source"] for k in last["streamgroup_source_bias"]} <= {
+        *live.crowd.source_names, "other"}
+    for gauge in ("streamgroup_consumer_lag_entries", "streamgroup_pending_entries"):
+        assert {dict(k)["stream"] for k in last[gauge]} >= {"items", "answers"}, gauge
+    assert "streamgroup_revisions_total" in last and "streamgroup_redis_retries_total" in last
+    assert live.exit_codes == [0]

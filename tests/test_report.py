@@ -141,3 +141,25 @@ def test_cli_report_writes_the_page_and_fails_in_one_line(redis_url, tmp_path, c
     assert main(["report", "--redis", redis_url, "--ns", "empty", "--out", str(out)]) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "no run to report on" in err
+
+
+@pytest.mark.slow
+def test_report_of_a_live_worker_run(redis_url, tmp_path):
+    """A report of a real worker's run holds its items, progress samples and learned sources."""
+    pytest.importorskip("streamgroup.stream.worker")
+    from tests.liveworker import LiveWorker
+
+    with LiveWorker(redis_url, ns="live") as live:
+        live.client.push_items(live.crowd.keys)
+        live.run_to_end()
+        live.wait(lambda: live.client.redis.xlen(Keys("live").history) >= 3, 10, "history")
+    r = redis.Redis.from_url(redis_url)
+    data = read_run(r, "live")
+    r.close()
+    assert len(data.status) == live.crowd.n and set(data.status) <= {"placed", "unresolved"}
+    assert len(data.history["ts"]) >= 3 and data.history["spend"][-1] > 0
+    assert {s["source"] for s in data.sources} == set(live.crowd.source_names)
+    best = max(data.sources, key=lambda s: s["delta"])
+    assert best["delta"] > 0.5 and per_item_limit(data) is not None
+    page = Path(build_report(redis_url, "live", str(tmp_path))).read_text()
+    assert len(images(page)) == 4

@@ -80,8 +80,10 @@ def read_run(client: Any, ns: str, alpha: float | None = None,
     else ``default_alpha``.
     """
     keys = Keys(ns)
+    alpha_given = alpha
+    meta_alpha = None
     if alpha is None:
-        raw = client.hget(keys.meta, "alpha")
+        raw = meta_alpha = client.hget(keys.meta, "alpha")
         try:
             alpha = float(_s(raw)) if raw else default_alpha
         except ValueError:
@@ -108,8 +110,36 @@ def read_run(client: Any, ns: str, alpha: float | None = None,
                                  "answers": int(rec.get("answers", 0))})
         except (ValueError, KeyError, TypeError, msgpack.UnpackException):
             continue
+    if not data.sources:
+        from_state = _from_committed_state(client, keys)
+        if from_state is not None:
+            data.sources, state_alpha = from_state
+            if alpha_given is None and not meta_alpha:
+                data.alpha = state_alpha
     data.sources.sort(key=lambda s: -s["answers"])
     return data
+
+
+def _from_committed_state(client: Any, keys: Keys) -> tuple[list[dict[str, Any]], float] | None:
+    """Learned sources and alpha from the worker's snapshot and journal, when no
+    ``{NS}:noise`` hash was written: the same read-only path a restarting worker takes.
+    Any failure (no state, a format this version cannot read) just leaves the plot empty.
+    """
+    try:
+        from ..stream.recovery import replay_journal
+        from ..stream.state import DEFAULT_AID_WINDOW, WorkerState
+
+        epoch, snap = client.get(keys.epoch), client.get(keys.snapshot)
+        if epoch is None or snap is None:
+            return None
+        state = WorkerState.from_snapshot(snap, _s(epoch), DEFAULT_AID_WINDOW)
+        replay_journal(client, keys, state)
+        rows = [{"source": str(r["source"]), "delta": float(r["delta"]),
+                 "se": float(r.get("se", float("nan"))), "answers": int(r["answers"])}
+                for r in state.engine.sources()]
+        return rows, float(state.engine.config.alpha)
+    except Exception:  # noqa: BLE001 - a report without this plot beats no report
+        return None
 
 
 def per_item_limit(data: RunData) -> float | None:

@@ -37,7 +37,10 @@ def render_html(data: RunData, source: str) -> str:
             ("questions outstanding (last sample)", int(last["outstanding"]) if last else "–"),
             (f"per-item limit E[N] (learned δ, α = {data.alpha:g})",
              f"{limit:.2f}" if limit is not None else "–"),
-            ("mean answers per item", f"{data.answers.mean():.2f}" if n else "–")]
+            ("spend per item (last sample)",
+             f"{last['spend'] / n:.2f}" if last and n else "–"),
+            ("mean answers counted per item (an answer counts for both its items)",
+             f"{data.answers.mean():.2f}" if n else "–")]
     if last and limit is not None and (last["placed"] + last["unresolved"]) > 0:
         ratio = last["spend"] / (limit * max(n, 1))
         rows.append(("spend / (limit × items)", f"{ratio:.3f}"))

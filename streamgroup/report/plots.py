@@ -106,7 +106,8 @@ def plot_answers(data: RunData, limit: float | None) -> str:
                    label=f"mean {data.answers.mean():.1f}")
         if limit is not None:
             ax.axvline(limit, color="tab:gray", lw=1.5, ls=":", label=f"limit {limit:.1f}")
-        ax.set_xlabel("answers counted for the item")
+        ax.set_xlabel("answers counted for the item (reference items collect the answers "
+                      "of the items compared with them)")
         ax.set_ylabel("items")
         ax.legend(loc="best", fontsize=9)
         ax.grid(alpha=0.3, axis="y")
@@ -121,25 +122,29 @@ def plot_answers(data: RunData, limit: float | None) -> str:
 def plot_sources(data: RunData) -> str:
     import matplotlib.pyplot as plt
 
-    rows = data.sources[:TOP_SOURCES]
+    # The most active sources, drawn best first so the careful and the contrary ones stand
+    # apart; a bar is coloured only when its 95% interval excludes zero.
+    rows = sorted(data.sources[:TOP_SOURCES], key=lambda s: s["delta"])
     fig, ax = plt.subplots(figsize=(9, max(2.5, 0.32 * len(rows) + 1.2)))
     if rows:
-        names = [s["source"] or "(anonymous)" for s in rows][::-1]
-        delta = np.array([s["delta"] for s in rows][::-1])
-        se = np.array([s["se"] if math.isfinite(s["se"]) else 0.0 for s in rows][::-1])
-        colors = ["tab:red" if d < -0.05 else "0.6" if d < 0.1 else "tab:green" for d in delta]
+        names = [s["source"] or "(anonymous)" for s in rows]
+        delta = np.array([s["delta"] for s in rows])
+        se = np.array([s["se"] if math.isfinite(s["se"]) else 0.0 for s in rows])
+        lo, hi = delta - 1.96 * se, delta + 1.96 * se
+        colors = ["tab:green" if a > 0 else "tab:red" if b < 0 else "0.6"
+                  for a, b in zip(lo, hi, strict=True)]
         y = np.arange(len(rows))
         ax.barh(y, delta, xerr=1.96 * se, color=colors, capsize=3, error_kw={"lw": 1})
         ax.set_yticks(y, names, fontsize=8)
-        for yi, s in zip(y, rows[::-1], strict=True):
+        for yi, s in zip(y, rows, strict=True):
             ax.text(1.02, yi, f"{s['answers']}", va="center", fontsize=7, color="0.3",
                     transform=ax.get_yaxis_transform())
         ax.text(1.02, len(rows) - 0.4, "answers", fontsize=7, color="0.3", va="bottom",
                 transform=ax.get_yaxis_transform())
         ax.axvline(0, color="black", lw=0.8)
         ax.set_xlim(-1, 1)
-        ax.set_xlabel("learned bias δ (1 = always right, 0 = random, < 0 = reliably wrong),"
-                      " with its 95% interval")
+        ax.set_xlabel("learned bias δ (1 = always right, 0 = random, < 0 = reliably wrong)"
+                      "\nwhiskers: 95% interval; grey: not distinguishable from random")
         ax.grid(alpha=0.3, axis="x")
         more = len(data.sources) - len(rows)
         ax.set_title("Learned reliability per source" + (f" (top {len(rows)} by answers,"
