@@ -131,8 +131,9 @@ def claim_idle(client: redis.Redis, stream: str, consumer: str, idle_ms: int,
     start = "0-0"
     claimed = 0
     while True:
-        reply = client.execute_command("XAUTOCLAIM", stream, GROUP, consumer, idle_ms, start,
-                                       "COUNT", count, "JUSTID")
+        # (redis-py drops the cursor from JUSTID replies, so take the entries too)
+        reply = client.xautoclaim(stream, GROUP, consumer, idle_ms, start_id=start,
+                                  count=count)
         nxt, ids = reply[0], reply[1]
         claimed += len(ids)
         if nxt in (b"0-0", "0-0"):

@@ -1,0 +1,273 @@
+"""The worker against a real redis-server: closed loop, packing, dead letters, dedup, restarts."""
+
+from __future__ import annotations
+
+import time
+from typing import Any
+
+import msgpack
+import pytest
+import redis
+
+from streamgroup.core.types import Answer
+from streamgroup.errors import StateError
+from streamgroup.keys import GROUP, Keys
+from streamgroup.serve.metrics import WorkerMetrics
+from streamgroup.settings import Settings
+from streamgroup.sim.crowd import Crowd
+from streamgroup.stream.adapter import SimAdapter
+from streamgroup.stream.codec import answer_fields, pack_answers
+from streamgroup.stream.worker import EXIT_STATE, Worker
+
+pytestmark = pytest.mark.redis
+
+NS = "t"
+K = Keys(NS)
+
+
+def settings(url: str, **kw: Any) -> Settings:
+    base: dict[str, Any] = dict(redis=url, ns=NS, consumer="w1", metrics_addr="", block_ms=20,
+                                batch=100, snapshot_every=0.05, history_every=0.05)
+    base.update(kw)
+    return Settings(**base)
+
+
+def push_items(r: redis.Redis, keys: list[str]) -> None:
+    pipe = r.pipeline(transaction=False)
+    for k in keys:
+        pipe.xadd(K.items, {"key": k})
+    pipe.execute()
+
+
+def assign(r: redis.Redis) -> dict[str, dict[str, Any]]:
+    return {k.decode(): msgpack.unpackb(v) for k, v in r.hgetall(K.assign).items()}
+
+
+def meta(r: redis.Redis) -> dict[str, str]:
+    return {k.decode(): v.decode() for k, v in r.hgetall(K.meta).items()}
+
+
+def errors_vs_truth(crowd: Crowd, rec: dict[str, dict[str, Any]]) -> int:
+    """Misplaced items, up to the naming of the two sides (labels are arbitrary)."""
+    placed = [k for k, v in rec.items() if v["status"] == "placed"]
+    agree = sum((rec[k]["side"] == "1") == bool(crowd.side_of(k)) for k in placed)
+    return min(agree, len(placed) - agree)
+
+
+def closed_loop(url: str, n: int, *, pack: bool, timeout: float = 60.0, **kw: Any
+                ) -> tuple[Worker, SimAdapter, Crowd]:
+    r = redis.Redis.from_url(url)
+    crowd = Crowd(n, delta=0.6, sources=[0.6] * 20, seed=3)
+    push_items(r, crowd.keys)
+    w = Worker(settings(url, pack_questions=pack, **kw), WorkerMetrics())
+    adapter = SimAdapter(r, NS, crowd, pack=pack, aid_prefix="sim-")
+
+    def turn(wk: Worker) -> bool:
+        adapter.step()
+        return wk.state is not None and wk.state.engine.done()
+
+    assert w.run_until(turn, timeout), w.state.engine.stats() if w.state else None
+    return w, adapter, crowd
+
+
+def test_closed_loop_places_every_item_accurately(redis_url: str) -> None:
+    """The crowd answers the worker's questions through the streams until all are placed."""
+    w, adapter, crowd = closed_loop(redis_url, 300, pack=False)
+    r = redis.Redis.from_url(redis_url)
+    rec = assign(r)
+    assert set(rec) == set(crowd.keys)
+    assert all(v["status"] in ("placed", "unresolved") for v in rec.values())
+    assert errors_vs_truth(crowd, rec) <= 2  # alpha = 1e-3 over 300 items: expect ~0.3
+    m = meta(r)
+    st = w.state.engine.stats()
+    assert int(m["applied"]) == st["spend"]
+    assert int(m["entries:answers"]) == adapter.written
+    # inputs are trimmed once acknowledged; outputs exist
+    assert r.xlen(K.answers) == 0 and r.xlen(K.items) == 0
+    assert r.xlen(K.decisions) > 0 and r.xlen(K.history) > 0
+    assert w.metrics.answers_applied._value.get() == st["spend"]
+    w.close()
+
+
+def test_packed_answers_and_packed_questions_close_the_loop(redis_url: str) -> None:
+    """Packed questions out and packed answers in place every item, same as plain entries."""
+    w, adapter, crowd = closed_loop(redis_url, 200, pack=True)
+    r = redis.Redis.from_url(redis_url)
+    rec = assign(r)
+    assert len(rec) == 200 and errors_vs_truth(crowd, rec) <= 2
+    qs = r.xrange(K.questions)
+    assert qs and all(set(f) == {b"pack"} for _, f in qs)
+    assert int(meta(r)["applied"]) == w.state.engine.stats()["spend"] == adapter.written
+    w.close()
+
+
+def test_malformed_entries_go_dead_and_good_ones_apply(redis_url: str) -> None:
+    """Bad entries become dead letters with reason and origin; neighbours are applied."""
+    r = redis.Redis.from_url(redis_url)
+    push_items(r, ["shard-000001", "shard-000002", "shard-000003"])
+    r.xadd(K.items, {"kee": "shard-9"})
+    r.xadd(K.items, {"key": "shard-000004", "side": "north"})
+    r.xadd(K.items, {"key": "shard-000005", "side": "south"})
+    r.xadd(K.items, {"key": "shard-000006", "side": "east"})  # a third group: engine reject
+    good = r.xadd(K.answers, answer_fields(Answer("shard-000001", "shard-000004", True, "s")))
+    bad_same = r.xadd(K.answers, {"a": "shard-000001", "b": "shard-000002", "same": "maybe"})
+    bad_qid = r.xadd(K.answers, answer_fields(Answer("shard-000001", "shard-000002", True, "s",
+                                                     "99999")))
+    r.xadd(K.answers, {"pack": b"\xc1\xc1"})
+    pack = pack_answers([Answer("shard-000002", "shard-000005", False, "s"),
+                         Answer("shard-000003", "shard-000003", True, "s")])
+    packed = r.xadd(K.answers, {"pack": pack})
+    w = Worker(settings(redis_url), WorkerMetrics())
+    assert w.run_until(lambda wk: r.xlen(K.answers) == 0 and r.xlen(K.items) == 0, 10)
+    dead = {f[b"origin"].decode(): f for _, f in r.xrange(K.dead)}
+    A = K.answers
+    assert f"{A} {bad_same.decode()}" in dead and f"{A} {bad_qid.decode()}" in dead
+    assert b"same must be 1 or 0" in dead[f"{A} {bad_same.decode()}"][b"reason"]
+    assert b"qid" in dead[f"{A} {bad_qid.decode()}"][b"reason"]
+    assert f"{A} {packed.decode()}#1" in dead
+    assert any(b"third group" in f[b"reason"] for f in dead.values())
+    assert len(dead) == 6
+    m = meta(r)
+    assert int(m["applied"]) == 2  # the good plain answer and the good packed element
+    assert f"{A} {good.decode()}" not in dead
+    rec = assign(r)
+    assert rec["shard-000004"]["pinned"] and rec["shard-000004"]["side"] == "north"
+    assert "shard-000006" not in rec
+    rej = w.metrics.entries_rejected
+    assert rej.labels(stream="answers", reason="unknown_qid")._value.get() == 1
+    assert rej.labels(stream="items", reason="engine")._value.get() == 1
+    w.close()
+
+
+def test_repeats_are_counted_as_duplicates_not_applied(redis_url: str) -> None:
+    """A repeated aid, a second answer to one qid and a repeated (pair, source) count once."""
+    r = redis.Redis.from_url(redis_url)
+    push_items(r, [f"shard-{i:06d}" for i in range(6)])
+    a = Answer("shard-000000", "shard-000001", True, "s1")
+    r.xadd(K.answers, answer_fields(a, "p-1"))
+    r.xadd(K.answers, answer_fields(a, "p-1"))  # producer retry: same aid
+    r.xadd(K.answers, answer_fields(a, "p-2"))  # same pair, same source: persistent noise
+    w = Worker(settings(redis_url), WorkerMetrics())
+    assert w.run_until(lambda wk: r.xlen(K.answers) == 0, 10)
+    m = meta(r)
+    assert (m["applied"], m["dup:aid"], m["dup:pair_source"]) == ("1", "1", "1")
+    # the aid is remembered across a restart (it is rebuilt from snapshot + journal)
+    w.close()
+    r.xadd(K.answers, answer_fields(Answer("shard-000002", "shard-000003", True, "s1"), "p-1"))
+    w2 = Worker(settings(redis_url, snapshot_every=3600), WorkerMetrics())
+    assert w2.run_until(lambda wk: r.xlen(K.answers) == 0, 10)
+    assert meta(r)["dup:aid"] == "2"
+    assert w2.metrics.answers_duplicate.labels(kind="aid")._value.get() == 1
+    w2.close()
+
+
+def test_second_answer_to_a_question_is_a_qid_duplicate(redis_url: str) -> None:
+    """Two sources answering the same qid: the first counts, the second is a duplicate."""
+    r = redis.Redis.from_url(redis_url)
+    push_items(r, [f"shard-{i:06d}" for i in range(40)])
+    w = Worker(settings(redis_url), WorkerMetrics())
+    assert w.run_until(lambda wk: r.xlen(K.questions) > 0, 10)
+    _, f = r.xrange(K.questions, count=1)[0]
+    qa, qb, qid = f[b"a"].decode(), f[b"b"].decode(), f[b"qid"].decode()
+    r.xadd(K.answers, answer_fields(Answer(qa, qb, True, "s1", qid)))
+    r.xadd(K.answers, answer_fields(Answer(qa, qb, False, "s2", qid)))
+    assert w.run_until(lambda wk: r.xlen(K.answers) == 0, 10)
+    m = meta(r)
+    assert (m["applied"], m["dup:qid"]) == ("1", "1")
+    w.close()
+
+
+def test_restart_resumes_exactly_from_snapshot_and_journal(redis_url: str) -> None:
+    """A new worker rebuilds the same engine state from the snapshot plus the journal."""
+    r = redis.Redis.from_url(redis_url)
+    crowd = Crowd(150, delta=0.6, sources=[0.6] * 10, seed=5)
+    push_items(r, crowd.keys)
+    # snapshots every 0.05 s give a mix of snapshot and journal at the end
+    w = Worker(settings(redis_url, batch=20))
+    adapter = SimAdapter(r, NS, crowd)
+    steps = {"n": 0}
+
+    def some(wk: Worker) -> bool:
+        adapter.step()
+        steps["n"] += 1
+        return steps["n"] > 40
+
+    w.run_until(some, 30)
+    before = w.state.engine.stats(), w.state.seq, dict(w.state.counters)
+    assert r.exists(K.journal) or r.exists(K.snapshot)
+    w.close()
+    w2 = Worker(settings(redis_url, batch=20))
+    w2.start()
+    assert (w2.state.engine.stats(), w2.state.seq, dict(w2.state.counters)) == before
+    assert w2.state.published == w.state.published
+    w2.close()
+
+
+def test_state_without_epoch_is_refused(redis_url: str) -> None:
+    """Assignments without the epoch key stop the worker with a StateError, not a reset."""
+    r = redis.Redis.from_url(redis_url)
+    r.hset(K.assign, "shard-1", msgpack.packb({"side": "0"}))
+    w = Worker(settings(redis_url))
+    with pytest.raises(StateError, match="no epoch"):
+        w.start()
+    assert w.run() == EXIT_STATE
+    r.delete(K.assign)
+    w = Worker(settings(redis_url))
+    w.start()
+    w.close()
+    r.delete(K.snapshot)
+    with pytest.raises(StateError, match="no snapshot"):
+        Worker(settings(redis_url)).start()
+
+
+def test_idle_entries_of_a_dead_consumer_are_claimed(redis_url: str) -> None:
+    """Entries pending at a vanished consumer are claimed after claim_idle and applied."""
+    r = redis.Redis.from_url(redis_url)
+    push_items(r, [f"shard-{i:06d}" for i in range(5)])
+    w = Worker(settings(redis_url, consumer="w1", claim_idle=0.05))
+    w.start()  # creates the group
+    r.xreadgroup(GROUP, "ghost", {K.items: ">"}, count=100)  # the ghost dies holding them
+    assert r.xpending(K.items, GROUP)["pending"] == 5
+    assert w.run_until(lambda wk: r.xpending(K.items, GROUP)["pending"] == 0, 10)
+    assert len(assign(r)) == 5 and meta(r)["items_applied"] == "5"
+    w.close()
+
+
+def test_lost_connection_loses_nothing(redis_url: str) -> None:
+    """Killing the worker's connection mid-run: it reconnects, reloads and counts all once."""
+    r = redis.Redis.from_url(redis_url)
+    crowd = Crowd(200, delta=0.6, sources=[0.6] * 20, seed=9)
+    push_items(r, crowd.keys)
+    w = Worker(settings(redis_url, batch=20), WorkerMetrics())
+    adapter = SimAdapter(r, NS, crowd)
+    kills = {"n": 0, "t": 0}
+
+    def turn(wk: Worker) -> bool:
+        adapter.step()
+        kills["t"] += 1
+        if kills["n"] < 5 and kills["t"] % 7 == 0:
+            r.client_kill_filter(_type="normal", skipme=True)
+            kills["n"] += 1
+        return wk.state is not None and wk.state.engine.done()
+
+    assert w.run_until(turn, 60)
+    assert w.retries >= 5 and w.metrics.redis_retries._value.get() >= 5
+    m = meta(r)
+    assert int(m["entries:answers"]) == adapter.written
+    assert int(m["applied"]) + int(m.get("dup:qid", 0)) + int(m.get("dup:pair_source", 0)) \
+        == adapter.written
+    assert len(set(adapter.qids)) == len(adapter.qids)  # no question was published twice
+    w.close()
+
+
+def test_history_samples_are_written(redis_url: str) -> None:
+    """Progress samples land in {NS}:history with the documented fields."""
+    r = redis.Redis.from_url(redis_url)
+    push_items(r, [f"shard-{i:06d}" for i in range(30)])
+    w = Worker(settings(redis_url))
+    assert w.run_until(lambda wk: r.xlen(K.history) >= 2, 10)
+    _, f = r.xrange(K.history)[-1]
+    assert set(f) == {b"ts", b"placed", b"asking", b"waiting", b"unresolved", b"spend",
+                      b"outstanding"}
+    assert abs(int(f[b"ts"]) - time.time() * 1000) < 60_000
+    w.close()
