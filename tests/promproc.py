@@ -14,6 +14,7 @@ import time
 import urllib.error
 import urllib.parse
 import urllib.request
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -78,15 +79,17 @@ class PromProc:
     def query(self, expr: str) -> Any:
         return self.api("query", query=expr)
 
-    def wait_value(self, expr: str, want: float, timeout: float = 30.0) -> float:
-        """Poll an instant query until its first sample equals ``want``."""
+    def wait_value(self, expr: str, want: float | Callable[[float], bool],
+                   timeout: float = 30.0) -> float:
+        """Poll an instant query until its first sample equals (or satisfies) ``want``."""
+        ok = want if callable(want) else (lambda v: v == want)
         deadline = time.monotonic() + timeout
         last: Any = None
         while time.monotonic() < deadline:
             last = self.query(expr)
             res = last.get("data", {}).get("result", [])
-            if res and float(res[0]["value"][1]) == want:
-                return want
+            if res and ok(float(res[0]["value"][1])):
+                return float(res[0]["value"][1])
             time.sleep(0.2)
         raise AssertionError(f"{expr} never became {want}: last answer {last}")
 

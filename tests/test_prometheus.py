@@ -156,3 +156,34 @@ def test_real_prometheus_scrapes_the_endpoint_and_runs_every_query():
                 raise AssertionError(f"over-budget alert never fired: {alerts}")
         finally:
             prom.stop()
+
+
+@pytest.mark.slow
+@pytest.mark.redis
+@pytest.mark.skipif(shutil.which("prometheus") is None,
+                    reason="prometheus not installed (Debian package prometheus)")
+def test_real_prometheus_scrapes_a_running_worker(redis_url):
+    """Prometheus scrapes a live worker on loopback; its query API returns the run's progress."""
+    pytest.importorskip("streamgroup.stream.worker")
+    from tests.liveworker import LiveWorker, scrape, total
+    from tests.promproc import PromProc
+
+    with LiveWorker(redis_url, ns="promlive") as live:
+        prom = PromProc([f"127.0.0.1:{live.port}"]).start()
+        try:
+            prom.wait_value('up{job="streamgroup"}', 1)
+            prom.wait_value("streamgroup_ready", 1)
+            live.client.push_items(live.crowd.keys)
+            live.run_to_end()
+            n = live.crowd.n
+            prom.wait_value('sum(streamgroup_items{status=~"placed|unresolved"})', n)
+            # The run is over: what Prometheus stores must catch up with the endpoint.
+            _, final = scrape(live.url)
+            applied = total(final, "streamgroup_answers_applied_total")
+            assert applied > 0
+            prom.wait_value("streamgroup_answers_applied_total", applied)
+            prom.wait_value("sum(streamgroup_questions_issued_total)",
+                            total(final, "streamgroup_questions_issued_total"))
+            prom.wait_value("streamgroup_spend_answers", total(final, "streamgroup_spend_answers"))
+        finally:
+            prom.stop()
