@@ -373,6 +373,16 @@ def read_status(client: Client) -> dict[str, Any]:
     r, k = client.redis, client.keys
     meta = {_text(a): _number(b) for a, b in r.hgetall(k.meta).items()}
     items = {s: meta.get(f"items_{s}") for s in STATUSES}
+    spend, outstanding, as_of = meta.get("spend"), meta.get("outstanding"), None
+    if all(v is None for v in items.values()):
+        # The worker's progress samples carry the counts, spend and questions in flight.
+        last = r.xrevrange(k.history, count=1)
+        if last:
+            sample = {_text(a): _number(b) for a, b in last[0][1].items()}
+            items = {s: sample.get(s) for s in STATUSES}
+            spend = sample.get("spend", spend)
+            outstanding = sample.get("outstanding", outstanding)
+            as_of = sample.get("ts")
     if all(v is None for v in items.values()):
         # No summary from a worker yet: count the records themselves.
         counts = dict.fromkeys(STATUSES, 0)
@@ -395,8 +405,9 @@ def read_status(client: Client) -> dict[str, Any]:
     return {
         "ns": client.ns,
         "items": items,
-        "spend": meta.get("spend"),
-        "questions_outstanding": meta.get("outstanding"),
+        "spend": spend,
+        "questions_outstanding": outstanding,
+        "as_of_ms": as_of,  # time of the progress sample read, when that was the source
         "dead_letters": int(r.xlen(k.dead)),
         "meta": meta,
         "streams": streams,
