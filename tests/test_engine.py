@@ -58,7 +58,7 @@ def test_inflight_window_costs_no_spend() -> None:
     """W=8 questions in flight per item spend within 2% of W=1 on the same crowd."""
     spends = []
     for window in (1, 8):
-        crowd = Crowd(3000, delta=0.6, seed=5)
+        crowd = Crowd(3000, delta=0.5, seed=5)
         eng = Engine(EngineConfig(alpha=1e-3, inflight=window, max_outstanding=10**6))
         eng.add_items((k, None) for k in crowd.keys)
         rounds = run(eng, crowd)

@@ -116,6 +116,7 @@ class Engine:
         self.seen = PairSet()
         self.pool = np.zeros(0, dtype=np.int64)  # reference members, in joining order
         self.pool_base = 0
+        self.shared = 1.0  # chance two answers share a source (Herfindahl index of volume)
         self.phase = "boot"
         self.block = np.zeros(0, dtype=np.int64)
         self.block_state = np.zeros((0, 0), dtype=np.int8)  # 0 unasked, 1 asked, 2 answered
@@ -404,6 +405,9 @@ class Engine:
         self.delta, self.se, self.src_answers = fit.delta, fit.se, fit.answers
         self.pooled, self.pooled_se = fit.pooled, fit.pooled_se
         self.counted_at_fit = self._counted()
+        share = np.bincount(self.ledger.answer("src"), minlength=len(self.delta)).astype(float)
+        share /= max(share.sum(), 1.0)
+        self.shared = float((share * share).sum())
 
     def _decide(self, touched: np.ndarray) -> None:
         """Commit, revise or give up on the touched items, following every consequence."""
@@ -414,8 +418,8 @@ class Engine:
             if len(todo) == 0:
                 return
             todo = todo[~led["pinned"][todo]]
-            llr, spread = led["llr"][todo], led["spread"][todo]
-            err = decision_error(llr, spread)
+            llr = led["llr"][todo]
+            err = decision_error(llr, self.ledger.spread(todo, self.shared))
             ok = err <= alpha
             lean = (llr > 0).astype(np.int8)
             side = led["side"][todo]
@@ -583,7 +587,7 @@ class Engine:
         keep = np.ones(len(members), dtype=bool)
         sides = led["side"][members].copy()
         for _ in range(len(members)):
-            err = decision_error(led["llr"][members], led["spread"][members])
+            err = decision_error(led["llr"][members], self.ledger.spread(members, self.shared))
             ok = pinned | (keep & (err <= self.config.alpha * ANCHOR_FACTOR))
             if (ok == keep).all():
                 break
@@ -735,7 +739,7 @@ class Engine:
             "delta": self.delta.tobytes(),
             "se": self.se.tobytes(),
             "src_answers": self.src_answers.tobytes(),
-            "pooled": [self.pooled, self.pooled_se],
+            "pooled": [self.pooled, self.pooled_se, self.shared],
             "labels": self.labels,
             "seen": self.seen.to_bytes(),
             "pool": self.pool.astype(np.int64).tobytes(),
@@ -764,7 +768,7 @@ class Engine:
             eng.delta = np.frombuffer(st["delta"], dtype=np.float64).copy()
             eng.se = np.frombuffer(st["se"], dtype=np.float64).copy()
             eng.src_answers = np.frombuffer(st["src_answers"], dtype=np.float64).copy()
-            eng.pooled, eng.pooled_se = st["pooled"]
+            eng.pooled, eng.pooled_se, eng.shared = st["pooled"]
             eng.labels = list(st["labels"])
             eng.seen = PairSet.from_bytes(st["seen"])
             eng.pool = np.frombuffer(st["pool"], dtype=np.int64).copy()

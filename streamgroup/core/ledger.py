@@ -22,7 +22,8 @@ UNPLACED = -1
 _ITEM_FIELDS: dict[str, tuple[Any, Any]] = {
     "side": (np.int8, UNPLACED),
     "llr": (np.float64, 0.0),
-    "spread": (np.float64, 0.0),
+    "s1": (np.float64, 0.0),  # sum of signed step sensitivities (shared-source part)
+    "s2": (np.float64, 0.0),  # sum of squared step sensitivities (independent part)
     "count": (np.int32, 0),
     "pinned": (np.bool_, False),
 }
@@ -85,7 +86,11 @@ class Ledger:
     def _contributions(self, idx: np.ndarray, delta: np.ndarray, se: np.ndarray,
                        trust_partners: bool = False
                        ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """(target, step, spread) for every (answer, counted endpoint) among ``idx``."""
+        """(target, step, sensitivity) for every (answer, counted endpoint) among ``idx``.
+
+        The sensitivity is signed like the answer's vote, so that answers of one source
+        add up (their bias errors are shared) while those of different sources do not.
+        """
         ans = self.answers
         a, b, d = ans["a"][idx], ans["b"][idx], ans["direction"][idx]
         src, same = ans["src"][idx], ans["same"][idx]
@@ -102,7 +107,7 @@ class Ledger:
             eps = reference_eps(self.items["llr"][partner], self.items["pinned"][partner])
         w, spread = answer_weights(delta[s], se[s], eps)
         sign = x * (2.0 * side[partner] - 1.0)
-        return target, sign * w, spread
+        return target, sign * w, sign * spread
 
     def count(self, idx: np.ndarray, delta: np.ndarray, se: np.ndarray) -> np.ndarray:
         """Add the evidence of answers ``idx`` (already given directions); return targets."""
@@ -110,7 +115,8 @@ class Ledger:
             return np.zeros(0, dtype=np.int64)
         target, step, spread = self._contributions(idx, delta, se)
         np.add.at(self.items["llr"], target, step)
-        np.add.at(self.items["spread"], target, spread)
+        np.add.at(self.items["s1"], target, spread)
+        np.add.at(self.items["s2"], target, spread * spread)
         np.add.at(self.items["count"], target, 1)
         return target
 
@@ -128,8 +134,19 @@ class Ledger:
             self.items["llr"][:n] = np.bincount(target, weights=step, minlength=n)[:n]
         target, step, spread = self._contributions(idx, delta, se)
         self.items["llr"][:n] = np.bincount(target, weights=step, minlength=n)[:n]
-        self.items["spread"][:n] = np.bincount(target, weights=spread, minlength=n)[:n]
+        self.items["s1"][:n] = np.bincount(target, weights=spread, minlength=n)[:n]
+        self.items["s2"][:n] = np.bincount(target, weights=spread * spread, minlength=n)[:n]
         self.items["count"][:n] = np.bincount(target, minlength=n)[:n]
+
+    def spread(self, idx: np.ndarray, shared: float) -> np.ndarray:
+        """Standard deviation of each item's evidence due to the uncertainty of the biases.
+
+        Errors of one source's bias move all its answers together, those of different
+        sources independently. ``shared`` is the chance that two answers come from the
+        same source (1 with a single source): the variance blends the two extremes.
+        """
+        s1, s2 = self.items["s1"][idx], self.items["s2"][idx]
+        return np.sqrt(shared * s1 * s1 + (1.0 - shared) * s2)
 
     def release_pending(self) -> np.ndarray:
         """Give directions to waiting answers whose partner is now placed; return them."""
