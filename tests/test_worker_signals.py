@@ -1,0 +1,38 @@
+"""SIGTERM: the worker commits the batch in hand and exits 0; a restart continues from there."""
+
+from __future__ import annotations
+
+import signal
+
+import pytest
+import redis
+
+from streamgroup.keys import GROUP, Keys
+from tests.test_crash import consumed, recorded_input, spawn, wait_for, write_input
+
+pytestmark = [pytest.mark.redis, pytest.mark.slow]
+
+
+def test_sigterm_commits_the_batch_in_hand_and_exits_zero(redis_url: str) -> None:
+    """After SIGTERM mid-stream: exit 0, nothing left pending, journal folded into a snapshot."""
+    r = redis.Redis.from_url(redis_url)
+    crowd, entries = recorded_input(n=150, seed=2)
+    write_input(r, "sig", crowd, entries)
+    k = Keys("sig")
+    total = r.xlen(k.answers)
+    proc = spawn(redis_url, "sig", batch=5, snapshot_every=3600)
+    wait_for(lambda: int(r.hget(k.meta, "seq") or 0) >= 20 or proc.poll() is not None, 30,
+             "the worker to commit batches")
+    proc.send_signal(signal.SIGTERM)
+    assert proc.wait(15) == 0
+    read = int(r.hget(k.meta, "entries:answers") or 0)
+    assert 0 < read < total  # stopped mid-stream
+    assert r.xpending(k.answers, GROUP)["pending"] == 0
+    assert r.xpending(k.items, GROUP)["pending"] == 0
+    assert r.xlen(k.answers) == total - read
+    assert not r.exists(k.journal) and r.exists(k.snapshot)
+    proc = spawn(redis_url, "sig", batch=50)
+    wait_for(lambda: consumed(r, "sig"), 60, "the restarted worker to finish the stream")
+    proc.send_signal(signal.SIGTERM)
+    assert proc.wait(15) == 0
+    assert int(r.hget(k.meta, "entries:answers")) == total
