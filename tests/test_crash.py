@@ -142,7 +142,7 @@ def test_sigkill_at_random_moments_matches_an_uninterrupted_run(redis_url: str) 
         if kills % 4 == 3:  # now and then, kill during start-up and recovery
             time.sleep(rng.uniform(0.0, 0.4))
         else:
-            wait_for(lambda s=seq0: r.hget(meta_key, "seq") != s or proc.poll() is not None,
+            wait_for(lambda s=seq0, p=proc: r.hget(meta_key, "seq") != s or p.poll() is not None,
                      30, "the worker to commit a batch")
             time.sleep(rng.uniform(0.0, 0.04))
         assert proc.poll() is None, proc.stderr.read().decode() if proc.stderr else ""
