@@ -79,6 +79,9 @@ def test_top_level_help_and_no_command(capsys) -> None:
     (["lookup", "k", "--redis", "http://127.0.0.1:1"], "redis"),
     (["lookup", "k", "--ns", "bad ns"], "ns"),
     (["demo", "--items", "3"], "--items"),
+    (["demo", "--alpha", "0.7"], "--alpha"),
+    (["demo", "--inflight", "0"], "--inflight"),
+    (["demo", "--embedded", "docker"], "invalid choice"),
     (["status", "--config", "/nonexistent/sg.toml"], "not found"),
 ])
 def test_usage_mistakes_are_one_line_exit_2(argv: list[str], needle: str, capsys) -> None:
