@@ -47,12 +47,18 @@ def plot_progress(data: RunData) -> str:
         ax.plot(t, h["asking"] + h["waiting"], label="pending (asking + waiting)",
                 color="tab:orange", lw=2)
         ax.plot(t, h["unresolved"], label="unresolved", color="tab:red", lw=1.5)
-        ax.plot(t, h["outstanding"], label="questions outstanding", color="tab:blue",
-                lw=1, ls="--")
+        # Questions in flight can outnumber the items many times over during a burst:
+        # their own axis keeps the item lines readable.
+        ax2 = ax.twinx()
+        ax2.plot(t, h["outstanding"], label="questions outstanding (right axis)",
+                 color="tab:blue", lw=1, ls="--")
+        ax2.set_ylabel("questions outstanding", color="tab:blue")
+        ax2.set_ylim(bottom=0)
         ax.set_xlabel(label)
-        ax.set_ylabel("items / questions")
+        ax.set_ylabel("items")
         ax.set_ylim(bottom=0)
-        ax.legend(loc="best", fontsize=9)
+        lines = ax.get_lines() + ax2.get_lines()
+        ax.legend(lines, [ln.get_label() for ln in lines], loc="best", fontsize=9)
         ax.grid(alpha=0.3)
     else:
         _no_data(ax, "progress samples")
