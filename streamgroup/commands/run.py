@@ -1,5 +1,10 @@
 """``streamgroup run``: the long-lived worker.
 
+Exit codes: 0 after a requested stop; 2 a user mistake found before the worker starts
+(bad setting, unreachable Redis, metrics address taken); 3 the state in Redis is
+inconsistent (for example the namespace's data vanished): the worker refuses to start
+over silently; 1 an unexpected error (logged with its traceback).
+
 Signals: the first SIGTERM or SIGINT asks the worker to stop (it commits the batch in hand
 within the grace period and exits 0); a second one exits at once. A hard exit is safe by
 design: whatever was not committed is still pending in its stream and is applied once by
@@ -11,13 +16,14 @@ from __future__ import annotations
 import argparse
 import os
 import signal
+import socket
 import sys
 from collections.abc import Callable
 from dataclasses import fields
 from types import FrameType
 
 from ..settings import Settings
-from . import add_setting_flags, example, make_client, settings_from_args
+from . import UserError, add_setting_flags, example, make_client, settings_from_args
 
 NAME = "run"
 HELP = "run the worker: read items and answers, ask questions, commit decisions"
@@ -31,8 +37,12 @@ STREAMGROUP_REDIS=rediss://:secret@redis.internal:6380/0 streamgroup run --confi
     add_setting_flags(p, ALL_SETTINGS)
 
 
-def install_signal_handlers(stop: Callable[[], None]) -> None:
-    """First signal: ``stop()``; second: leave now (the handler only sets state)."""
+def install_signal_handlers(stop: Callable[[], None],
+                            hard_exit: Callable[[int], None] = os._exit) -> None:
+    """First SIGTERM/SIGINT: ``stop()`` (the worker drains); second: ``hard_exit`` now.
+
+    The handler only sets state or leaves; it never raises into the loop.
+    """
     seen = {"n": 0}
 
     def handler(signum: int, _frame: FrameType | None) -> None:
@@ -42,10 +52,25 @@ def install_signal_handlers(stop: Callable[[], None]) -> None:
         else:
             os.write(2, f"streamgroup run: second {signal.Signals(signum).name}, "
                         "exiting now\n".encode())
-            os._exit(128 + signum)
+            hard_exit(128 + signum)
 
     signal.signal(signal.SIGTERM, handler)
     signal.signal(signal.SIGINT, handler)
+
+
+def check_metrics_addr(addr: str) -> None:
+    """Fail at once, as a user error, when the metrics address cannot be bound."""
+    if not addr:
+        return
+    host, _, port = addr.rpartition(":")
+    family = socket.AF_INET6 if ":" in host.strip("[]") else socket.AF_INET
+    try:
+        with socket.socket(family, socket.SOCK_STREAM) as s:
+            s.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+            s.bind((host.strip("[]"), int(port)))
+    except OSError as exc:
+        raise UserError(f"--metrics-addr {addr}: cannot listen there "
+                        f"({exc.strerror or exc})") from None
 
 
 def run(args: argparse.Namespace) -> int:
@@ -54,6 +79,7 @@ def run(args: argparse.Namespace) -> int:
     # the worker rides out lost connections with backoff instead.
     with make_client(settings) as client:
         client.redis.ping()
+    check_metrics_addr(settings.metrics_addr)
     from ..logs import configure_logging
     from ..stream.worker import Worker
 
