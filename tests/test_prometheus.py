@@ -187,3 +187,31 @@ def test_real_prometheus_scrapes_a_running_worker(redis_url):
             prom.wait_value("streamgroup_spend_answers", total(final, "streamgroup_spend_answers"))
         finally:
             prom.stop()
+
+
+def test_readme_lists_every_metric():
+    """The README's metrics table names every metric the worker exports (no silent drift)."""
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    missing = [fam for fam, samples in exported_names().items()
+               if not any(f"`{s.removesuffix('_bucket')}`" in readme
+                          or f"`{fam}`" in readme for s in samples)]
+    assert not missing, f"metrics missing from README.md: {missing}"
+
+
+def test_per_source_series_are_bounded():
+    """Only the busiest sources get their own series; the rest fold into `other`."""
+    from streamgroup.serve.metrics import TOP_SOURCES
+
+    m = WorkerMetrics()
+    rows = [{"source": f"s{i}", "delta": 0.5, "answers": 1000 - i} for i in range(200)]
+    rows[-1] = {"source": "s199", "delta": -0.5, "answers": 1}
+    m.set_sources(rows)
+    labels = {s.labels["source"]: s.value
+              for fam in m.registry.collect() if fam.name == "streamgroup_source_answers"
+              for s in fam.samples}
+    assert len(labels) == TOP_SOURCES + 1 and "s0" in labels and "s199" not in labels
+    assert labels["other"] == sum(r["answers"] for r in rows[TOP_SOURCES:])
+    m.set_sources(rows[:3])  # sources that fell away lose their series
+    labels = {s.labels["source"] for fam in m.registry.collect()
+              if fam.name == "streamgroup_source_bias" for s in fam.samples}
+    assert labels == {"s0", "s1", "s2"}
