@@ -46,3 +46,11 @@ class Columns:
 
     def nbytes(self) -> int:
         return sum(a.nbytes for a in self.data.values())
+
+
+def uniq(x: np.ndarray) -> np.ndarray:
+    """Sorted distinct values (a plain sort: faster than np.unique's hashing for ints)."""
+    if len(x) < 2:
+        return np.asarray(x, dtype=np.int64)
+    y = np.sort(x)
+    return y[np.r_[True, y[1:] != y[:-1]]]

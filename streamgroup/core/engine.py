@@ -39,7 +39,7 @@ from ..keys import (
     WHY_SEED,
 )
 from . import bootstrap, noise, planner, validate
-from .columns import Columns
+from .columns import Columns, uniq
 from .evidence import decision_error
 from .ledger import UNPLACED, Ledger
 from .pairset import MAX_ITEMS, MAX_SOURCES, PairSet, pair_keys
@@ -117,6 +117,10 @@ class Engine:
         self.pool = np.zeros(0, dtype=np.int64)  # reference members, in joining order
         self.pool_base = 0
         self.shared = 1.0  # chance two answers share a source (Herfindahl index of volume)
+        # planning work lists: items to look at in the next round
+        self.nudged: list[np.ndarray] = []
+        self.carry = np.zeros(0, dtype=np.int64)
+        self.cursor = 0  # items from here on have never been looked at by the planner
         self.phase = "boot"
         self.block = np.zeros(0, dtype=np.int64)
         self.block_state = np.zeros((0, 0), dtype=np.int8)  # 0 unasked, 1 asked, 2 answered
@@ -141,24 +145,27 @@ class Engine:
         return None if i is None else self._record(i)
 
     def _record(self, i: int) -> Record:
+        return self._records(np.array([i]))[0]
+
+    def _records(self, idx: np.ndarray) -> list[Record]:
         led = self.ledger.items
-        side = int(led["side"][i])
-        llr = float(led["llr"][i])
-        status = int(self.items["status"][i])
-        return Record(
-            key=self.keys[i],
-            side=None if side == UNPLACED else self.label(side),
-            status=STATUS_NAMES[status],
-            llr=round(llr if side == 1 else -llr if side == 0 else abs(llr), 6),
-            answers=int(led["count"][i]),
-            rev=int(self.items["rev"][i]),
-            pinned=bool(led["pinned"][i]),
-        )
+        side = led["side"][idx]
+        llr = led["llr"][idx]
+        shown = np.where(side == 1, llr, np.where(side == 0, -llr, np.abs(llr))).round(6)
+        names = [self.label(0), self.label(1), None]
+        keys = self.keys
+        return [
+            Record(keys[i], names[s], STATUS_NAMES[st], v, c, r, p)
+            for i, s, st, v, c, r, p in zip(
+                idx.tolist(), side.tolist(), self.items["status"][idx].tolist(),
+                shown.tolist(), led["count"][idx].tolist(), self.items["rev"][idx].tolist(),
+                led["pinned"][idx].tolist(), strict=True)
+        ]
 
     def take_changes(self) -> list[Record]:
         """Records changed since the last call (each item once, in item order)."""
         dirty = np.nonzero(self.items.view("dirty"))[0]
-        out = [self._record(int(i)) for i in dirty]
+        out = self._records(dirty)
         self.items["dirty"][dirty] = False
         self.items["shown_side"][dirty] = self.ledger.items["side"][dirty]
         self.items["shown_status"][dirty] = self.items["status"][dirty]
@@ -220,8 +227,11 @@ class Engine:
     def validate_answer(self, ans: Any) -> str | None:
         if not isinstance(ans, Answer):
             return f"expected an Answer, got {type(ans).__name__}"
-        err = (validate.item_key(ans.a, "a") or validate.item_key(ans.b, "b")
-               or validate.same_flag(ans.same) or validate.source_id(ans.source))
+        index = self.index  # keys already registered were validated then
+        err = ((ans.a not in index and validate.item_key(ans.a, "a"))
+               or (ans.b not in index and validate.item_key(ans.b, "b"))
+               or validate.same_flag(ans.same)
+               or (ans.source not in self.source_index and validate.source_id(ans.source)))
         if err:
             return err
         if ans.a == ans.b:
@@ -353,15 +363,18 @@ class Engine:
         src = self._source_ids([x.source for x in answers])
         same = np.fromiter((bool(x.same) for x in answers), dtype=bool, count=len(answers))
         fresh = self.seen.add_new(pair_keys(a, b, src))
-        # A qid answered twice is a duplicate even from another source.
-        for k, ans in enumerate(answers):
-            if ans.qid is None:
-                continue
-            n = int(ans.qid)
-            if self.q["state"][n] == Q_ANSWERED:
-                fresh[k] = False
-            else:  # answered, even if the (pair, source) was heard before
-                self._close_question(n, Q_ANSWERED)
+        # A qid answered twice is a duplicate even from another source; a qid is closed
+        # by its first answer even when that (pair, source) was heard before.
+        with_q = np.fromiter((k for k, x in enumerate(answers) if x.qid is not None),
+                             dtype=np.int64)
+        if len(with_q):
+            qn = np.fromiter((int(answers[k].qid) for k in with_q.tolist()), dtype=np.int64,
+                             count=len(with_q))
+            first = np.zeros(len(qn), dtype=bool)
+            first[np.unique(qn, return_index=True)[1]] = True
+            again = (self.q["state"][qn] == Q_ANSWERED) | ~first
+            fresh[with_q[again]] = False
+            self._close_questions(qn[~again], Q_ANSWERED)
         out = [APPLIED if f else DUPLICATE for f in fresh.tolist()]
         self.duplicates += int((~fresh).sum())
         if not fresh.any():
@@ -369,6 +382,7 @@ class Engine:
         a, b, src, same = a[fresh], b[fresh], src[fresh], same[fresh]
         self.spend += len(a)
         self._touch(np.concatenate([a, b]))
+        self._nudge(np.concatenate([a, b]))
         if self.phase == "boot":
             self._mark_block_answers(a, b)
         idx = self.ledger.append_answers(a, b, src, same)
@@ -390,14 +404,20 @@ class Engine:
         st[waiting] = ASKING
         self.items["dirty"][idx] = True
 
-    def _close_question(self, n: int, state: int) -> None:
-        if self.q["state"][n] == Q_OPEN:
-            self.outstanding -= 1
-            if self.q["why"][n] == PLACE:  # only placement questions hold an item's slot
-                self.items["inflight"][self.q["target"][n]] -= 1
-            elif self.q["why"][n] == SEED and state == Q_EXPIRED:
-                self._block_mark(self.q["target"][n], self.q["partner"][n], 0)
-        self.q["state"][n] = state
+    def _close_questions(self, qn: np.ndarray, state: int) -> None:
+        q = self.q
+        was_open = q["state"][qn] == Q_OPEN
+        opened = qn[was_open]
+        self.outstanding -= len(opened)
+        why = q["why"][opened]
+        place = opened[why == PLACE]  # only placement questions hold an item's slot
+        np.subtract.at(self.items["inflight"], q["target"][place], 1)
+        self._nudge(q["target"][place].astype(np.int64))
+        if state == Q_EXPIRED:
+            seed = opened[why == SEED]  # a block pair not answered in time is asked again
+            if len(seed):
+                self._block_mark(q["target"][seed], q["partner"][seed], 0)
+        q["state"][qn] = state
 
     # -- decisions --------------------------------------------------------------
     def _refit(self, cold: bool = False) -> None:
@@ -413,7 +433,7 @@ class Engine:
         """Commit, revise or give up on the touched items, following every consequence."""
         led = self.ledger.items
         alpha = self.config.alpha
-        todo = np.unique(touched)
+        todo = uniq(touched)
         for _ in range(64):
             if len(todo) == 0:
                 return
@@ -443,7 +463,7 @@ class Engine:
             elif len(newly):
                 released = self.ledger.release_pending()
                 todo = self.ledger.count(released, self.delta, self.se)
-                todo = np.unique(todo)
+                todo = uniq(todo)
             else:
                 return
 
@@ -569,6 +589,7 @@ class Engine:
         self._committed(members[strong & ~pinned])
         self.items["dirty"][members] = True
         self.phase = "run"
+        self.cursor = 0  # every item is looked at once more
         if len(self.pool) == 0:  # nothing could be learned: a person must look
             st = self.items.view("status")
             st[(st != PLACED)] = UNRESOLVED
@@ -626,25 +647,34 @@ class Engine:
         return float(np.max(np.abs(weight(self.delta[seen]))))
 
     def _plan_place(self, now_ms: int, room: int) -> list[Question]:
+        """Placement questions for items that were nudged, carried over, or never asked.
+
+        Only those items are looked at (not every item), so a round costs time in
+        proportion to the answers that arrived, not to the size of the deployment.
+        """
         if room <= 0 or len(self.pool) == 0:
             return []
         cfg = self.config
-        led = self.ledger.items
-        st = self.items.view("status")
-        cand = np.nonzero((st == WAITING) | (st == ASKING))[0]
-        cand = cand[led["side"][cand] == UNPLACED]
-        if len(cand) == 0:
+        parts = [self.carry, *self.nudged]
+        self.nudged = []
+        cand = uniq(np.concatenate(parts)) if parts else np.zeros(0, dtype=np.int64)
+        targets, self.carry = self._serve(cand, room)
+        n = len(self.keys)
+        while len(targets) < room and self.cursor < n:
+            end = min(n, self.cursor + max(4 * (room - len(targets)), 1024))
+            more, rest = self._serve(np.arange(self.cursor, end), room - len(targets))
+            self.cursor = end
+            targets = np.concatenate([targets, more])
+            self.carry = np.concatenate([self.carry, rest])
+        if len(targets) == 0:
             return []
-        need = planner.answers_still_needed(led["llr"][cand], self.boundary, self._best_step())
-        room_each = planner.slots(cand, need, self.items["inflight"][cand],
-                                  led["count"][cand], cfg.inflight, cfg.item_ceiling)
-        cand, room_each = cand[room_each > 0], room_each[room_each > 0]
-        if len(cand) == 0:
-            return []
-        targets = np.repeat(cand, room_each)[:room]
-        # k-th slot of an item in this round, so its partners are distinct
-        starts = np.cumsum(room_each) - room_each
-        offset = (np.arange(len(targets)) - np.repeat(starts, room_each)[: len(targets)])
+        # distinct partners for the slots one item gets in one round
+        order = np.argsort(targets, kind="stable")
+        sorted_t = targets[order]
+        first = np.r_[0, np.nonzero(np.diff(sorted_t))[0] + 1]
+        offset = np.empty(len(targets), dtype=np.int64)
+        offset[order] = np.arange(len(targets)) - np.repeat(first, np.diff(np.r_[first,
+                                                                              len(targets)]))
         k = self.items["asked"][targets].astype(np.uint64) + offset.astype(np.uint64)
         partners = self._partners(targets, k)
         out = self._issue(targets, partners, PLACE, now_ms)
@@ -658,6 +688,30 @@ class Engine:
             ib = ib + (ib >= ia)
             out += self._issue(self.pool[ia], self.pool[ib], CHECK, now_ms)
         return out
+
+    def _serve(self, cand: np.ndarray, room: int) -> tuple[np.ndarray, np.ndarray]:
+        """(one target per question to ask, candidates left with room when ``room`` ran out)."""
+        empty = np.zeros(0, dtype=np.int64)
+        if len(cand) == 0 or room <= 0:
+            return empty, cand.astype(np.int64)
+        cfg = self.config
+        led = self.ledger.items
+        st = self.items["status"][cand]
+        cand = cand[((st == WAITING) | (st == ASKING)) & (led["side"][cand] == UNPLACED)]
+        need = planner.answers_still_needed(led["llr"][cand], self.boundary, self._best_step())
+        each = planner.slots(cand, need, self.items["inflight"][cand], led["count"][cand],
+                             cfg.inflight, cfg.item_ceiling)
+        cand, each = cand[each > 0], each[each > 0]
+        if len(cand) == 0:
+            return empty, empty
+        ends = np.cumsum(each)
+        served = int(np.searchsorted(ends, room, side="right"))
+        targets = np.repeat(cand, each)[:room]
+        return targets.astype(np.int64), cand[served:].astype(np.int64)
+
+    def _nudge(self, idx: np.ndarray) -> None:
+        if len(idx):
+            self.nudged.append(np.asarray(idx, dtype=np.int64))
 
     def _active_pool(self) -> int:
         """Pool members in rotation: it grows only by doublings, so that each item's
@@ -721,8 +775,7 @@ class Engine:
         state = q["state"][lo:n]
         late = np.nonzero((state == Q_OPEN)
                           & (q["ts"][lo:n] + self.config.question_timeout_ms <= now_ms))[0]
-        for off in late.tolist():
-            self._close_question(lo + off, Q_EXPIRED)
+        self._close_questions(lo + late, Q_EXPIRED)
         open_ = np.nonzero(q["state"][lo:n] == Q_OPEN)[0]
         self.q_low = lo + (int(open_[0]) if len(open_) else n - lo)
 
@@ -751,6 +804,8 @@ class Engine:
             "ledger": self.ledger.to_state(),
             "items": self.items.to_state(),
             "q": self.q.to_state(),
+            "work": [np.concatenate([self.carry, *self.nudged]).astype(np.int64).tobytes(),
+                     self.cursor],
         }
         return msgpack.packb(state, use_bin_type=True)
 
@@ -782,6 +837,8 @@ class Engine:
             eng.ledger = Ledger.from_state(st["ledger"])
             eng.items.load_state(st["items"])
             eng.q.load_state(st["q"])
+            carry, eng.cursor = st["work"]
+            eng.carry = uniq(np.frombuffer(carry, dtype=np.int64))
         except EngineInputError:
             raise
         except (ValueError, KeyError, TypeError, msgpack.UnpackException) as exc:

@@ -12,6 +12,12 @@ from ..keys import MAX_ID_BYTES, MAX_KEY_BYTES, MAX_LABEL_BYTES, MAX_SOURCE_BYTE
 def _text(value: Any, what: str, limit: int, allow_empty: bool = False) -> str | None:
     if not isinstance(value, str):
         return f"{what} must be text, got {type(value).__name__}"
+    if value.isascii() and value.isprintable():  # the common case, checked at C speed
+        if not value and not allow_empty:
+            return f"{what} is empty"
+        if len(value) > limit:
+            return f"{what} is {len(value)} bytes, over the limit of {limit}"
+        return None
     size = len(value.encode("utf-8", "surrogatepass"))
     if size == 0 and not allow_empty:
         return f"{what} is empty"
