@@ -78,10 +78,12 @@ def scrub_secrets(_logger: Any, _method: str,
 
 
 def _renderer(fmt: str, stream: TextIO) -> Any:
+    tty = bool(getattr(stream, "isatty", lambda: False)())
     if fmt == "auto":
-        fmt = "console" if getattr(stream, "isatty", lambda: False)() else "json"
+        fmt = "console" if tty else "json"
     if fmt == "console":
-        return structlog.dev.ConsoleRenderer(colors=False)
+        # Colour codes only for a person at a terminal, never into a file or a pipe.
+        return structlog.dev.ConsoleRenderer(colors=tty)
     return structlog.processors.JSONRenderer(sort_keys=False, default=str)
 
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 import io
 import json
 import logging
+import re
 
 import pytest
 import structlog
@@ -56,9 +57,19 @@ def test_console_rendering_on_a_terminal():
     configure_logging("info", "auto", stream=buf)
     structlog.get_logger().info("worker_started", ns="sg")
     out = buf.getvalue()
-    assert "worker_started" in out and "ns=sg" in out
+    assert "\x1b[" in out  # coloured for a person
+    plain = re.sub(r"\x1b\[[0-9;]*m", "", out)
+    assert "worker_started" in plain and "ns=sg" in plain
     with pytest.raises(json.JSONDecodeError):
         json.loads(out)
+
+
+def test_console_format_into_a_file_has_no_colour_codes():
+    """fmt=console on a non-terminal renders text without escape sequences."""
+    buf = io.StringIO()
+    configure_logging("info", "console", stream=buf)
+    structlog.get_logger().info("worker_started", ns="sg")
+    assert "ns=sg" in buf.getvalue() and "\x1b[" not in buf.getvalue()
 
 
 @pytest.mark.parametrize("bad", [("loud", "json"), ("info", "xml")])

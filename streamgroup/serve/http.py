@@ -92,6 +92,7 @@ class _Server(ThreadingHTTPServer):
 class _Handler(BaseHTTPRequestHandler):
     server: _Server
     protocol_version = "HTTP/1.1"
+    timeout = 30  # seconds: an idle or stalled client cannot hold a handler thread forever
 
     def do_GET(self) -> None:  # noqa: N802 (the name http.server dispatches to)
         path = self.path.split("?", 1)[0]
