@@ -66,12 +66,24 @@ def test_metrics_exposition_parses_and_follows_updates(served):
 def test_healthz_fails_when_the_loop_stops_beating(served):
     """/healthz is 200 while heartbeats are recent and 503 once they go stale."""
     _, health, clock, server = served
+    health.set_ready(True)
     assert get(server.url + "/healthz")[0] == 200
     clock.t += 11
     code, _, body = get(server.url + "/healthz")
     assert code == 503 and "stale" in body
     health.beat()
     assert get(server.url + "/healthz")[0] == 200
+
+
+def test_slow_start_up_is_alive_but_not_ready(served):
+    """Before the loop first becomes ready, a long state load is not reported as a hang."""
+    _, health, clock, server = served
+    clock.t += 600
+    code, _, body = get(server.url + "/healthz")
+    assert code == 200 and body.startswith("starting")
+    assert get(server.url + "/readyz")[0] == 503
+    health.set_ready(True)
+    assert get(server.url + "/readyz")[0] == 200
 
 
 def test_readyz_needs_ready_flag_and_a_live_loop(served):

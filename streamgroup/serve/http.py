@@ -26,8 +26,12 @@ class Health:
 
     ``beat()`` once per loop turn (a blocked XREADGROUP returns within ``block_ms``, so a
     live loop beats at least that often); ``set_ready(True)`` once the state is loaded and
-    reading has begun, ``set_ready(False)`` while draining or reconnecting. The clock is
-    injectable so tests need not sleep.
+    reading has begun, ``set_ready(False)`` while draining or reconnecting.
+
+    Liveness is judged on heartbeats only once the loop has started (the first
+    ``set_ready(True)``): loading a large state may take minutes and is not a hang. A
+    start-up that never finishes shows as never ready, which is what a start-up probe on
+    ``/readyz`` is for. The clock is injectable so tests need not sleep.
     """
 
     def __init__(self, stale_after: float = DEFAULT_STALE_AFTER,
@@ -39,8 +43,8 @@ class Health:
         self._clock = clock
         self._metrics = metrics
         self._lock = threading.Lock()
-        # Start-up counts as a beat: loading state may take a while and is not a hang.
         self._last_beat = clock()
+        self._started = False
         self._ready = False
 
     def beat(self) -> None:
@@ -50,6 +54,9 @@ class Health:
     def set_ready(self, ready: bool) -> None:
         with self._lock:
             self._ready = bool(ready)
+            if ready:
+                self._started = True
+                self._last_beat = self._clock()  # becoming ready is a sign of life too
         if self._metrics is not None:
             self._metrics.ready.set(1 if ready else 0)
 
@@ -58,7 +65,18 @@ class Health:
             return max(0.0, self._clock() - self._last_beat)
 
     def alive(self) -> bool:
-        return self.beat_age() <= self.stale_after
+        return self.liveness()[0]
+
+    def liveness(self) -> tuple[bool, str]:
+        """(alive, a one-line reason for /healthz)."""
+        with self._lock:
+            started = self._started
+            age = max(0.0, self._clock() - self._last_beat)
+        if not started:
+            return True, f"starting: loading state ({age:.1f}s since start)"
+        if age <= self.stale_after:
+            return True, f"ok: last loop heartbeat {age:.1f}s ago"
+        return False, f"stale: last loop heartbeat {age:.1f}s ago (limit {self.stale_after:g}s)"
 
     def ready(self) -> bool:
         with self._lock:
@@ -99,11 +117,8 @@ class _Handler(BaseHTTPRequestHandler):
         if path == "/metrics":
             self._send(200, generate_latest(self.server.metrics.registry), CONTENT_TYPE_LATEST)
         elif path == "/healthz":
-            h = self.server.health
-            age = h.beat_age()
-            ok = age <= h.stale_after
-            text = f"{'ok' if ok else 'stale'}: last loop heartbeat {age:.1f}s ago\n"
-            self._send(200 if ok else 503, text.encode())
+            ok, text = self.server.health.liveness()
+            self._send(200 if ok else 503, (text + "\n").encode())
         elif path == "/readyz":
             ok = self.server.health.ready()
             self._send(200 if ok else 503, b"ready\n" if ok else b"not ready\n")
