@@ -284,11 +284,12 @@ class Engine:
         out = []
         relabelled = labels != self.labels
         self.labels = labels
-        for key, side in batch:
-            i = self.index.get(key)
-            fresh = i is None
-            if fresh:
-                i = self._register(key)
+        known = len(self.keys)
+        idx = self._register_many([key for key, _ in batch])
+        seen: set[int] = set()
+        for (_, side), i in zip(batch, idx.tolist(), strict=True):
+            fresh = i >= known and i not in seen
+            seen.add(i)
             if side is None:
                 out.append(APPLIED if fresh else DUPLICATE)
                 continue
@@ -301,20 +302,22 @@ class Engine:
             self.items["dirty"][: len(self.keys)] = True
         return out
 
-    def _register(self, key: str) -> int:
-        i = len(self.keys)
-        self.keys.append(key)
-        self.index[key] = i
-        self.ledger.add_items(1)
-        self.items.grow(1)
-        self.items["dirty"][i] = True
-        return i
-
     def _register_many(self, keys: Sequence[str]) -> np.ndarray:
+        """Indices of ``keys``, registering the unknown ones (as ``waiting``) in order."""
+        index = self.index
+        start = len(self.keys)
         out = np.empty(len(keys), dtype=np.int64)
         for k, key in enumerate(keys):
-            i = self.index.get(key)
-            out[k] = self._register(key) if i is None else i
+            i = index.get(key)
+            if i is None:
+                i = index[key] = len(self.keys)
+                self.keys.append(key)
+            out[k] = i
+        added = len(self.keys) - start
+        if added:
+            self.ledger.add_items(added)
+            self.items.grow(added)
+            self.items["dirty"][start:] = True
         return out
 
     def _pin(self, i: int, slot: int) -> None:
