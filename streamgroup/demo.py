@@ -108,11 +108,13 @@ class _Progress:
 
 def _progress_line(elapsed: float, st: dict[str, Any], n: int) -> str:
     c = _counts(st)
-    noise = ", ".join(f"{s['source']} {float(s.get('delta', math.nan)):+.2f}"
-                      for s in st["sources"][:3])
+    ranked = sorted((s for s in st["sources"] if s.get("answers")),
+                    key=lambda s: -float(s.get("delta", 0.0)))
+    shown = ranked[:2] + ranked[-1:] if len(ranked) > 3 else ranked
+    noise = ", ".join(f"{s['source']} {float(s.get('delta', math.nan)):+.2f}" for s in shown)
     return (f"[{elapsed:5.1f}s] placed {c['placed']}/{n}, asking {c['asking']}, "
             f"waiting {c['waiting']}, unresolved {c['unresolved']}, "
-            f"spend {st['spend'] or 0}" + (f"; learned bias: {noise}" if noise else ""))
+            f"spend {st['spend'] or 0}" + (f"; learned bias {noise}" if noise else ""))
 
 
 def _worker_thread(settings: Settings) -> tuple[Any, threading.Thread, dict[str, Any]]:
@@ -270,11 +272,13 @@ def run_demo(opts: DemoOptions, out: TextIO | None = None,
             if elapsed >= next_check:
                 next_check = elapsed + 0.25
                 st = client.status()
+                c = _counts(st)
+                finished = c["placed"] + c["unresolved"] >= opts.items
+                if finished:
+                    progress.last = -math.inf  # always show the final state
                 progress.maybe(elapsed, lambda st=st, e=elapsed: _progress_line(
                     e, st, opts.items))
-                c = _counts(st)
-                if c["placed"] + c["unresolved"] >= opts.items:
-                    finished = True
+                if finished:
                     break
             if elapsed > opts.time_limit:
                 break

@@ -30,7 +30,8 @@ def _script() -> list[str]:
 def test_run_places_items_then_stops_cleanly_on_sigterm(redis_url: str, tmp_path: Path) -> None:
     """The worker started by the CLI answers a crowd through the streams; SIGTERM exits 0."""
     cfg = tmp_path / "sg.toml"
-    cfg.write_text('[streamgroup]\nns = "cli"\nblock-ms = 50\nmetrics-addr = ""\n')
+    cfg.write_text('[streamgroup]\nns = "cli"\nblock-ms = 50\nmetrics-addr = ""\n'
+                   "history-every = 0.2\n")
     env = {k: v for k, v in os.environ.items() if not k.startswith("STREAMGROUP_")}
     env["STREAMGROUP_CONSUMER"] = "cli-worker"
     proc = subprocess.Popen([*_script(), "run", "--redis", redis_url, "--config", str(cfg),
@@ -53,6 +54,11 @@ def test_run_places_items_then_stops_cleanly_on_sigterm(redis_url: str, tmp_path
             recs = client.lookup_many(crowd.keys)
             done = all(r is not None and r["status"] in ("placed", "unresolved") for r in recs)
         assert done, "the worker did not decide every item within 60 s"
+        # `status` shows the learned noise the worker publishes with its progress samples.
+        while time.monotonic() < deadline and not client.status()["sources"]:
+            time.sleep(0.05)
+        (src,) = client.status()["sources"]
+        assert src["source"] == "src-000" and 0.5 < src["delta"] <= 1.0
         assert proc.poll() is None
         proc.send_signal(signal.SIGTERM)
         assert proc.wait(20) == 0

@@ -38,6 +38,11 @@ def run(args: argparse.Namespace) -> int:
         raise UserError(f"--alpha must be in (0, 0.5) (got {args.alpha})")
     if not 1 <= args.inflight <= 64:
         raise UserError(f"--inflight must be between 1 and 64 (got {args.inflight})")
+    if args.report:
+        try:
+            import matplotlib  # noqa: F401 - only checking that the report can be drawn
+        except ImportError:
+            raise UserError("--report needs matplotlib: pip install -e '.[report]'") from None
     from ..demo import DemoOptions, run_demo
     from ..logs import configure_logging
 

@@ -18,6 +18,7 @@ import time
 from collections.abc import Callable
 from typing import Any
 
+import msgpack
 import redis
 import structlog
 
@@ -357,11 +358,20 @@ class Worker:
             return
         st = self.state.engine.stats()
         items = st["items"]
-        self.client.xadd(self.keys.history, {
+        pipe = self.client.pipeline(transaction=False)
+        pipe.xadd(self.keys.history, {
             "ts": int(now * 1000), "placed": items.get("placed", 0),
             "asking": items.get("asking", 0), "waiting": items.get("waiting", 0),
             "unresolved": items.get("unresolved", 0), "spend": st["spend"],
             "outstanding": st["outstanding"]}, maxlen=self.caps.history, approximate=True)
+        # The learned noise for `status`, the demo and the report: a summary of the state
+        # just committed (msgpack map per source), refreshed with each progress sample.
+        noise = {s["source"]: msgpack.packb({"delta": s["delta"], "se": s["se"],
+                                             "answers": s["answers"]})
+                 for s in self.state.engine.sources() if s["answers"]}
+        if noise:
+            pipe.hset(self.keys.noise, mapping=noise)
+        pipe.execute()
 
     def _group_info(self) -> None:
         assert self.client is not None and self.metrics is not None
