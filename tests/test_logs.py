@@ -110,6 +110,8 @@ def test_redis_password_never_reaches_a_log_line():
     ("requirepass s3cr3t", "requirepass ***"),
     ("invalid username-password pair", "invalid username-password pair"),
     ("redis://h:6379/0", "redis://h:6379/0"),
+    ("redis://u:p@ss@h:6379/0", "redis://u:***@h:6379/0"),
+    ("see redis://:a@h/0 and rediss://:b@k/1", "see redis://:***@h/0 and rediss://:***@k/1"),
 ])
 def test_scrub_text_table(text, expect):
     """Each secret shape is masked and harmless text is left as it is."""
