@@ -225,3 +225,49 @@ def test_timeouts_reissue_questions() -> None:
     again = eng.plan(6000)
     assert {frozenset((q.a, q.b)) for q in again} == {frozenset((q.a, q.b)) for q in first}
     assert eng.stats()["outstanding"] == len(again)
+
+
+def test_check_questions_follow_their_rate_and_pair_confident_items() -> None:
+    """check_rate adds about that share of questions, each between two reference members."""
+    crowd = Crowd(1500, delta=0.6, seed=12)
+    eng = Engine(EngineConfig(check_rate=0.05, max_outstanding=10**6))
+    eng.add_items((k, None) for k in crowd.keys)
+    now, checks, place = 0, [], 0
+    while not eng.done():
+        qs = eng.plan(now)
+        checks += [q for q in qs if q.why == "check"]
+        place += sum(q.why == "place" for q in qs)
+        eng.add_answers(crowd.answer_now(qs), now)
+        now += 1000
+    assert 0.03 * place <= len(checks) <= 0.07 * place
+    pool = {eng.keys[i] for i in eng.pool.tolist()}
+    assert all(q.a in pool and q.b in pool and q.a != q.b for q in checks)
+
+
+def test_budget_caps_questions_issued() -> None:
+    """No more questions than the budget are ever issued."""
+    crowd = Crowd(500, delta=0.6, seed=13)
+    eng = Engine(EngineConfig(budget=1000, max_outstanding=10**6))
+    eng.add_items((k, None) for k in crowd.keys)
+    issued = 0
+    for now in range(0, 200_000, 1000):
+        qs = eng.plan(now)
+        issued += len(qs)
+        eng.add_answers(crowd.answer_now(qs), now)
+    assert issued == 1000
+    assert not eng.done()
+
+
+def test_outstanding_cap_is_respected() -> None:
+    """Questions in flight never exceed max_outstanding."""
+    crowd = Crowd(800, delta=0.6, seed=14)
+    eng = Engine(EngineConfig(max_outstanding=50, inflight=8))
+    eng.add_items((k, None) for k in crowd.keys)
+    crowd.latency_ms = (1000, 5000)
+    now = 0
+    while not eng.done() and now < 10_000_000:
+        crowd.ask(eng.plan(now), now)
+        assert eng.stats()["outstanding"] <= 50
+        eng.add_answers(crowd.due(now), now)
+        now += 500
+    assert eng.done()
