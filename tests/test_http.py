@@ -179,6 +179,9 @@ def test_scrape_a_running_worker_every_metric_present_and_moving(redis_url):
     for name, labels in MOVING:
         assert total(last, name, **labels) > total(first, name, **labels), name
     assert total(last, "streamgroup_noise_pooled_bias") > 0.2
+    # Gauges that rise during the run (and may fall back by its end).
+    assert live.peaks[("streamgroup_questions_outstanding", ())] > 0
+    assert live.peaks[("streamgroup_items", (("status", "asking"),))] > 0
     assert {dict(k)["source"] for k in last["streamgroup_source_bias"]} <= {
         *live.crowd.source_names, "other"}
     for gauge in ("streamgroup_consumer_lag_entries", "streamgroup_pending_entries"):
