@@ -29,6 +29,7 @@ class Settings:
     redis: str = "redis://127.0.0.1:6379/0"
     ns: str = DEFAULT_NS
     alpha: float = 1e-3
+    alpha_slack: float = 0.03  # one commit may reach alpha*(1+slack) if the mean stays <= alpha
     inflight: int = 1
     max_outstanding: int = 10_000
     budget: int = 0
@@ -72,6 +73,8 @@ class Settings:
             raise bad("budget", "must be 0 (unlimited) or positive")
         if not (0.0 <= self.check_rate <= 0.5):
             raise bad("check_rate", "must be in [0, 0.5]")
+        if not (0.0 <= self.alpha_slack <= 0.25):
+            raise bad("alpha_slack", "must be in [0, 0.25]")
         for name in ("questions_maxlen", "decisions_maxlen", "dead_maxlen"):
             if getattr(self, name) < 0:
                 raise bad(name, "must be 0 (uncapped) or positive")
@@ -109,6 +112,7 @@ class Settings:
             item_ceiling=self.item_ceiling,
             question_timeout_ms=int(self.question_timeout * 1000),
             check_rate=self.check_rate,
+            alpha_slack=self.alpha_slack,
             seed=self.seed,
         )
 

@@ -88,6 +88,8 @@ def _check_config(c: EngineConfig) -> None:
             raise EngineInputError(f"{name} must be at least 1, got {getattr(c, name)!r}")
     if c.budget < 0:
         raise EngineInputError(f"budget must be >= 0, got {c.budget!r}")
+    if not (0.0 <= c.alpha_slack <= 0.25):
+        raise EngineInputError(f"alpha_slack must be in [0, 0.25], got {c.alpha_slack!r}")
     if not (0.0 <= c.check_rate <= 0.5):
         raise EngineInputError(f"check_rate must be in [0, 0.5], got {c.check_rate!r}")
 
@@ -117,6 +119,8 @@ class Engine:
         self.pool = np.zeros(0, dtype=np.int64)  # reference members, in joining order
         self.pool_base = 0
         self.shared = 1.0  # chance two answers share a source (Herfindahl index of volume)
+        self.err_sum = 0.0  # posterior errors of all commits so far, and their number
+        self.commits = 0
         # planning work lists: items to look at in the next round
         self.nudged: list[np.ndarray] = []
         self.carry = np.zeros(0, dtype=np.int64)
@@ -443,14 +447,18 @@ class Engine:
             todo = todo[~led["pinned"][todo]]
             llr = led["llr"][todo]
             err = decision_error(llr, self.ledger.spread(todo, self.shared))
-            ok = err <= alpha
             lean = (llr > 0).astype(np.int8)
             side = led["side"][todo]
-            newly = todo[ok & (side == UNPLACED)]
+            ok = err <= alpha
+            commit = self._within_budget(err, side == UNPLACED)
+            newly = todo[commit]
             flips = todo[ok & (side != UNPLACED) & (lean != side)]
             if len(newly):
-                led["side"][newly] = lean[ok & (side == UNPLACED)]
+                led["side"][newly] = lean[commit]
                 self._committed(newly)
+                self.err_sum += float(err[commit].sum())
+                self.commits += len(newly)
+            ok |= commit
             if len(flips):
                 led["side"][flips] = 1 - led["side"][flips]
                 self.items["rev"][flips] += 1
@@ -469,6 +477,25 @@ class Engine:
                 todo = uniq(todo)
             else:
                 return
+
+    def _within_budget(self, err: np.ndarray, open_: np.ndarray) -> np.ndarray:
+        """Which open items to commit: all with error <= alpha, and, in item order, those
+        up to alpha * (1 + slack) while the mean error of all commits stays <= alpha.
+
+        The walk moves in whole steps, so an estimate of the bias a hair low would cost a
+        whole extra answer; the error that earlier commits left unused pays for it.
+        """
+        alpha = self.config.alpha
+        strict = open_ & (err <= alpha)
+        loose = open_ & ~strict & (err <= alpha * (1.0 + self.config.alpha_slack))
+        if not loose.any():
+            return strict
+        bank = alpha * self.commits - self.err_sum + float((alpha - err[strict]).sum())
+        cost = np.cumsum(err[loose] - alpha)
+        take = np.nonzero(loose)[0][cost <= bank]
+        out = strict.copy()
+        out[take] = True
+        return out
 
     def _committed(self, idx: np.ndarray) -> None:
         st = self.items["status"]
@@ -789,13 +816,13 @@ class Engine:
         state = {
             "v": SNAPSHOT_VERSION,
             "config": [c.alpha, c.inflight, c.max_outstanding, c.budget, c.item_ceiling,
-                       c.question_timeout_ms, c.check_rate, c.seed],
+                       c.question_timeout_ms, c.check_rate, c.seed, c.alpha_slack],
             "keys": self.keys,
             "sources": self.source_names,
             "delta": self.delta.tobytes(),
             "se": self.se.tobytes(),
             "src_answers": self.src_answers.tobytes(),
-            "pooled": [self.pooled, self.pooled_se, self.shared],
+            "pooled": [self.pooled, self.pooled_se, self.shared, self.err_sum, self.commits],
             "labels": self.labels,
             "seen": self.seen.to_bytes(),
             "pool": self.pool.astype(np.int64).tobytes(),
@@ -826,7 +853,7 @@ class Engine:
             eng.delta = np.frombuffer(st["delta"], dtype=np.float64).copy()
             eng.se = np.frombuffer(st["se"], dtype=np.float64).copy()
             eng.src_answers = np.frombuffer(st["src_answers"], dtype=np.float64).copy()
-            eng.pooled, eng.pooled_se, eng.shared = st["pooled"]
+            eng.pooled, eng.pooled_se, eng.shared, eng.err_sum, eng.commits = st["pooled"]
             eng.labels = list(st["labels"])
             eng.seen = PairSet.from_bytes(st["seen"])
             eng.pool = np.frombuffer(st["pool"], dtype=np.int64).copy()
