@@ -25,6 +25,8 @@ SETTING_HELP: dict[str, str] = {
     "redis": "Redis URL (redis://, rediss:// for TLS, unix://); a password in it is never logged",
     "ns": "namespace: every key is {NS}:name",
     "alpha": "per-item error target of the sequential test, in (0, 0.5)",
+    "alpha_slack": "one commit may reach alpha*(1+slack) while the mean error of all "
+                   "commits stays <= alpha, in [0, 0.25]",
     "inflight": "W: questions in flight per item (capped by the fewest answers that could "
                 "still end its test)",
     "max_outstanding": "cap on questions in flight across all items",
@@ -70,7 +72,10 @@ def add_setting_flags(parser: argparse.ArgumentParser, names: Iterable[str]) -> 
         "the --config file, which wins over the defaults")
     for name in names:
         default = defaults[name]
-        text = f"{SETTING_HELP[name]} [env {env_name(name)}; default {default!r}]"
+        # A setting added without help still gets its flag (tests/test_settings.py fails
+        # until it is described), so the command line never breaks over documentation.
+        about = SETTING_HELP.get(name, "(not described yet)")
+        text = f"{about} [env {env_name(name)}; default {default!r}]"
         if isinstance(default, bool):
             group.add_argument(flag_name(name), dest=name, default=None,
                                action=argparse.BooleanOptionalAction, help=text)
