@@ -58,8 +58,6 @@ class LiveWorker:
         self.crowd = Crowd(n, sources=[0.8, 0.7, 0.75, 0.0, -0.6], seed=seed)
         self.client = Client(redis_url, ns)
         self.exit_codes: list[int] = []
-        # Highest value of every sample seen while run_to_end scraped (gauges rise and fall).
-        self.peaks: dict[tuple[str, tuple[tuple[str, str], ...]], float] = {}
         self._thread: threading.Thread | None = None
 
     def __enter__(self) -> LiveWorker:
@@ -116,10 +114,6 @@ class LiveWorker:
         def finished() -> bool:
             self.answer_round()
             _, s = scrape(self.url)
-            for name, series in s.items():
-                for labels, v in series.items():
-                    key = (name, labels)
-                    self.peaks[key] = max(self.peaks.get(key, v), v)
             done = (total(s, "streamgroup_items", status="placed")
                     + total(s, "streamgroup_items", status="unresolved"))
             return done >= n
