@@ -29,7 +29,7 @@ class Settings:
     redis: str = "redis://127.0.0.1:6379/0"
     ns: str = DEFAULT_NS
     alpha: float = 1e-3
-    alpha_slack: float = 0.03  # one commit may reach alpha*(1+slack) if the mean stays <= alpha
+    alpha_slack: float = 0.03  # randomised boundary: errors up to alpha*(1+slack) may commit
     inflight: int = 1
     max_outstanding: int = 10_000
     budget: int = 0

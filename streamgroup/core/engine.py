@@ -119,8 +119,6 @@ class Engine:
         self.pool = np.zeros(0, dtype=np.int64)  # reference members, in joining order
         self.pool_base = 0
         self.shared = 1.0  # chance two answers share a source (Herfindahl index of volume)
-        self.err_sum = 0.0  # posterior errors of all commits so far, and their number
-        self.commits = 0
         # planning work lists: items to look at in the next round
         self.nudged: list[np.ndarray] = []
         self.carry = np.zeros(0, dtype=np.int64)
@@ -446,18 +444,17 @@ class Engine:
                 return
             todo = todo[~led["pinned"][todo]]
             llr = led["llr"][todo]
-            err = decision_error(llr, self.ledger.spread(todo, self.shared))
+            spread = self.ledger.spread(todo, self.shared)
+            err = decision_error(llr, spread)
             lean = (llr > 0).astype(np.int8)
             side = led["side"][todo]
             ok = err <= alpha
-            commit = self._within_budget(err, side == UNPLACED)
+            commit = self._may_commit(todo, err, spread, side == UNPLACED)
             newly = todo[commit]
             flips = todo[ok & (side != UNPLACED) & (lean != side)]
             if len(newly):
                 led["side"][newly] = lean[commit]
                 self._committed(newly)
-                self.err_sum += float(err[commit].sum())
-                self.commits += len(newly)
             ok |= commit
             if len(flips):
                 led["side"][flips] = 1 - led["side"][flips]
@@ -478,23 +475,32 @@ class Engine:
             else:
                 return
 
-    def _within_budget(self, err: np.ndarray, open_: np.ndarray) -> np.ndarray:
-        """Which open items to commit: all with error <= alpha, and, in item order, those
-        up to alpha * (1 + slack) while the mean error of all commits stays <= alpha.
+    def _may_commit(self, idx: np.ndarray, err: np.ndarray, spread: np.ndarray,
+                    open_: np.ndarray) -> np.ndarray:
+        """Which open items commit now: those with error <= alpha, and, at random, those
+        just above it.
 
-        The walk moves in whole steps, so an estimate of the bias a hair low would cost a
-        whole extra answer; the error that earlier commits left unused pays for it.
+        The walk moves in whole steps, so the error at the first step past the boundary can
+        land a hair above alpha (an estimate of the bias a hair low), and the next step far
+        below it. An item within alpha * (1 + slack) commits with the probability pi that
+        makes its expected error alpha: pi * err + (1 - pi) * err_next = alpha, where
+        err_next is its error one agreeing answer later (a randomised boundary, as in a
+        randomised test). The coin is a hash of the item and its answer count, so a replay
+        decides the same way.
         """
         alpha = self.config.alpha
         strict = open_ & (err <= alpha)
         loose = open_ & ~strict & (err <= alpha * (1.0 + self.config.alpha_slack))
         if not loose.any():
             return strict
-        bank = alpha * self.commits - self.err_sum + float((alpha - err[strict]).sum())
-        cost = np.cumsum(err[loose] - alpha)
-        take = np.nonzero(loose)[0][cost <= bank]
+        llr = self.ledger.items["llr"][idx[loose]]
+        nxt = decision_error(np.abs(llr) + self._best_step(), spread[loose])
+        e = err[loose]
+        pi = np.clip((alpha - nxt) / np.maximum(e - nxt, 1e-300), 0.0, 1.0)
+        count = self.ledger.items["count"][idx[loose]].astype(np.uint64)
+        coin = planner.uniform(idx[loose].astype(np.uint64) * np.uint64(1 << 20) + count, 29)
         out = strict.copy()
-        out[take] = True
+        out[np.nonzero(loose)[0][coin < pi]] = True
         return out
 
     def _committed(self, idx: np.ndarray) -> None:
@@ -822,7 +828,7 @@ class Engine:
             "delta": self.delta.tobytes(),
             "se": self.se.tobytes(),
             "src_answers": self.src_answers.tobytes(),
-            "pooled": [self.pooled, self.pooled_se, self.shared, self.err_sum, self.commits],
+            "pooled": [self.pooled, self.pooled_se, self.shared],
             "labels": self.labels,
             "seen": self.seen.to_bytes(),
             "pool": self.pool.astype(np.int64).tobytes(),
@@ -853,7 +859,7 @@ class Engine:
             eng.delta = np.frombuffer(st["delta"], dtype=np.float64).copy()
             eng.se = np.frombuffer(st["se"], dtype=np.float64).copy()
             eng.src_answers = np.frombuffer(st["src_answers"], dtype=np.float64).copy()
-            eng.pooled, eng.pooled_se, eng.shared, eng.err_sum, eng.commits = st["pooled"]
+            eng.pooled, eng.pooled_se, eng.shared = st["pooled"]
             eng.labels = list(st["labels"])
             eng.seen = PairSet.from_bytes(st["seen"])
             eng.pool = np.frombuffer(st["pool"], dtype=np.int64).copy()

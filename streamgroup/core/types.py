@@ -17,8 +17,8 @@ class EngineConfig:
     question_timeout_ms: int = 600_000  # re-issue a question not answered within this
     check_rate: float = 0.0  # fraction of questions asked between two confident items
     seed: int = 0
-    # an item may commit at up to alpha * (1 + slack) while the mean error of all commits
-    # stays <= alpha; 0 makes every commit meet alpha on its own
+    # an item whose error is within alpha * (1 + slack) commits at random with the chance
+    # that makes its expected error alpha (randomised boundary); 0 = strict per commit
     alpha_slack: float = 0.03
 
 

@@ -111,7 +111,8 @@ class Crowd:
         """Queue answers to arrive after a random latency (possibly duplicated)."""
         lo, hi = self.latency_ms
         answers = self.answer_now(questions)
-        delays = self.rng.integers(lo, hi + 1, size=len(answers)) if hi > lo else [lo] * len(answers)
+        count = len(answers)
+        delays = self.rng.integers(lo, hi + 1, size=count) if hi > lo else [lo] * count
         dups = self.rng.random(len(answers)) < self.duplicate_rate
         for ans, d, dup in zip(answers, delays, dups, strict=True):
             for _ in range(2 if dup else 1):
