@@ -25,7 +25,7 @@ def test_plain_answer_decodes_with_optional_fields() -> None:
     assert d.answers == [Answer("shard-1", "shard-2", True, "s1", "7"),
                          Answer("shard-1", "shard-3", False, "", None)]
     assert d.aids == ["p-1", None]
-    assert d.origins == [f"{S} 1-0", f"{S} 2-0"]
+    assert [codec.origin(S, o) for o in d.origins] == [f"{S} 1-0", f"{S} 2-0"]
     assert not d.dead
 
 
@@ -81,7 +81,7 @@ def test_packed_answers_round_trip_with_bool_and_int_same() -> None:
     d = decode_answers(S, [(b"9-1", {b"pack": payload})])
     assert d.answers == answers
     assert d.aids[0] == "aid0" and d.aids[1] is None
-    assert d.origins[3] == f"{S} 9-1#3"
+    assert codec.origin(S, d.origins[3]) == f"{S} 9-1#3"
     raw = msgpack.packb([{"a": "x", "b": "y", "same": True}, {"a": "x", "b": "z", "same": 0}])
     d = decode_answers(S, [(b"1-0", {b"pack": raw})])
     assert [x.same for x in d.answers] == [True, False]
@@ -131,3 +131,20 @@ def test_dead_letter_never_masks_reason_and_origin() -> None:
     out = d.dead[0].to_fields()
     assert out["_reason"] == b"mine" and out["_origin"] == b"elsewhere"
     assert out["reason"].startswith("missing field")
+
+
+def test_batch_fast_path_equals_entry_by_entry_path(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The whole-batch check decodes good batches exactly like the per-entry path."""
+    entries = [_e(i, a=f"shard-{i}", b=f"shard-é{i + 1}", same=str(i % 2), source=f"s{i % 4}",
+                  **({"qid": str(i)} if i % 3 else {}), **({"aid": f"p{i}"} if i % 5 else {}))
+               for i in range(200)]
+    fast = decode_answers(S, entries)
+    monkeypatch.setattr(codec, "_fast_answers", lambda entries, out: False)
+    slow = decode_answers(S, entries)
+    assert fast.answers == slow.answers and fast.aids == slow.aids
+    assert fast.origins == slow.origins and not fast.dead
+    # one bad byte anywhere sends the batch down the per-entry path, which rejects it alone
+    monkeypatch.undo()
+    bad = [*entries[:5], _e(900, a=b"shard-\x7f", b="x", same="1"), *entries[5:]]
+    d = decode_answers(S, bad)
+    assert len(d.answers) == 200 and [x.origin for x in d.dead] == [f"{S} 900-0"]

@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 from ..core.types import APPLIED, Answer, Question, Record
 from ..errors import EngineInputError
-from .codec import ENGINE, UNKNOWN_QID, Dead, Entry, decode_answers, decode_items
+from .codec import ENGINE, UNKNOWN_QID, Dead, Entry, Ref, decode_answers, decode_items, origin
 from .state import OP_ANSWERS, OP_ITEMS, Batch, WorkerState, answers_payload
 
 
@@ -33,7 +33,7 @@ def _engine_kind(reason: str) -> str:
 
 
 def _apply_items(state: WorkerState, items: list[tuple[str, str | None]],
-                 origins: list[str], stream: str, out: Outcome) -> None:
+                 origins: list[Ref], stream: str, out: Outcome) -> None:
     counts = out.counts
     try:
         results = state.apply_items(items)
@@ -42,7 +42,7 @@ def _apply_items(state: WorkerState, items: list[tuple[str, str | None]],
         # Some item is bad (or clashes with another one of this batch): apply one at a
         # time so the good ones still go in and each bad one gets its own reason.
         results = []
-        for (key, side), origin in zip(items, origins, strict=True):
+        for (key, side), ref in zip(items, origins, strict=True):
             reason = state.engine.validate_item(key, side)
             if reason is None:
                 try:
@@ -52,7 +52,7 @@ def _apply_items(state: WorkerState, items: list[tuple[str, str | None]],
                 except EngineInputError as exc:
                     reason = str(exc)
             fields = {"key": key} if side is None else {"key": key, "side": side}
-            out.dead.append((stream, Dead(fields, reason, ENGINE, origin)))
+            out.dead.append((stream, Dead(fields, reason, ENGINE, origin(stream, ref))))
             counts["dead:" + ENGINE] += 1
     applied = sum(1 for r in results if r == APPLIED)
     counts["items_applied"] += applied
@@ -60,15 +60,15 @@ def _apply_items(state: WorkerState, items: list[tuple[str, str | None]],
 
 
 def _apply_answers(state: WorkerState, answers: list[Answer], aids: list[str | None],
-                   origins: list[str], stream: str, now_ms: int, out: Outcome) -> None:
+                   origins: list[Ref], stream: str, now_ms: int, out: Outcome) -> None:
     counts, batch = out.counts, out.batch
     window = state.aids
     if any(a is not None for a in aids):
         keep_a: list[Answer] = []
         keep_aid: list[str | None] = []
-        keep_o: list[str] = []
+        keep_o: list[Ref] = []
         fresh: set[str] = set()
-        for ans, aid, origin in zip(answers, aids, origins, strict=True):
+        for ans, aid, ref in zip(answers, aids, origins, strict=True):
             if aid is not None:
                 if aid in fresh or aid in window:
                     counts["dup:aid"] += 1
@@ -76,7 +76,7 @@ def _apply_answers(state: WorkerState, answers: list[Answer], aids: list[str | N
                 fresh.add(aid)
             keep_a.append(ans)
             keep_aid.append(aid)
-            keep_o.append(origin)
+            keep_o.append(ref)
         answers, aids, origins = keep_a, keep_aid, keep_o
     if not answers:
         return
@@ -87,7 +87,7 @@ def _apply_answers(state: WorkerState, answers: list[Answer], aids: list[str | N
     except EngineInputError:
         good: list[Answer] = []
         good_aids: list[str] = []
-        for ans, aid, origin in zip(answers, aids, origins, strict=True):
+        for ans, aid, ref in zip(answers, aids, origins, strict=True):
             reason = state.engine.validate_answer(ans)
             if reason is None:
                 good.append(ans)
@@ -95,7 +95,8 @@ def _apply_answers(state: WorkerState, answers: list[Answer], aids: list[str | N
                     good_aids.append(aid)
                 continue
             kind = _engine_kind(reason)
-            out.dead.append((stream, Dead(_answer_fields(ans, aid), reason, kind, origin)))
+            out.dead.append((stream, Dead(_answer_fields(ans, aid), reason, kind,
+                                        origin(stream, ref))))
             counts["dead:" + kind] += 1
         results = []
         if good:

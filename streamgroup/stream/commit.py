@@ -1,7 +1,6 @@
 """Building the one MULTI/EXEC that commits a batch, and sending it.
 
-Order inside the transaction (all or nothing, so the order only matters to readers of a
-half-written reply, which MULTI/EXEC rules out):
+Order inside the transaction (MULTI/EXEC: other clients see all of it or none of it):
 
 1. ``HSET {NS}:assign`` for every record that changed;
 2. ``XADD {NS}:decisions`` for records whose side or status changed (``MAXLEN ~``);
@@ -10,15 +9,22 @@ half-written reply, which MULTI/EXEC rules out):
 5. the journal entry (``XADD {NS}:journal``) - or, when it is time, ``SET {NS}:snapshot``
    plus ``DEL {NS}:journal`` (the snapshot then covers this batch too);
 6. ``HSET {NS}:meta`` with absolute counter values (idempotent);
-7. ``XACK`` of every consumed input entry, then ``XDEL`` of the same ids.
+7. ``XACK`` of every consumed input entry, then a trim of the input stream (below).
 
-Trimming the inputs: the worker's group is the only reader of ``{NS}:items`` and
-``{NS}:answers`` by contract, so an entry the group has acknowledged is finished; deleting
-exactly the acknowledged ids in the same transaction keeps Redis memory flat without ever
-removing an entry some consumer still holds pending. Output streams are capped with
-approximate ``MAXLEN`` (settings ``questions_maxlen``, ``decisions_maxlen``,
-``dead_maxlen``): a reader that falls further behind than the cap loses the oldest entries
-(a lost question is simply re-issued after the question timeout).
+Many entries of one stream (questions, decisions) are appended by one ``EVAL`` of a small
+script queued inside the same MULTI/EXEC: one command instead of hundreds, which is most
+of the cost of a commit when done from Python. ``EVAL`` (not ``EVALSHA``) so a script
+cache emptied by a Redis restart can never fail one command of a transaction.
+
+Trimming the inputs: after the XACK, a small script (``ACK_TRIM``) trims the input stream
+with ``XTRIM MINID`` just below the oldest entry that any consumer group on it still needs
+(its oldest pending entry, or the entry after its last-delivered id when nothing is
+pending). So an entry is removed only once every group has acknowledged it - including
+groups other tools may have added - and Redis memory does not grow with history.
+(``XDEL`` of the acknowledged ids did the same at about four times the server time.)
+Output streams are capped with approximate ``MAXLEN`` (settings ``questions_maxlen``,
+``decisions_maxlen``, ``dead_maxlen``): a reader that falls further behind than the cap
+loses the oldest entries (a lost question is simply re-issued after the question timeout).
 """
 
 from __future__ import annotations
@@ -27,10 +33,12 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+import hiredis
 import msgpack
 import redis
 
 from ..core.types import Question, Record
+from ..errors import StreamgroupError
 from ..keys import MAX_PACK_ANSWERS, Keys
 from .codec import Dead
 
@@ -45,6 +53,10 @@ def assign_value(r: Record) -> bytes:
                    "answers": int(r.answers), "rev": int(r.rev), "pinned": bool(r.pinned)})
 
 
+QUESTION_FIELDS = ("qid", "a", "b", "why", "ts")
+DECISION_FIELDS = ("key", "side", "status", "llr", "answers", "rev")
+
+
 @dataclass(frozen=True)
 class Caps:
     """Approximate MAXLEN caps of the output streams (0 = uncapped)."""
@@ -53,6 +65,71 @@ class Caps:
     decisions: int = 100_000
     dead: int = 100_000
     history: int = 10_000
+
+
+# KEYS[1] = stream; ARGV = cap, field count f, f field names, then f values per entry.
+XADD_MANY = """
+local cap, nf = ARGV[1], tonumber(ARGV[2])
+local base = 2 + nf
+local n = (#ARGV - base) / nf
+local a = {}
+for r = 0, n - 1 do
+  for j = 1, nf do
+    a[2 * j - 1] = ARGV[2 + j]
+    a[2 * j] = ARGV[base + r * nf + j]
+  end
+  if cap == '0' then
+    redis.call('XADD', KEYS[1], '*', unpack(a))
+  else
+    redis.call('XADD', KEYS[1], 'MAXLEN', '~', cap, '*', unpack(a))
+  end
+end
+return n
+"""
+
+
+# KEYS[1] = input stream; ARGV[1] = group; ARGV[2..] = entry ids to acknowledge.
+ACK_TRIM = """
+local function parse(id)
+  local ms, seq = string.match(id, '^(%d+)-(%d+)$')
+  return tonumber(ms), tonumber(seq)
+end
+local function less(a, b)
+  local am, as = parse(a)
+  local bm, bs = parse(b)
+  return am < bm or (am == bm and as < bs)
+end
+for i = 2, #ARGV, 1000 do
+  redis.call('XACK', KEYS[1], ARGV[1], unpack(ARGV, i, math.min(i + 999, #ARGV)))
+end
+local floor = nil
+for _, g in ipairs(redis.call('XINFO', 'GROUPS', KEYS[1])) do
+  local f = {}
+  for i = 1, #g, 2 do f[g[i]] = g[i + 1] end
+  local low
+  if f['pending'] > 0 then
+    low = redis.call('XPENDING', KEYS[1], f['name'])[2]
+  else
+    local ms, seq = parse(f['last-delivered-id'])
+    low = string.format('%.0f-%.0f', ms, seq + 1)
+  end
+  if floor == nil or less(low, floor) then
+    floor = low
+  end
+end
+if floor ~= nil then
+  redis.call('XTRIM', KEYS[1], 'MINID', floor)
+end
+return floor
+"""
+
+
+class CommitError(StreamgroupError):
+    """Redis refused (part of) a batch's transaction: the state must be reloaded."""
+
+
+def _xadd_many(key: str, cap: int, names: Sequence[str], values: list[Any]) -> Command:
+    return ("EVAL", XADD_MANY, 1, key, cap, len(names), *names, *values)
 
 
 def _xadd(key: str, cap: int, fields: Iterable[Any]) -> Command:
@@ -97,10 +174,12 @@ def build_commit(
             flat.append(r.key)
             flat.append(assign_value(r))
         cmds.append(("HSET", keys.assign, *flat))
-    for r in decisions:
-        cmds.append(_xadd(keys.decisions, caps.decisions, (
-            "key", r.key, "side", "" if r.side is None else r.side, "status", r.status,
-            "llr", repr(float(r.llr)), "answers", int(r.answers), "rev", int(r.rev))))
+    if decisions:
+        vals: list[Any] = []
+        for r in decisions:
+            vals += (r.key, "" if r.side is None else r.side, r.status, repr(float(r.llr)),
+                     int(r.answers), int(r.rev))
+        cmds.append(_xadd_many(keys.decisions, caps.decisions, DECISION_FIELDS, vals))
     if questions:
         if pack_questions:
             for i in range(0, len(questions), MAX_PACK_ANSWERS):
@@ -108,10 +187,10 @@ def build_commit(
                         for q in questions[i:i + MAX_PACK_ANSWERS]]
                 cmds.append(_xadd(keys.questions, caps.questions, ("pack", _packb(rows))))
         else:
-            qk, cap = keys.questions, caps.questions
+            vals = []
             for q in questions:
-                cmds.append(_xadd(qk, cap, ("qid", q.qid, "a", q.a, "b", q.b, "why", q.why,
-                                            "ts", q.ts_ms)))
+                vals += (q.qid, q.a, q.b, q.why, q.ts_ms)
+            cmds.append(_xadd_many(keys.questions, caps.questions, QUESTION_FIELDS, vals))
     for d in dead:
         flat = []
         for k, v in d.to_fields().items():
@@ -131,19 +210,56 @@ def build_commit(
         cmds.append(("HSET", keys.meta, *flat))
     for stream, ids in acks.items():
         if ids:
-            cmds.append(("XACK", stream, group, *ids))
-            cmds.append(("XDEL", stream, *ids))
+            cmds.append(("EVAL", ACK_TRIM, 1, stream, group, *ids))
     return CommitPlan(cmds)
 
 
-def execute(client: redis.Redis, plan: CommitPlan) -> list[Any]:
-    """Send the plan as one MULTI/EXEC; raises on any command error (nothing applied).
+def send(client: redis.Redis, plan: CommitPlan) -> None:
+    """Write the plan as one MULTI/EXEC without waiting for the reply (see :func:`receive`).
 
-    Command errors inside MULTI (wrong type, ...) are reported by Redis at EXEC time and
-    abort nothing by themselves, so any error reply is raised: the caller treats the
-    state as unknown and reloads it from Redis.
+    Packed and sent in one write; replies are read straight from the connection, since
+    redis-py's pipeline costs several microseconds per command. Nothing else may use the
+    connection until :func:`receive` has run.
     """
-    pipe = client.pipeline(transaction=True)
-    for cmd in plan.commands:
-        pipe.execute_command(*cmd)
-    return pipe.execute(raise_on_error=True)
+    conn = client.connection
+    if conn is None:
+        raise RuntimeError("the worker's client must be a single-connection client")
+    blob = b"".join([hiredis.pack_command(("MULTI",)),
+                     *(hiredis.pack_command(c) for c in plan.commands),
+                     hiredis.pack_command(("EXEC",))])
+    conn.send_packed_command([blob], check_health=False)
+
+
+def receive(client: redis.Redis, plan: CommitPlan) -> list[Any]:
+    """Read the replies of a sent plan and return EXEC's.
+
+    Any error reply - at queueing time (EXEC then aborts and nothing is applied) or inside
+    EXEC (Redis does not roll back the other commands) - raises :class:`CommitError`; the
+    caller then stops, and the next start reloads the state from Redis.
+    """
+    conn = client.connection
+    assert conn is not None
+    queued: list[str] = []
+    for _ in range(len(plan.commands) + 1):
+        try:
+            conn.read_response()
+        except redis.ResponseError as exc:
+            queued.append(str(exc))
+    try:
+        result = conn.read_response()
+    except redis.ResponseError as exc:
+        raise CommitError(f"the batch transaction was refused: {exc}; "
+                          f"queueing errors: {queued}") from None
+    if result is None:
+        raise CommitError("the batch transaction was aborted")
+    bad = [f"{plan.commands[i][0]}: {x}" for i, x in enumerate(result)
+           if isinstance(x, Exception)]
+    if bad or queued:
+        raise CommitError(f"commands of the batch transaction failed: {bad or queued}")
+    return list(result)
+
+
+def execute(client: redis.Redis, plan: CommitPlan) -> list[Any]:
+    """Send the plan as one MULTI/EXEC and wait for its result."""
+    send(client, plan)
+    return receive(client, plan)

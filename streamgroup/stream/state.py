@@ -144,9 +144,12 @@ class WorkerState:
         pub = self.published
         for r in records:
             code = self._code(r)
-            if pub.get(r.key) != code:
+            prev = pub.get(r.key)
+            if prev != code:
                 pub[r.key] = code
-                changed.append(r)
+                # an item just registered as waiting has nothing decided yet: no entry
+                if prev is not None or r.status != "waiting":
+                    changed.append(r)
         return changed
 
     def _code(self, r: Record) -> int:

@@ -16,6 +16,7 @@ from __future__ import annotations
 import random
 import time
 from collections.abc import Callable
+from dataclasses import dataclass
 from typing import Any
 
 import msgpack
@@ -28,7 +29,7 @@ from ..serve.metrics import WorkerMetrics
 from ..settings import Settings
 from . import recovery
 from .batch import Outcome, process
-from .commit import Caps, build_commit, execute
+from .commit import Caps, CommitPlan, build_commit, execute, receive, send
 from .state import WorkerState
 
 EXIT_OK, EXIT_ERROR, EXIT_STATE = 0, 1, 3
@@ -57,6 +58,7 @@ class Worker:
         self.state: WorkerState | None = None
         self.client: redis.Redis | None = None
         self._stop = False
+        self._held: _Held | None = None
         self._pending_first = True
         self._next_claim = 0.0
         self._next_plan = 0.0
@@ -136,6 +138,7 @@ class Worker:
         t0 = time.monotonic()
         self.state = recovery.load_state(client, self.keys, self.settings, self.clock)
         self.client = client
+        self._held = None
         self._pending_first = True
         self._next_claim = 0.0
         now = self.clock()
@@ -187,6 +190,7 @@ class Worker:
             self.retries += 1
             if self.metrics is not None:
                 self.metrics.redis_retries.inc()
+            self._held = None  # its outcome is unknown: the reload decides
             self._log.warning("connection lost; reloading state", error=str(exc))
             if self.health is not None:
                 self.health.set_ready(False)
@@ -200,25 +204,35 @@ class Worker:
         if self.state is None:
             self.start()
         deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            if predicate(self):
-                return True
+        ok = predicate(self)
+        while not ok and time.monotonic() < deadline:
             self.step()
-        return predicate(self)
+            ok = predicate(self)
+        self._flush()  # what the predicate saw in memory is committed on return
+        return ok
 
     def _turn(self) -> int:
+        """Read, then let Redis run the previous batch's commit while this one is processed.
+
+        A built commit is sent only after the next read (which never blocks while a commit
+        is held), and its reply is read after the next batch has been processed: Redis and
+        Python work at the same time. If the reply is an error or never comes, the batch
+        processed meanwhile is thrown away with the rest of the in-memory state, so the
+        order "commit k before k+1" and the exactly-once effect are unchanged.
+        """
         assert self.client is not None and self.state is not None
         client, keys, s = self.client, self.keys, self.settings
         now = self.clock()
-        if not self._pending_first and now >= self._next_claim:
+        if self._held is None and not self._pending_first and now >= self._next_claim:
             self._claim(now)
         if self._pending_first:
-            ids, block = ("0", "0"), None
+            self._flush()  # read id 0 only once nothing of ours is in flight
+            ids, block = "0", None
         else:
-            ids, block = (">", ">"), (None if self._stop else s.block_ms)
+            ids = ">"
+            block = None if (self._held is not None or self._stop) else s.block_ms
         t0 = time.perf_counter()
-        reply = client.xreadgroup(GROUP, s.consumer_name, {keys.items: ids[0],
-                                                           keys.answers: ids[1]},
+        reply = client.xreadgroup(GROUP, s.consumer_name, {keys.items: ids, keys.answers: ids},
                                   count=s.batch, block=block)
         items: list[Any] = []
         answers: list[Any] = []
@@ -228,21 +242,40 @@ class Worker:
             else:
                 answers = entries
         n = len(items) + len(answers)
-        if n == 0:
-            if self._pending_first:
-                self._pending_first = False
-                return 0
+        held, self._held = self._held, None
+        if held is not None:
+            send(client, held.plan)
+        built = None
+        if n == 0 and self._pending_first:
+            self._pending_first = False
+        elif n or (now >= self._next_plan and self._worth_planning()):
             now = self.clock()
-            if now < self._next_plan or not self._worth_planning():
-                self._periodic(now)
-                return 0
-        now = self.clock()
-        out = process(self.state, keys.items, items, keys.answers, answers, int(now * 1000))
-        self._commit(out, items, answers, now)
-        self._next_plan = now + IDLE_PLAN_EVERY
-        self.batches += 1
-        self._after_batch(out, time.perf_counter() - t0, now)
+            out = process(self.state, keys.items, items, keys.answers, answers,
+                          int(now * 1000))
+            built = self._build(out, items, answers, now, t0)
+        if held is not None:
+            receive(client, held.plan)
+            self._done(held)
+        if built is not None:
+            self._held = built
+            if self._pending_first or self._stop:
+                self._flush()
+        elif held is None:
+            self._periodic(self.clock())
         return n
+
+    def _flush(self) -> None:
+        """Commit the held batch now and wait for it."""
+        held, self._held = self._held, None
+        if held is not None:
+            assert self.client is not None
+            execute(self.client, held.plan)
+            self._done(held)
+
+    def _done(self, held: _Held) -> None:
+        self._next_plan = held.now + IDLE_PLAN_EVERY
+        self.batches += 1
+        self._after_batch(held.out, time.perf_counter() - held.t0, self.clock())
 
     def _worth_planning(self) -> bool:
         """With no input, plan() matters only while some item is still undecided."""
@@ -250,8 +283,9 @@ class Worker:
         items = self.state.engine.stats()["items"]
         return bool(items.get("waiting", 0) or items.get("asking", 0))
 
-    def _commit(self, out: Outcome, items: list[Any], answers: list[Any], now: float) -> None:
-        assert self.client is not None and self.state is not None
+    def _build(self, out: Outcome, items: list[Any], answers: list[Any], now: float,
+               t0: float) -> _Held:
+        assert self.state is not None
         state, keys = self.state, self.keys
         snapshot = None
         if now >= self._next_snapshot:
@@ -265,13 +299,14 @@ class Worker:
             acks={keys.items: [e[0] for e in items], keys.answers: [e[0] for e in answers]},
             group=GROUP, pack_questions=self.settings.pack_questions,
         )
-        execute(self.client, plan)
+        return _Held(plan, out, now, t0)
 
     def _final_snapshot(self) -> None:
         """On a clean stop, fold the journal into a snapshot so the next start is quick."""
         if self.client is None or self.state is None:
             return
         try:
+            self._flush()  # normally empty: a turn that sees the stop flag commits at once
             plan = build_commit(
                 self.keys, self.caps, records=[], decisions=[], questions=[], dead=[],
                 journal=None, snapshot=self.state.snapshot_bytes(int(self.clock() * 1000)),
@@ -382,6 +417,16 @@ class Worker:
                     if lag is not None:
                         self.metrics.consumer_lag.labels(stream=label).set(int(lag))
                     self.metrics.pending.labels(stream=label).set(int(g.get("pending", 0)))
+
+
+@dataclass
+class _Held:
+    """A batch processed and built into its commit, not yet confirmed by Redis."""
+
+    plan: CommitPlan
+    out: Outcome
+    now: float
+    t0: float
 
 
 class _Stopped(Exception):

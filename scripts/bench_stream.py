@@ -1,0 +1,337 @@
+"""Throughput, lookup latency and memory of the stream worker, against a private redis-server.
+
+    python scripts/bench_stream.py --json                 # 1,000,000 items for the memory part
+    python scripts/bench_stream.py --items 200000 --json  # a quicker run
+
+All figures come from one run on one private ``redis-server`` (started here on a free
+port, persistence off), with the same batch size everywhere:
+
+- ``raw_entries_per_s``: a bare XREADGROUP + XACK loop (redis-py, same client options as
+  the worker) over pre-filled one-answer entries; it writes nothing else.
+- ``worker_entries_per_s``: the worker (a separate process, as deployed) in a closed loop
+  with a simulated crowd adapter in this process: each answer entry it reads answers one of
+  its questions, and it writes about one question entry per answer, plus the assignment
+  records, the journal and the acknowledgements, all in one MULTI/EXEC per batch.
+  Measured over a window after a warm-up (past the bootstrap), as answer entries consumed
+  per second.
+- ``packed_answers_per_s``: the same loop with packed questions out and packed answers in.
+- ``lookup_p99_ms``: HGET of random keys of ``{NS}:assign`` from another process, about
+  500 per second, during the plain-entry window (the worker ingesting at full speed).
+- ``worker_bytes_per_item``: growth of the worker's resident memory while it registers
+  ``--items`` items (after start-up), per item; ``redis_bytes_per_item``: growth of Redis's
+  ``used_memory`` for the namespace after those items are in and a snapshot is written.
+
+The machine is shared (2 cores for Redis, the worker, the adapter and the lookup process),
+so the ratio is the figure to watch; absolute rates move with the load.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import random
+import signal
+import subprocess
+import sys
+import time
+from typing import Any
+
+import hiredis
+import msgpack
+import numpy as np
+import redis
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+sys.path.insert(0, ROOT)
+
+from streamgroup.core.types import Question  # noqa: E402
+from streamgroup.embedded import EmbeddedRedis  # noqa: E402
+from streamgroup.keys import GROUP, Keys  # noqa: E402
+from streamgroup.sim.crowd import Crowd  # noqa: E402
+from streamgroup.stream.commit import XADD_MANY  # noqa: E402
+
+FILL_ITEMS = """
+for i = tonumber(ARGV[1]), tonumber(ARGV[2]) do
+  redis.call('XADD', KEYS[1], '*', 'key', string.format(ARGV[3], i))
+end
+"""
+FILL_ANSWERS = """
+for i = tonumber(ARGV[1]), tonumber(ARGV[2]) do
+  redis.call('XADD', KEYS[1], '*', 'a', 'shard-' .. i, 'b', 'shard-' .. (i + 1),
+             'same', tostring(i % 2), 'source', 'src-' .. (i % 50), 'qid', tostring(i))
+end
+"""
+
+
+def key_format(n: int) -> str:
+    return "shard-%0" + str(max(6, len(str(n - 1)))) + "d"  # as streamgroup.sim.crowd
+
+
+def fill_items(r: redis.Redis, stream: str, n: int, chunk: int = 50_000) -> None:
+    for lo in range(0, n, chunk):
+        r.eval(FILL_ITEMS, 1, stream, lo, min(n, lo + chunk) - 1, key_format(n))
+
+
+def spawn_worker(url: str, ns: str, **flags: Any) -> subprocess.Popen[bytes]:
+    args = [sys.executable, "-m", "streamgroup.stream.worker", "--redis", url, "--ns", ns,
+            "--consumer", "bench", "--metrics-addr", "", "--log-level", "warning"]
+    for k, v in flags.items():
+        args += ["--" + k.replace("_", "-"), str(v)]
+    return subprocess.Popen(args, cwd=ROOT, stdout=subprocess.DEVNULL)
+
+
+def stop_worker(proc: subprocess.Popen[bytes]) -> int:
+    proc.send_signal(signal.SIGTERM)
+    try:
+        return proc.wait(120)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        return proc.wait(10)
+
+
+def cpu_seconds(pid: int) -> float:
+    with open(f"/proc/{pid}/stat") as fh:
+        parts = fh.read().rsplit(")", 1)[1].split()
+    return (int(parts[11]) + int(parts[12])) / os.sysconf("SC_CLK_TCK")
+
+
+def rss_bytes(pid: int) -> int:
+    with open(f"/proc/{pid}/status") as fh:
+        for line in fh:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) * 1024
+    raise RuntimeError("no VmRSS")
+
+
+def wait_until(cond: Any, timeout: float, what: str) -> None:
+    deadline = time.monotonic() + timeout
+    while not cond():
+        if time.monotonic() > deadline:
+            raise SystemExit(f"bench_stream: timed out waiting for {what}")
+        time.sleep(0.05)
+
+
+# -- the bare loop ------------------------------------------------------------------------
+
+
+def bench_raw(url: str, batch: int, entries: int) -> float:
+    r = redis.Redis.from_url(url)
+    stream = "{braw}:answers"
+    for lo in range(0, entries, 50_000):
+        r.eval(FILL_ANSWERS, 1, stream, lo, min(entries, lo + 50_000) - 1)
+    r.xgroup_create(stream, GROUP, id="0")
+    c = redis.Redis.from_url(url, single_connection_client=True)
+    done = 0
+    t0 = time.perf_counter()
+    while done < entries:
+        reply = c.xreadgroup(GROUP, "raw", {stream: ">"}, count=batch)
+        ids = [e[0] for e in reply[0][1]]
+        c.xack(stream, GROUP, *ids)
+        done += len(ids)
+    dt = time.perf_counter() - t0
+    r.delete(stream)
+    return done / dt
+
+
+# -- the closed loop ------------------------------------------------------------------------
+
+
+class Feeder:
+    """A fast simulated crowd adapter: reads questions, writes one answer per question."""
+
+    def __init__(self, url: str, ns: str, crowd: Crowd, pack: bool) -> None:
+        self.r = redis.Redis.from_url(url, single_connection_client=True)
+        self.k = Keys(ns)
+        self.crowd = crowd
+        self.pack = pack
+        self.r.xgroup_create(self.k.questions, "crowd", id="0", mkstream=True)
+        self.names = np.array(crowd.source_names, dtype=object)
+
+    def step(self) -> int:
+        reply = self.r.xreadgroup("crowd", "c", {self.k.questions: ">"}, count=20_000,
+                                  block=100)
+        if not reply:
+            return 0
+        entries = reply[0][1]
+        qs: list[Question] = []
+        for _eid, f in entries:
+            p = f.get(b"pack")
+            if p is not None:
+                qs.extend(Question(m["qid"], m["a"], m["b"], m["why"], m["ts"])
+                          for m in msgpack.unpackb(p, raw=False))
+            else:
+                qs.append(Question(f[b"qid"].decode(), f[b"a"].decode(), f[b"b"].decode(),
+                                   "", 0))
+        answers = self.crowd.answer_now(qs)
+        conn = self.r.connection
+        cmds = [("XACK", self.k.questions, "crowd", *[e[0] for e in entries])]
+        if self.pack:
+            for i in range(0, len(answers), 10_000):
+                rows = [{"a": a.a, "b": a.b, "same": a.same, "source": a.source, "qid": a.qid}
+                        for a in answers[i:i + 10_000]]
+                cmds.append(("XADD", self.k.answers, "*", "pack",
+                             msgpack.packb(rows, use_bin_type=True)))
+        else:
+            vals: list[Any] = []
+            for a in answers:
+                vals += (a.a, a.b, "1" if a.same else "0", a.source, a.qid)
+            cmds.append(("EVAL", XADD_MANY, 1, self.k.answers, 0, 5, "a", "b", "same",
+                         "source", "qid", *vals))
+        conn.send_packed_command([b"".join(hiredis.pack_command(c) for c in cmds)])
+        for _ in cmds:
+            conn.read_response()
+        return len(answers)
+
+
+def lookup_child(url: str, ns: str, n: int, seconds: float, rate: float) -> None:
+    """Run in a separate process: HGET random assignment keys; print latency percentiles."""
+    r = redis.Redis.from_url(url, single_connection_client=True)
+    k = Keys(ns)
+    fmt = key_format(n)
+    rng = random.Random(1)
+    lat: list[float] = []
+    end = time.monotonic() + seconds
+    gap = 1.0 / rate
+    while time.monotonic() < end:
+        key = fmt % rng.randrange(n)
+        t0 = time.perf_counter()
+        r.hget(k.assign, key)
+        lat.append(time.perf_counter() - t0)
+        time.sleep(gap)
+    a = np.array(lat) * 1000
+    print(json.dumps({"lookups": len(a), "p50_ms": float(np.percentile(a, 50)),
+                      "p99_ms": float(np.percentile(a, 99)), "max_ms": float(a.max())}))
+
+
+def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
+               seconds: float, lookups: bool, max_outstanding: int) -> dict[str, Any]:
+    r = redis.Redis.from_url(url)
+    k = Keys(ns)
+    crowd = Crowd(n, delta=0.6, sources=[0.6] * 50, seed=1)
+    fill_items(r, k.items, n)
+    feeder = Feeder(url, ns, crowd, pack)
+    proc = spawn_worker(url, ns, batch=batch, block_ms=100, snapshot_every=30,
+                        pack_questions=pack, max_outstanding=max_outstanding)
+
+    def consumed() -> int:
+        return int(r.hget(k.meta, "entries:answers") or 0)
+
+    def applied() -> int:
+        return int(r.hget(k.meta, "applied") or 0)
+
+    t_end = time.monotonic() + warmup
+    while time.monotonic() < t_end:
+        feeder.step()
+    child = None
+    if lookups:
+        child = subprocess.Popen(
+            [sys.executable, os.path.abspath(__file__), "--lookup-child", url, ns, str(n),
+             str(seconds), "500"], stdout=subprocess.PIPE)
+    e0, a0, c0, t0 = consumed(), applied(), cpu_seconds(proc.pid), time.monotonic()
+    t_end = t0 + seconds
+    while time.monotonic() < t_end:
+        feeder.step()
+    e1, a1, c1, t1 = consumed(), applied(), cpu_seconds(proc.pid), time.monotonic()
+    out: dict[str, Any] = {
+        "entries_per_s": (e1 - e0) / (t1 - t0) if not pack else None,
+        "answers_per_s": (a1 - a0) / (t1 - t0),
+        "worker_cpu_share": (c1 - c0) / (t1 - t0),
+        "answers_in_window": a1 - a0,
+    }
+    if child is not None:
+        line = child.communicate(timeout=seconds + 60)[0].decode().strip().splitlines()[-1]
+        out["lookup"] = json.loads(line)
+    out["exit"] = stop_worker(proc)
+    return out
+
+
+# -- memory -----------------------------------------------------------------------------
+
+
+def bench_memory(url: str, ns: str, n: int, batch: int) -> dict[str, Any]:
+    r = redis.Redis.from_url(url)
+    r.flushall()
+    k = Keys(ns)
+    base_redis = int(r.info("memory")["used_memory"])
+    proc = spawn_worker(url, ns, batch=batch, block_ms=100, snapshot_every=3600)
+    wait_until(lambda: r.exists(k.snapshot), 60, "the worker to start")
+    time.sleep(1.0)  # let start-up allocations settle before the baseline
+    base_rss = rss_bytes(proc.pid)
+    t0 = time.monotonic()
+    fill_items(r, k.items, n)
+    wait_until(lambda: int(r.hget(k.meta, "items_applied") or 0) >= n, 3600,
+               "the worker to register every item")
+    ingest = time.monotonic() - t0
+    rss = rss_bytes(proc.pid)
+    code = stop_worker(proc)  # writes the final snapshot
+    used = int(r.info("memory")["used_memory"])
+    return {
+        "items": n,
+        "worker_bytes_per_item": (rss - base_rss) / n,
+        "redis_bytes_per_item": (used - base_redis) / n,
+        "items_ingest_per_s": n / ingest,
+        "assign_bytes_per_item": r.memory_usage(k.assign, samples=1000) / n,
+        "snapshot_bytes_per_item": len(r.get(k.snapshot) or b"") / n,
+        "exit": code,
+    }
+
+
+def main(argv: list[str] | None = None) -> int:
+    p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    p.add_argument("--items", type=int, default=1_000_000, help="items for the memory part")
+    p.add_argument("--loop-items", type=int, default=100_000,
+                   help="items in the closed-loop throughput runs")
+    p.add_argument("--batch", type=int, default=500)
+    p.add_argument("--warmup", type=float, default=6.0)
+    p.add_argument("--seconds", type=float, default=10.0, help="measurement window per run")
+    p.add_argument("--raw-entries", type=int, default=200_000)
+    p.add_argument("--json", action="store_true")
+    p.add_argument("--lookup-child", nargs=5, help=argparse.SUPPRESS)
+    args = p.parse_args(argv)
+    if args.lookup_child:
+        url, ns, n, secs, rate = args.lookup_child
+        lookup_child(url, ns, int(n), float(secs), float(rate))
+        return 0
+    with EmbeddedRedis("redis-server") as srv:
+        url = srv.url
+        raw = bench_raw(url, args.batch, args.raw_entries)
+        plain = bench_loop(url, "bw", args.loop_items, args.batch, False, args.warmup,
+                           args.seconds, True, 20 * args.batch)
+        raw2 = bench_raw(url, args.batch, args.raw_entries)  # the load may drift: bracket
+        redis.Redis.from_url(url).flushall()
+        packed = bench_loop(url, "bp", args.loop_items, args.batch, True, args.warmup,
+                            args.seconds, False, 50_000)
+        mem = bench_memory(url, "bm", args.items, args.batch)
+    raw_rate = (raw + raw2) / 2
+    result = {
+        "batch": args.batch,
+        "raw_entries_per_s": round(raw_rate),
+        "raw_runs": [round(raw), round(raw2)],
+        "worker_entries_per_s": round(plain["entries_per_s"]),
+        "ratio": round(plain["entries_per_s"] / raw_rate, 3),
+        "packed_answers_per_s": round(packed["answers_per_s"]),
+        "packed_over_plain": round(packed["answers_per_s"] / plain["entries_per_s"], 2),
+        "lookup_p99_ms": round(plain["lookup"]["p99_ms"], 3),
+        "lookup_p50_ms": round(plain["lookup"]["p50_ms"], 3),
+        "lookups": plain["lookup"]["lookups"],
+        "worker_cpu_share_plain": round(plain["worker_cpu_share"], 2),
+        "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
+        "items": mem["items"],
+        "worker_bytes_per_item": round(mem["worker_bytes_per_item"], 1),
+        "redis_bytes_per_item": round(mem["redis_bytes_per_item"], 1),
+        "assign_bytes_per_item": round(mem["assign_bytes_per_item"], 1),
+        "snapshot_bytes_per_item": round(mem["snapshot_bytes_per_item"], 1),
+        "items_ingest_per_s": round(mem["items_ingest_per_s"]),
+        "worker_exit_codes": [plain["exit"], packed["exit"], mem["exit"]],
+    }
+    if args.json:
+        print(json.dumps(result, indent=2))
+    else:
+        for k, v in result.items():
+            print(f"{k:28s} {v}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
