@@ -270,3 +270,17 @@ def test_status_reads_meta_noise_and_groups(redis_url: str, capsys) -> None:
     st = json.loads(out)
     assert st["items"]["placed"] == 2 and st["spend"] == 219
     assert {k: r.type(k) for k in r.keys("*")} == before  # status wrote nothing
+
+
+def test_status_reads_the_workers_progress_sample(redis_url: str, capsys) -> None:
+    """Without per-status counters in meta, status shows the latest {NS}:history sample."""
+    r = redis.Redis.from_url(redis_url)
+    r.xadd(K.history, {"ts": 1, "placed": 5, "asking": 2, "waiting": 1, "unresolved": 0,
+                       "spend": 40, "outstanding": 3})
+    r.xadd(K.history, {"ts": 2, "placed": 7, "asking": 1, "waiting": 0, "unresolved": 1,
+                       "spend": 52, "outstanding": 1})
+    code, out, _ = sg(capsys, "status", "--json", "--redis", redis_url, "--ns", "t")
+    st = json.loads(out)
+    assert code == 0
+    assert st["items"] == {"waiting": 0, "asking": 1, "placed": 7, "unresolved": 1}
+    assert (st["spend"], st["questions_outstanding"], st["as_of_ms"]) == (52, 1, 2)

@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+import time
 from typing import Any
 
 from ..keys import GROUP, STATUSES
@@ -43,7 +44,11 @@ def _fmt_groups(streams: dict[str, Any], own: bool) -> list[str]:
 def render(st: dict[str, Any], top: int) -> str:
     items = st["items"]
     total = sum(v or 0 for v in items.values())
-    lines = [f"namespace {st['ns']}: {total} items"]
+    age = ""
+    if isinstance(st.get("as_of_ms"), (int, float)):
+        secs = max(0.0, time.time() - st["as_of_ms"] / 1000)
+        age = f" (from the worker's progress sample of {secs:.1f} s ago)"
+    lines = [f"namespace {st['ns']}: {total} items{age}"]
     lines.append("  " + ", ".join(f"{s} {items.get(s) or 0}" for s in STATUSES))
     spend = st["spend"]
     lines.append(f"spend: {spend if spend is not None else 'unknown (no worker summary yet)'}"
