@@ -271,3 +271,23 @@ def test_history_samples_are_written(redis_url: str) -> None:
                       b"outstanding"}
     assert abs(int(f[b"ts"]) - time.time() * 1000) < 60_000
     w.close()
+
+
+def test_inputs_are_trimmed_only_once_every_group_acknowledged(redis_url: str) -> None:
+    """Another group on {NS}:answers keeps its unread entries; they go once it acks them."""
+    r = redis.Redis.from_url(redis_url)
+    push_items(r, [f"shard-{i:06d}" for i in range(4)])
+    r.xgroup_create(K.answers, "audit", id="0", mkstream=True)
+    for i in range(3):
+        r.xadd(K.answers, answer_fields(Answer("shard-000000", f"shard-00000{i + 1}", True,
+                                               f"s{i}")))
+    w = Worker(settings(redis_url))
+    assert w.run_until(lambda wk: wk.state.counters["entries:answers"] == 3, 10)
+    assert r.xlen(K.answers) == 3  # the audit group has not read them yet
+    got = r.xreadgroup("audit", "a1", {K.answers: ">"}, count=2)
+    r.xack(K.answers, "audit", *[e[0] for e in got[0][1]])
+    r.xadd(K.answers, answer_fields(Answer("shard-000001", "shard-000002", True, "s9")))
+    assert w.run_until(lambda wk: wk.state.counters["entries:answers"] == 4, 10)
+    # kept: the one audit has not read, and the newest (audit has not read it either)
+    assert [f[b"source"] for _, f in r.xrange(K.answers)] == [b"s2", b"s9"]
+    w.close()
