@@ -237,7 +237,9 @@ class Client:
         """Add many answers (maps, ``Answer`` objects or tuples); returns how many.
 
         ``packed=True`` writes them as few ``pack`` entries as the contract's limits allow,
-        which is several times cheaper for the worker to read.
+        which is several times cheaper for the worker to read. A bad element means nothing
+        is sent; a connection lost midway may leave a prefix written, so give answers an
+        ``aid`` if you may retry (repeats are then not counted).
         """
         entries = [as_answer_fields(a) for a in answers]
         if packed:

@@ -284,3 +284,16 @@ def test_status_reads_the_workers_progress_sample(redis_url: str, capsys) -> Non
     assert code == 0
     assert st["items"] == {"waiting": 0, "asking": 1, "placed": 7, "unresolved": 1}
     assert (st["spend"], st["questions_outstanding"], st["as_of_ms"]) == (52, 1, 2)
+
+
+def test_push_with_aid_prefix_is_safe_to_repeat(redis_url: str, tmp_path: Path,
+                                                capsys) -> None:
+    """--aid-prefix gives each answer a stable aid P:LINE (a given aid is kept)."""
+    path = _write(tmp_path, "a.csv", "a,b,same,aid\nx,y,1,\nx,z,0,mine\n")
+    code, _, _ = sg(capsys, "push", "answers", path, "--aid-prefix", "b17", "--redis",
+                    redis_url, "--ns", "t")
+    assert code == 0
+    entries = [f for _, f in redis.Redis.from_url(redis_url).xrange(K.answers)]
+    assert [e[b"aid"] for e in entries] == [b"b17:2", b"mine"]
+    code, _, err = sg(capsys, "push", "items", path, "--aid-prefix", "p", "--redis", redis_url)
+    assert code == 2 and "answers only" in one_line_error(err)

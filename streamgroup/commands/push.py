@@ -36,13 +36,17 @@ def register(p: argparse.ArgumentParser) -> None:
 printf 'key,side\\nshard-000001,north\\nshard-000002,\\n' | streamgroup push items -
 streamgroup push answers answers.jsonl --packed
 # answers.csv: a,b,same,source   (same is 1/0 or true/false; source, qid, aid optional)
-streamgroup push answers answers.csv --redis redis://127.0.0.1:6379/0 --ns sg""")
+streamgroup push answers answers.csv --redis redis://127.0.0.1:6379/0 --ns sg
+streamgroup push answers batch-17.csv --aid-prefix batch-17   # safe to repeat""")
     p.add_argument("what", choices=("items", "answers"), help="which stream to write to")
     p.add_argument("file", metavar="FILE", help="CSV with a header row or JSONL; - = stdin")
     p.add_argument("--format", choices=("auto", "csv", "jsonl"), default="auto",
                    help="file format (auto: by extension, else by the first character)")
     p.add_argument("--packed", action="store_true",
                    help="answers only: write them as packed entries (field pack), faster")
+    p.add_argument("--aid-prefix", metavar="P", default=None,
+                   help="answers only: give each answer without an aid the aid P:LINE, so "
+                        "pushing the same file again (after a failure) counts nothing twice")
     add_setting_flags(p, CONNECTION_SETTINGS)
 
 
@@ -117,13 +121,16 @@ def parse_rows(what: str, text: str, fmt: str, path: str) -> list[tuple[int, dic
     return rows
 
 
-def check_rows(what: str, rows: list[tuple[int, dict[str, Any]]], path: str) -> list[dict]:
+def check_rows(what: str, rows: list[tuple[int, dict[str, Any]]], path: str,
+               aid_prefix: str | None = None) -> list[dict]:
     """Validate every row as the client would; the first bad one names its line."""
     from ..client import ClientInputError, as_answer_fields, as_item_fields
 
     convert = as_item_fields if what == "items" else as_answer_fields
     out = []
     for n, row in rows:
+        if aid_prefix is not None and not row.get("aid"):
+            row = {**row, "aid": f"{aid_prefix}:{n}"}
         try:
             out.append(convert(row))
         except ClientInputError as exc:
@@ -132,13 +139,14 @@ def check_rows(what: str, rows: list[tuple[int, dict[str, Any]]], path: str) -> 
 
 
 def run(args: argparse.Namespace) -> int:
-    if args.packed and args.what != "answers":
-        raise UserError("--packed applies to answers only")
+    if args.what != "answers" and (args.packed or args.aid_prefix is not None):
+        raise UserError("--packed and --aid-prefix apply to answers only")
     settings = settings_from_args(args, CONNECTION_SETTINGS)
     text = _read_text(args.file)
     fmt = detect_format(args.file, text) if args.format == "auto" else args.format
     path = "stdin" if args.file == "-" else args.file
-    entries = check_rows(args.what, parse_rows(args.what, text, fmt, path), path)
+    entries = check_rows(args.what, parse_rows(args.what, text, fmt, path), path,
+                         args.aid_prefix)
     with make_client(settings) as client:
         if args.what == "items":
             count = client.push_items(entries)
