@@ -116,18 +116,31 @@ def reference_size(engine: Any) -> int:
     return int(v) if v is not None else DEFAULT_REFERENCE
 
 
+def reference_correct(engine: Any, crowd: Crowd) -> bool | None:
+    """Whether the bootstrap's reference members all sit on their true sides (None: unknown)."""
+    pool, base = getattr(engine, "pool", None), getattr(engine, "pool_base", None)
+    if pool is None or not base:
+        return None
+    members = [engine.keys[i] for i in np.asarray(pool)[:base].tolist()]
+    labels = [engine.record(k).side for k in members]
+    errors, _ = count_errors(labels, crowd.truth[[crowd.index[k] for k in members]])
+    return errors == 0
+
+
 def simulate(args: argparse.Namespace) -> dict[str, Any]:
     """Run the engine against the crowd until done; return the raw outcome."""
     from streamgroup.core.engine import Engine  # here, so the statistics load without it
 
     sources = mixed_sources(MIXED_SOURCES) if args.mixed else None
     crowd = Crowd(args.n, delta=args.delta, sources=sources, seed=args.seed)
+    extra = {} if args.alpha_slack is None else {"alpha_slack": args.alpha_slack}
     config = EngineConfig(
         alpha=args.alpha,
         inflight=args.inflight,
         max_outstanding=args.max_outstanding,
         item_ceiling=args.item_ceiling,
         seed=args.seed,
+        **extra,
     )
     engine = Engine(config)
     engine.add_items([(k, None) for k in crowd.keys])
@@ -220,6 +233,7 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
     unresolved = sum(1 for r in records if r is not None and r.status == "unresolved")
     lo, hi = clopper_pearson(errors, placed)
     ys = yardsticks(args, reference)
+    ref_ok = reference_correct(engine, crowd)
     answers = np.array([r.answers if r is not None else 0 for r in records], dtype=np.int64)
     out: dict[str, Any] = {
         "n": args.n,
@@ -232,6 +246,8 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
         "bootstrap_questions": boot,
         "bootstrap_share": boot / spend if spend else 0.0,
         "reference": reference,
+        "reference_correct": ref_ok,
+        "alpha_slack": getattr(engine.config, "alpha_slack", None),
         **ys,
         "errors": errors,
         "placed": placed,
@@ -295,6 +311,8 @@ def parse(argv: list[str] | None) -> argparse.Namespace:
                    help="global cap on questions in flight")
     p.add_argument("--item-ceiling", type=int, default=200,
                    help="answers for one item before it becomes unresolved")
+    p.add_argument("--alpha-slack", type=float, default=None,
+                   help="the engine's alpha_slack (default: the engine's own default)")
     p.add_argument("--round-ms", type=int, default=1000, help="simulated time per round")
     p.add_argument("--max-rounds", type=int, default=200_000, help="safety cap")
     p.add_argument("--max-spend-factor", type=float, default=1.0,

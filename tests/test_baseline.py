@@ -180,6 +180,7 @@ def test_small_bench_run_meets_the_error_target(mixed: bool) -> None:
     assert res["stopped"] is None
     assert res["placed"] + res["unresolved"] == 1500
     assert res["error_ci95"][0] <= 1e-3
+    assert res["reference_correct"] is True
     assert res["questions"] > res["bootstrap_questions"] > 0
     # Far below the two-phase method; past the bootstrap (which dominates at this n),
     # not far above the limit.
