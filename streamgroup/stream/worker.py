@@ -399,8 +399,9 @@ class Worker:
             "asking": items.get("asking", 0), "waiting": items.get("waiting", 0),
             "unresolved": items.get("unresolved", 0), "spend": st["spend"],
             "outstanding": st["outstanding"]}, maxlen=self.caps.history, approximate=True)
-        # The learned noise for `status`, the demo and the report: a summary of the state
-        # just committed (msgpack map per source), refreshed with each progress sample.
+        # The learned noise for `status`, the demo and the report (msgpack map per source),
+        # refreshed with each progress sample; like the sample itself it may be one batch
+        # ahead of the last commit, which is fine for a summary nobody replays.
         noise = {s["source"]: msgpack.packb({"delta": s["delta"], "se": s["se"],
                                              "answers": s["answers"]})
                  for s in self.state.engine.sources() if s["answers"]}
