@@ -129,10 +129,18 @@ def test_real_prometheus_scrapes_the_endpoint_and_runs_every_query():
             prom.wait_value("streamgroup_answers_applied_total", 12)
             prom.wait_value('streamgroup_items{status="placed"}', 8)
             prom.wait_value('up{job="streamgroup"}', 1)
+            # Every panel's query is valid PromQL and finds series (a misspelt label value
+            # would be valid and empty); rates need two scrapes, so poll a little.
+            deadline = time.monotonic() + 30
             for expr in dashboard_exprs():
                 expr = expr.replace("$instance", ".*")
-                res = prom.query(expr)
-                assert res["status"] == "success", (expr, res)
+                while True:
+                    res = prom.query(expr)
+                    assert res["status"] == "success", (expr, res)
+                    if res["data"]["result"] or time.monotonic() > deadline:
+                        break
+                    time.sleep(0.2)
+                assert res["data"]["result"], f"panel query finds nothing: {expr}"
             for expr in rule_exprs():
                 assert prom.query(expr)["status"] == "success", expr
             # Every rule gets evaluated against real series, without an error.
