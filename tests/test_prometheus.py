@@ -90,7 +90,7 @@ def drive(m: WorkerMetrics) -> None:
     m.answers_applied.inc(5)
     for kind in ("qid", "aid"):
         m.answers_duplicate.labels(kind=kind).inc()
-    m.entries_rejected.labels(stream="{sg}:answers", reason="bad_key").inc()
+    m.entries_rejected.labels(stream="answers", reason="bad_key").inc()
     m.items_added.inc(40)
     for why in ("seed", "place", "check"):
         m.questions_issued.labels(why=why).inc(3)
@@ -102,7 +102,7 @@ def drive(m: WorkerMetrics) -> None:
     m.decision_seconds.observe(12.0)
     m.batch_seconds.observe(0.01)
     m.batches.inc()
-    for s in ("{sg}:items", "{sg}:answers"):
+    for s in ("items", "answers"):
         m.consumer_lag.labels(stream=s).set(3)
         m.pending.labels(stream=s).set(1)
     m.noise_pooled.set(0.55)
