@@ -198,12 +198,15 @@ class Client:
         self.url = url
         self.ns = ns
         self.keys = Keys(ns)
+        # Reads give up after this long, so a hung server cannot hang the caller; blocking
+        # reads are kept shorter than it (see read_questions).
+        self._socket_timeout = timeout + 30
         if connection is not None:
             self.redis = connection
         else:
             try:
                 self.redis = redis.Redis.from_url(url, socket_connect_timeout=timeout,
-                                                  socket_timeout=timeout + 30)
+                                                  socket_timeout=self._socket_timeout)
             except ValueError as exc:
                 raise ClientInputError(f"bad Redis URL: {exc}") from None
 
@@ -305,6 +308,7 @@ class Client:
         :meth:`ack_questions` once the answers are safely written. ``pending=True`` rereads
         this consumer's delivered but unacknowledged entries (after a restart)."""
         start = "0" if pending else ">"
+        block_ms = max(0, min(int(block_ms), int((self._socket_timeout - 5) * 1000)))
         resp = self.redis.xreadgroup(group, consumer, {self.keys.questions: start},
                                      count=count, block=None if pending else block_ms)
         out: list[tuple[str, list[dict[str, Any]]]] = []
