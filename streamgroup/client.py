@@ -306,11 +306,14 @@ class Client:
                        pending: bool = False) -> list[tuple[str, list[dict[str, Any]]]]:
         """One XREADGROUP: ``[(entry_id, [question, ...]), ...]``; acknowledge with
         :meth:`ack_questions` once the answers are safely written. ``pending=True`` rereads
-        this consumer's delivered but unacknowledged entries (after a restart)."""
+        this consumer's delivered but unacknowledged entries (after a restart). ``block_ms``
+        0 returns at once."""
         start = "0" if pending else ">"
-        block_ms = max(0, min(int(block_ms), int((self._socket_timeout - 5) * 1000)))
+        block_ms = min(int(block_ms), int((self._socket_timeout - 5) * 1000))
+        # Redis reads BLOCK 0 as "forever"; here 0 means "do not wait".
+        block = None if pending or block_ms <= 0 else block_ms
         resp = self.redis.xreadgroup(group, consumer, {self.keys.questions: start},
-                                     count=count, block=None if pending else block_ms)
+                                     count=count, block=block)
         out: list[tuple[str, list[dict[str, Any]]]] = []
         for _stream, entries in resp or []:
             for entry_id, fields in entries:

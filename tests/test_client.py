@@ -175,3 +175,13 @@ def test_unreachable_redis_raises_connection_error() -> None:
     c = Client(f"redis://127.0.0.1:{free_port()}/0", timeout=2)
     with pytest.raises(redis.ConnectionError):
         c.push_item("k")
+
+
+def test_read_questions_with_zero_block_returns_at_once(cl: Client) -> None:
+    """block_ms=0 means "do not wait" (not Redis's "block forever")."""
+    import time
+
+    cl.ensure_group("crowd")
+    t0 = time.monotonic()
+    assert cl.read_questions("crowd", "c1", block_ms=0) == []
+    assert time.monotonic() - t0 < 1.0
