@@ -204,6 +204,20 @@ def lookup_child(url: str, ns: str, n: int, seconds: float, rate: float) -> None
                       "p99_ms": float(np.percentile(a, 99)), "max_ms": float(a.max())}))
 
 
+def idle_lookups(url: str, seconds: float) -> dict[str, Any]:
+    """Lookup latency with nothing else running on the server: this machine's floor."""
+    r = redis.Redis.from_url(url)
+    k = Keys("idle")
+    for lo in range(0, 10_000, 1000):
+        r.hset(k.assign, mapping={key_format(10_000) % i: b"x" * 60 for i in range(lo, lo + 1000)})
+    child = subprocess.Popen(
+        [sys.executable, os.path.abspath(__file__), "--lookup-child", url, "idle", "10000",
+         str(min(seconds, 5.0)), "500"], stdout=subprocess.PIPE)
+    line = child.communicate(timeout=seconds + 60)[0].decode().strip().splitlines()[-1]
+    r.delete(k.assign)
+    return json.loads(line)
+
+
 def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
                seconds: float, lookups: bool, max_outstanding: int) -> dict[str, Any]:
     r = redis.Redis.from_url(url)
@@ -228,16 +242,20 @@ def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
         child = subprocess.Popen(
             [sys.executable, os.path.abspath(__file__), "--lookup-child", url, ns, str(n),
              str(seconds), "500"], stdout=subprocess.PIPE)
+    r.config_resetstat()
     e0, a0, c0, t0 = consumed(), applied(), cpu_seconds(proc.pid), time.monotonic()
     t_end = t0 + seconds
     while time.monotonic() < t_end:
         feeder.step()
     e1, a1, c1, t1 = consumed(), applied(), cpu_seconds(proc.pid), time.monotonic()
+    stats = r.info("commandstats")
     out: dict[str, Any] = {
         "entries_per_s": (e1 - e0) / (t1 - t0) if not pack else None,
         "answers_per_s": (a1 - a0) / (t1 - t0),
         "worker_cpu_share": (c1 - c0) / (t1 - t0),
         "answers_in_window": a1 - a0,
+        # mean time Redis spends inside one batch transaction (it serves nothing else then)
+        "exec_ms": stats.get("cmdstat_exec", {}).get("usec_per_call", 0.0) / 1000,
     }
     if child is not None:
         line = child.communicate(timeout=seconds + 60)[0].decode().strip().splitlines()[-1]
@@ -296,6 +314,7 @@ def main(argv: list[str] | None = None) -> int:
     with EmbeddedRedis("redis-server") as srv:
         url = srv.url
         raw = bench_raw(url, args.batch, args.raw_entries)
+        idle = idle_lookups(url, args.seconds)
         plain = bench_loop(url, "bw", args.loop_items, args.batch, False, args.warmup,
                            args.seconds, True, 20 * args.batch)
         raw2 = bench_raw(url, args.batch, args.raw_entries)  # the load may drift: bracket
@@ -315,6 +334,9 @@ def main(argv: list[str] | None = None) -> int:
         "lookup_p99_ms": round(plain["lookup"]["p99_ms"], 3),
         "lookup_p50_ms": round(plain["lookup"]["p50_ms"], 3),
         "lookups": plain["lookup"]["lookups"],
+        "lookup_idle_p99_ms": round(idle["p99_ms"], 3),
+        "exec_ms_plain": round(plain["exec_ms"], 3),
+        "exec_ms_packed": round(packed["exec_ms"], 3),
         "worker_cpu_share_plain": round(plain["worker_cpu_share"], 2),
         "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
         "items": mem["items"],

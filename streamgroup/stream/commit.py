@@ -7,7 +7,7 @@ Order inside the transaction (MULTI/EXEC: other clients see all of it or none of
 3. ``XADD {NS}:questions``: one entry per question, or entries with a ``pack`` field;
 4. ``XADD {NS}:dead`` for rejected entries;
 5. the journal entry (``XADD {NS}:journal``) - or, when it is time, ``SET {NS}:snapshot``
-   plus ``DEL {NS}:journal`` (the snapshot then covers this batch too);
+   plus ``UNLINK {NS}:journal`` (the snapshot then covers this batch too);
 6. ``HSET {NS}:meta`` with absolute counter values (idempotent);
 7. ``XACK`` of every consumed input entry, then a trim of the input stream (below).
 
@@ -199,7 +199,7 @@ def build_commit(
         cmds.append(_xadd(keys.dead, caps.dead, flat))
     if snapshot is not None:
         cmds.append(("SET", keys.snapshot, snapshot))
-        cmds.append(("DEL", keys.journal))
+        cmds.append(("UNLINK", keys.journal))  # freed in the background: no pause
     elif journal is not None:
         cmds.append(("XADD", keys.journal, "*", "b", journal))
     if meta:

@@ -38,6 +38,7 @@ BACKOFF_CAP = 5.0
 IDLE_PLAN_EVERY = 1.0  # seconds between plan() calls while no entries arrive
 GAUGES_EVERY = 0.5  # seconds between refreshes of engine-derived gauges
 GROUP_INFO_EVERY = 5.0  # seconds between XINFO GROUPS reads (lag and pending gauges)
+JOURNAL_FLOOR = 4 << 20  # bytes of journal always allowed before an early snapshot
 
 _CONN_ERRORS = (redis.ConnectionError, redis.TimeoutError, ConnectionError, TimeoutError)
 
@@ -63,6 +64,8 @@ class Worker:
         self._next_claim = 0.0
         self._next_plan = 0.0
         self._next_snapshot = 0.0
+        self._journal_bytes = 0  # journal written since the last snapshot
+        self._snapshot_bytes = 0  # size of the last snapshot written
         self._next_gauges = 0.0
         self._next_group_info = 0.0
         self._next_history = 0.0
@@ -143,6 +146,7 @@ class Worker:
         self._next_claim = 0.0
         now = self.clock()
         self._next_snapshot = now + self.settings.snapshot_every
+        self._journal_bytes = 0
         self._revisions_seen = int(self.state.engine.stats()["revisions"])
         self._log.info("state loaded", seq=self.state.seq, epoch=self.state.epoch,
                        seconds=round(time.monotonic() - t0, 3))
@@ -287,14 +291,19 @@ class Worker:
                t0: float) -> _Held:
         assert self.state is not None
         state, keys = self.state, self.keys
-        snapshot = None
-        if now >= self._next_snapshot:
-            snapshot = state.snapshot_bytes(int(now * 1000))
+        snapshot = journal = None
+        if now < self._next_snapshot:
+            journal = out.batch.journal_bytes()
+            self._journal_bytes += len(journal)
+        # A journal grown past the snapshot's own size is folded in early: that bounds both
+        # the memory it takes in Redis and the replay time of a restart.
+        if journal is None or self._journal_bytes > max(JOURNAL_FLOOR, self._snapshot_bytes):
+            snapshot, journal = state.snapshot_bytes(int(now * 1000)), None
             self._next_snapshot = now + self.settings.snapshot_every
+            self._journal_bytes, self._snapshot_bytes = 0, len(snapshot)
         plan = build_commit(
             keys, self.caps, records=out.records, decisions=out.decisions,
-            questions=out.questions, dead=[d for _, d in out.dead],
-            journal=None if snapshot is not None else out.batch.journal_bytes(),
+            questions=out.questions, dead=[d for _, d in out.dead], journal=journal,
             snapshot=snapshot, meta=state.meta_fields(),
             acks={keys.items: [e[0] for e in items], keys.answers: [e[0] for e in answers]},
             group=GROUP, pack_questions=self.settings.pack_questions,
