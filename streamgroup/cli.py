@@ -77,6 +77,8 @@ def user_error_message(exc: BaseException) -> str | None:
         return f"Redis refused the credentials: {_one_line(exc)}"
     if isinstance(exc, (redis.ConnectionError, redis.TimeoutError)):
         return f"cannot reach Redis: {_one_line(exc)}"
+    if isinstance(exc, redis.exceptions.InvalidResponse):
+        return f"the server at the Redis URL does not speak the Redis protocol ({_one_line(exc)})"
     if isinstance(exc, redis.ResponseError):
         return f"Redis refused a command: {_one_line(exc)}"
     if isinstance(exc, OSError) and getattr(exc, "filename", None):

@@ -297,3 +297,26 @@ def test_push_with_aid_prefix_is_safe_to_repeat(redis_url: str, tmp_path: Path,
     assert [e[b"aid"] for e in entries] == [b"b17:2", b"mine"]
     code, _, err = sg(capsys, "push", "items", path, "--aid-prefix", "p", "--redis", redis_url)
     assert code == 2 and "answers only" in one_line_error(err)
+
+
+def test_a_server_that_is_not_redis_is_a_user_error(capsys) -> None:
+    """A URL pointing at something else (here an HTTP-ish listener): one line, exit 2."""
+    import socket
+    import threading
+
+    srv = socket.socket()
+    srv.bind(("127.0.0.1", 0))
+    srv.listen()
+
+    def serve() -> None:
+        conn, _ = srv.accept()
+        conn.recv(1024)
+        conn.sendall(b"HTTP/1.1 400 Bad Request\r\n\r\n")
+        conn.close()
+
+    t = threading.Thread(target=serve, daemon=True)
+    t.start()
+    code, _, err = sg(capsys, "lookup", "k", "--redis",
+                      f"redis://127.0.0.1:{srv.getsockname()[1]}/0")
+    srv.close()
+    assert code == 2 and "Redis protocol" in one_line_error(err)
