@@ -100,7 +100,8 @@ class Engine:
     def __init__(self, config: EngineConfig | None = None) -> None:
         self.config = config or EngineConfig()
         _check_config(self.config)
-        self.boundary = threshold(self.config.alpha)
+        # the least evidence that can end a walk: the randomised boundary's lower edge
+        self.boundary = threshold(min(0.499, self.config.alpha * (1 + self.config.alpha_slack)))
         self.ledger = Ledger()
         self.items = Columns(_ITEM_FIELDS)
         self.q = Columns(_Q_FIELDS, 64)
