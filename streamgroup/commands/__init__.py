@@ -10,9 +10,13 @@ import argparse
 import os
 from collections.abc import Iterable, Mapping
 from dataclasses import fields
+from typing import TYPE_CHECKING
 
 from ..errors import StreamgroupError
 from ..settings import ENV_PREFIX, Settings, load_settings
+
+if TYPE_CHECKING:
+    from ..client import Client
 
 
 class UserError(StreamgroupError):
@@ -98,8 +102,9 @@ def settings_from_args(args: argparse.Namespace, names: Iterable[str],
                          getattr(args, "config", None))
 
 
-def make_client(settings: Settings):  # noqa: ANN201 - avoid importing redis for --help
-    """A :class:`~streamgroup.client.Client` for the configured deployment."""
+def make_client(settings: Settings) -> Client:
+    """A :class:`~streamgroup.client.Client` for the configured deployment (imported here,
+    so that ``--help`` does not load redis)."""
     from ..client import Client
 
     return Client(settings.redis, settings.ns)
