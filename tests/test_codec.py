@@ -148,3 +148,16 @@ def test_batch_fast_path_equals_entry_by_entry_path(monkeypatch: pytest.MonkeyPa
     bad = [*entries[:5], _e(900, a=b"shard-\x7f", b="x", same="1"), *entries[5:]]
     d = decode_answers(S, bad)
     assert len(d.answers) == 200 and [x.origin for x in d.dead] == [f"{S} 900-0"]
+
+
+def test_pack_fast_path_equals_element_by_element_path(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Whole-pack checking decodes a good pack exactly like the per-element path."""
+    rows = [{"a": f"k{i}", "b": f"kö{i}", "same": [0, 1, True, False][i % 4],
+             **({"source": f"s{i % 3}"} if i % 2 else {}), **({"qid": str(i)} if i % 3 else {}),
+             **({"aid": f"p{i}"} if i % 5 else {})} for i in range(300)]
+    entry = [(b"7-0", {b"pack": msgpack.packb(rows)})]
+    fast = decode_answers(S, entry)
+    monkeypatch.setattr(codec, "_fast_pack", lambda data, eid, out: False)
+    slow = decode_answers(S, entry)
+    assert fast.answers == slow.answers and fast.aids == slow.aids
+    assert fast.origins == slow.origins and not fast.dead and len(fast.answers) == 300

@@ -139,3 +139,19 @@ def claim_idle(client: redis.Redis, stream: str, consumer: str, idle_ms: int,
         if nxt in (b"0-0", "0-0"):
             return claimed
         start = nxt
+
+
+def forget_idle_consumers(client: redis.Redis, stream: str, consumer: str, idle_ms: int
+                          ) -> list[str]:
+    """Remove other consumers that hold nothing and were idle past ``idle_ms``.
+
+    With the default consumer name (hostname-pid) every restart adds a consumer to the
+    group; without this the group's consumer list would grow with every deployment.
+    """
+    gone = []
+    for c in client.xinfo_consumers(stream, GROUP):
+        name = c["name"].decode() if isinstance(c["name"], bytes) else str(c["name"])
+        if name != consumer and int(c["pending"]) == 0 and int(c["idle"]) > idle_ms:
+            client.xgroup_delconsumer(stream, GROUP, name)
+            gone.append(name)
+    return gone

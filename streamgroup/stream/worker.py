@@ -331,6 +331,8 @@ class Worker:
         for stream in (self.keys.items, self.keys.answers):
             claimed += recovery.claim_idle(self.client, stream, self.settings.consumer_name,
                                            idle_ms, self.settings.batch)
+            recovery.forget_idle_consumers(self.client, stream, self.settings.consumer_name,
+                                           idle_ms)
         self._next_claim = now + self.settings.claim_idle / 2
         if claimed:
             self._log.info("claimed idle entries of other consumers", entries=claimed)
