@@ -205,7 +205,7 @@ def error_upper_bound(wrong: int, n: int, confidence: float = 0.95) -> float:
 def render_summary(s: DemoSummary, alpha: float) -> str:
     lines = [f"demo summary ({s.items} shards, alpha {alpha:g}, {s.seconds:.1f} s, {s.server})"]
     if not s.finished:
-        lines.append("  stopped at the time limit before every shard was decided")
+        lines.append("  stopped before every shard was decided (time limit or interrupted)")
     acc = "n/a" if s.accuracy is None else f"{100 * s.accuracy:.2f}%"
     lines.append(f"  placed {s.placed}, unresolved {s.unresolved} (for a person to look at)")
     lines.append(f"  accuracy against the hidden kilns: {acc}: {s.wrong} wrong of {s.placed} "
@@ -229,9 +229,14 @@ def render_summary(s: DemoSummary, alpha: float) -> str:
     return "\n".join(lines)
 
 
-def run_demo(opts: DemoOptions, out: TextIO | None = None,
-             err: TextIO | None = None) -> DemoSummary:
-    """Run the whole loop and print progress (``err``) and the summary (``out``)."""
+def run_demo(opts: DemoOptions, out: TextIO | None = None, err: TextIO | None = None,
+             stop: threading.Event | None = None) -> DemoSummary:
+    """Run the whole loop and print progress (``err``) and the summary (``out``).
+
+    Setting ``stop`` (the command line does on SIGINT/SIGTERM) ends the run early: the
+    worker commits what it holds, the summary covers what was decided, the server goes.
+    """
+    stop = stop if stop is not None else threading.Event()
     out = out if out is not None else sys.stdout
     err = err if err is not None else sys.stderr
     started = time.monotonic()
@@ -280,7 +285,7 @@ def run_demo(opts: DemoOptions, out: TextIO | None = None,
                     e, st, opts.items))
                 if finished:
                     break
-            if elapsed > opts.time_limit:
+            if elapsed > opts.time_limit or stop.is_set():
                 break
         worker.request_stop()
         thread.join(30)

@@ -69,3 +69,29 @@ def test_error_upper_bound_matches_clopper_pearson(wrong: int, n: int) -> None:
 
     want = 1.0 if wrong == n else float(beta.ppf(0.975, wrong + 1, n - wrong))
     assert error_upper_bound(wrong, n) == pytest.approx(want, rel=1e-9)
+
+
+@pytest.mark.slow
+def test_interrupted_demo_cleans_up_its_private_redis() -> None:
+    """SIGTERM mid-run: a partial summary, exit 130, and the private server is gone."""
+    import re
+    import signal
+
+    env = {k: v for k, v in os.environ.items() if not k.startswith("STREAMGROUP_")}
+    proc = subprocess.Popen([*_script(), "demo", "--items", "400"], stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True, env=env)
+    try:
+        header = proc.stderr.readline()  # the first line names the server, then progress
+        url = re.search(r"redis://127\.0\.0\.1:\d+/0", header)
+        assert url, header
+        assert proc.stderr.readline().startswith("[")  # running: one progress line
+        proc.send_signal(signal.SIGTERM)
+        out, _ = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(5)
+    assert proc.returncode == 130
+    assert "demo summary" in out
+    with pytest.raises(redis.ConnectionError):
+        redis.Redis.from_url(url.group(0), socket_connect_timeout=1).ping()

@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import argparse
+import signal
+import threading
 
 from . import UserError, example
 
@@ -52,6 +54,19 @@ def run(args: argparse.Namespace) -> int:
     opts = DemoOptions(items=args.items, inflight=args.inflight, alpha=args.alpha,
                        seed=args.seed, report=args.report, redis_url=args.redis,
                        embedded=args.embedded, quiet=args.quiet)
-    summary = run_demo(opts)
+    stop = threading.Event()
+
+    def on_signal(_signum: int, _frame: object) -> None:
+        # First signal: wind down cleanly (the private Redis must not be left running);
+        # a second one gets the default behaviour.
+        stop.set()
+        signal.signal(signal.SIGINT, signal.SIG_DFL)
+        signal.signal(signal.SIGTERM, signal.SIG_DFL)
+
+    signal.signal(signal.SIGINT, on_signal)
+    signal.signal(signal.SIGTERM, on_signal)
+    summary = run_demo(opts, stop=stop)
+    if stop.is_set():
+        return 130
     # 3: the run was cut at the time limit (a very slow machine?); the summary says so.
     return 0 if summary.ok else 3
