@@ -5,11 +5,14 @@ from __future__ import annotations
 import msgpack
 import pytest
 import redis
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from streamgroup import client as client_mod
-from streamgroup.client import Client, ClientInputError, pack_answers
+from streamgroup.client import Client, ClientInputError, answer_fields, item_fields, pack_answers
 from streamgroup.core.types import Answer
 from streamgroup.keys import MAX_KEY_BYTES, Keys
+from streamgroup.stream.codec import decode_answers, decode_items
 
 
 @pytest.fixture
@@ -185,3 +188,56 @@ def test_read_questions_with_zero_block_returns_at_once(cl: Client) -> None:
     t0 = time.monotonic()
     assert cl.read_questions("crowd", "c1", block_ms=0) == []
     assert time.monotonic() - t0 < 1.0
+
+
+# -- the client and the worker's codec agree -----------------------------------------------
+
+_text = st.text(alphabet=st.characters(min_codepoint=0, max_codepoint=0x3000), max_size=70)
+_keys = st.one_of(_text, st.text(alphabet="ab\u00e9\u20ac", min_size=60, max_size=140))
+
+
+def _entry(fields: dict[str, str]) -> tuple[bytes, dict[bytes, bytes]]:
+    return (b"1-0", {k.encode(): v.encode() for k, v in fields.items()})
+
+
+@settings(max_examples=300, deadline=None)
+@given(a=_keys, b=_keys, same=st.booleans(), source=st.one_of(st.none(), _text))
+def test_client_accepts_exactly_what_the_worker_accepts(a, b, same, source) -> None:
+    """Client validation and the worker's codec agree on every answer (plain and packed)."""
+    try:
+        fields = answer_fields(a, b, same, source)
+    except ClientInputError:
+        fields = None
+    raw = {"a": a, "b": b, "same": "1" if same else "0"}
+    if source is not None:
+        raw["source"] = source
+    try:
+        entry = _entry(raw)
+    except UnicodeEncodeError:  # lone surrogates: not sendable as UTF-8 at all
+        assert fields is None
+        return
+    if source == "":
+        del entry[1][b"source"]  # the client omits an empty source; so does this entry
+    decoded = decode_answers("{t}:answers", [entry])
+    assert (fields is not None) == bool(decoded.answers), (fields, decoded.dead)
+    if fields is not None:
+        (packed,) = decode_answers("{t}:answers",
+                                   [(b"2-0", {b"pack": pack_answers([fields])[0]})]).answers
+        assert packed == decoded.answers[0]
+
+
+@settings(max_examples=200, deadline=None)
+@given(key=_keys)
+def test_client_item_keys_agree_with_the_worker(key: str) -> None:
+    """An item key the client accepts is one the worker accepts, and the reverse."""
+    try:
+        item_fields(key)
+        ok = True
+    except ClientInputError:
+        ok = False
+    try:
+        entry = _entry({"key": key})
+    except UnicodeEncodeError:
+        assert not ok
+        return
+    assert ok == bool(decode_items("{t}:items", [entry]).items)
