@@ -294,3 +294,28 @@ def test_inputs_are_trimmed_only_once_every_group_acknowledged(redis_url: str) -
     # kept: the one audit has not read, and the newest (audit has not read it either)
     assert [f[b"source"] for _, f in r.xrange(K.answers)] == [b"s2", b"s9"]
     w.close()
+
+
+def test_big_packs_are_split_into_batches_of_bounded_answers(redis_url: str) -> None:
+    """Packs read together are processed a few at a time, under the answer cap, all once."""
+    r = redis.Redis.from_url(redis_url)
+    keys = [f"shard-{i:06d}" for i in range(80)]
+    push_items(r, keys)
+    for p in range(10):
+        r.xadd(K.answers, {"pack": pack_answers([
+            Answer(keys[j], keys[j + 1 + p], j % 2 == 0, f"s{p}") for j in range(30)])})
+    w = Worker(settings(redis_url))
+    w.start()
+    w._max_answers = 50  # a pack of 30 answers: one pack per batch
+    sizes = []
+
+    def turn(wk: Worker) -> bool:
+        before = wk.state.counters["entries:answers"]
+        sizes.append(before)
+        return before == 10
+
+    assert w.run_until(turn, 10)
+    steps = [b - a for a, b in zip(sizes, sizes[1:], strict=False) if b > a]
+    assert max(steps) == 1 and len(steps) == 10
+    assert meta(r)["applied"] == "300" and r.xlen(K.answers) == 0
+    w.close()

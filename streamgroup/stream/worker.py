@@ -39,6 +39,23 @@ IDLE_PLAN_EVERY = 1.0  # seconds between plan() calls while no entries arrive
 GAUGES_EVERY = 0.5  # seconds between refreshes of engine-derived gauges
 GROUP_INFO_EVERY = 5.0  # seconds between XINFO GROUPS reads (lag and pending gauges)
 JOURNAL_FLOOR = 4 << 20  # bytes of journal always allowed before an early snapshot
+BATCH_ANSWERS = 20_000  # answers in one batch at most (unless `batch` is larger); packed
+# entries beyond it wait, already read, for the next batches
+
+
+def _answers_in(entry: tuple[bytes, dict[bytes, bytes]]) -> int:
+    """Answers in one entry: 1, or the length of a pack's msgpack array header (cheap)."""
+    pack = entry[1].get(b"pack") if entry[1] else None
+    if not pack:
+        return 1
+    head = pack[0]
+    if 0x90 <= head <= 0x9F:
+        return head & 0x0F
+    if head == 0xDC and len(pack) >= 3:
+        return int.from_bytes(pack[1:3], "big")
+    if head == 0xDD and len(pack) >= 5:
+        return int.from_bytes(pack[1:5], "big")
+    return 1  # not an array: the codec will reject it
 
 _CONN_ERRORS = (redis.ConnectionError, redis.TimeoutError, ConnectionError, TimeoutError)
 
@@ -60,6 +77,8 @@ class Worker:
         self.client: redis.Redis | None = None
         self._stop = False
         self._held: _Held | None = None
+        self._backlog: list[Any] = []  # answer entries read but not yet processed
+        self._max_answers = max(settings.batch, BATCH_ANSWERS)
         self._pending_first = True
         self._next_claim = 0.0
         self._next_plan = 0.0
@@ -142,6 +161,7 @@ class Worker:
         self.state = recovery.load_state(client, self.keys, self.settings, self.clock)
         self.client = client
         self._held = None
+        self._backlog = []
         self._pending_first = True
         self._next_claim = 0.0
         now = self.clock()
@@ -236,15 +256,22 @@ class Worker:
             ids = ">"
             block = None if (self._held is not None or self._stop) else s.block_ms
         t0 = time.perf_counter()
-        reply = client.xreadgroup(GROUP, s.consumer_name, {keys.items: ids, keys.answers: ids},
-                                  count=s.batch, block=block)
         items: list[Any] = []
         answers: list[Any] = []
-        for name, entries in reply or ():
-            if name == keys.items.encode():
-                items = entries
-            else:
-                answers = entries
+        if self._backlog:  # big packs read earlier: finish them before reading more
+            answers = self._take_backlog()
+        else:
+            reply = client.xreadgroup(GROUP, s.consumer_name,
+                                      {keys.items: ids, keys.answers: ids},
+                                      count=s.batch, block=block)
+            for name, entries in reply or ():
+                if name == keys.items.encode():
+                    items = entries
+                else:
+                    answers = entries
+            if answers and sum(map(_answers_in, answers)) > self._max_answers:
+                self._backlog = answers
+                answers = self._take_backlog()
         n = len(items) + len(answers)
         held, self._held = self._held, None
         if held is not None:
@@ -267,6 +294,23 @@ class Worker:
         elif held is None:
             self._periodic(self.clock())
         return n
+
+    def _take_backlog(self) -> list[Any]:
+        """The next entries of the backlog, up to the answer cap of a batch (at least one).
+
+        The split depends only on the entries, so a restart that rereads the remaining
+        ones as pending cuts them into the same batches.
+        """
+        total, k = 0, 0
+        backlog = self._backlog
+        while k < len(backlog):
+            size = _answers_in(backlog[k])
+            if k and total + size > self._max_answers:
+                break
+            total += size
+            k += 1
+        out, self._backlog = backlog[:k], backlog[k:]
+        return out
 
     def _flush(self) -> None:
         """Commit the held batch now and wait for it."""
@@ -337,6 +381,7 @@ class Worker:
         if claimed:
             self._log.info("claimed idle entries of other consumers", entries=claimed)
             self._pending_first = True
+            self._backlog = []  # still pending: the id-0 reads return them again
 
     # -- metrics and progress -----------------------------------------------------------
     def _after_batch(self, out: Outcome, seconds: float, now: float) -> None:
