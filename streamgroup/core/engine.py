@@ -41,6 +41,7 @@ from ..keys import (
 from . import bootstrap, noise, planner, validate
 from .columns import Columns, uniq
 from .evidence import decision_error
+from .keyindex import KeyIndex
 from .ledger import UNPLACED, Ledger
 from .pairset import MAX_ITEMS, MAX_SOURCES, PairSet, pair_keys
 from .sprt import threshold, weight
@@ -106,8 +107,7 @@ class Engine:
         self.items = Columns(_ITEM_FIELDS)
         self.q = Columns(_Q_FIELDS, 64)
         self.q_low = 0  # every qid below this is answered or expired
-        self.keys: list[str] = []
-        self.index: dict[str, int] = {}
+        self.keys = KeyIndex()
         self.source_names: list[str] = []
         self.source_index: dict[str, int] = {}
         self.delta = np.zeros(0)
@@ -144,7 +144,7 @@ class Engine:
         return self.labels[slot] or str(slot)
 
     def record(self, key: str) -> Record | None:
-        i = self.index.get(key)
+        i = self.keys.get(key)
         return None if i is None else self._record(i)
 
     def _record(self, i: int) -> Record:
@@ -156,11 +156,10 @@ class Engine:
         llr = led["llr"][idx]
         shown = np.where(side == 1, llr, np.where(side == 0, -llr, np.abs(llr))).round(6)
         names = [self.label(0), self.label(1), None]
-        keys = self.keys
         return [
-            Record(keys[i], names[s], STATUS_NAMES[st], v, c, r, p)
-            for i, s, st, v, c, r, p in zip(
-                idx.tolist(), side.tolist(), self.items["status"][idx].tolist(),
+            Record(k, names[s], STATUS_NAMES[st], v, c, r, p)
+            for k, s, st, v, c, r, p in zip(
+                self.keys.keys_of(idx), side.tolist(), self.items["status"][idx].tolist(),
                 shown.tolist(), led["count"][idx].tolist(), self.items["rev"][idx].tolist(),
                 led["pinned"][idx].tolist(), strict=True)
         ]
@@ -220,7 +219,7 @@ class Engine:
         if self._slot_for(side, self.labels) is None:
             bound = ", ".join(str(x) for x in self.labels if x is not None)
             return f"side label {side!r} would be a third group (bound: {bound})"
-        i = self.index.get(key)
+        i = self.keys.get(key)
         if i is not None and self.ledger.items["pinned"][i]:
             have = self.label(int(self.ledger.items["side"][i]))
             if have != side:
@@ -228,30 +227,45 @@ class Engine:
         return None
 
     def validate_answer(self, ans: Any) -> str | None:
-        if not isinstance(ans, Answer):
-            return f"expected an Answer, got {type(ans).__name__}"
-        index = self.index  # keys already registered were validated then
-        err = ((ans.a not in index and validate.item_key(ans.a, "a"))
-               or (ans.b not in index and validate.item_key(ans.b, "b"))
-               or validate.same_flag(ans.same)
-               or (ans.source not in self.source_index and validate.source_id(ans.source)))
-        if err:
-            return err
-        if ans.a == ans.b:
-            return "a and b are the same item"
-        if ans.source not in self.source_index and len(self.source_names) >= MAX_SOURCES:
-            return f"too many sources (limit {MAX_SOURCES})"
-        if ans.qid is not None:
-            err = validate.qid(ans.qid)
-            if err:
-                return err
-            n = int(ans.qid)
-            if n >= self.q.n:
-                return f"qid {ans.qid!r} is not one this worker issued"
-            pair = {self.keys[self.q["target"][n]], self.keys[self.q["partner"][n]]}
-            if pair != {ans.a, ans.b}:
-                return f"qid {ans.qid!r} was asked about another pair"
+        try:
+            self._check_answers([ans])
+        except EngineInputError as exc:
+            return str(exc).split(": ", 1)[1]
         return None
+
+    def _check_answers(self, answers: Sequence[Any]) -> tuple[np.ndarray, np.ndarray]:
+        """Raise EngineInputError at the first bad answer; else the indices of a and b
+        (-1 for keys not registered yet)."""
+        for pos, ans in enumerate(answers):
+            if not isinstance(ans, Answer):
+                raise EngineInputError(f"answer {pos}: expected an Answer, got "
+                                       f"{type(ans).__name__}")
+        ia = self.keys.lookup([x.a for x in answers])
+        ib = self.keys.lookup([x.b for x in answers])
+        qs = self.q
+        sources = self.source_index
+        for pos, (ans, i, j) in enumerate(zip(answers, ia.tolist(), ib.tolist(),
+                                              strict=True)):
+            err = ((i < 0 and validate.item_key(ans.a, "a"))
+                   or (j < 0 and validate.item_key(ans.b, "b"))
+                   or (ans.same is not True and ans.same is not False
+                       and validate.same_flag(ans.same))
+                   or (ans.source not in sources and validate.source_id(ans.source)))
+            if not err and ans.a == ans.b:
+                err = "a and b are the same item"
+            if not err and ans.source not in sources and len(sources) >= MAX_SOURCES:
+                err = f"too many sources (limit {MAX_SOURCES})"
+            if not err and ans.qid is not None:
+                err = validate.qid(ans.qid)
+                if not err:
+                    n = int(ans.qid)
+                    if n >= qs.n:
+                        err = f"qid {ans.qid!r} is not one this worker issued"
+                    elif {int(qs["target"][n]), int(qs["partner"][n])} != {i, j}:
+                        err = f"qid {ans.qid!r} was asked about another pair"
+            if err:
+                raise EngineInputError(f"answer {pos}: {err}")
+        return ia, ib
 
     @staticmethod
     def _slot_for(side: str, labels: list[str | None]) -> int | None:
@@ -269,7 +283,13 @@ class Engine:
         batch = list(items)
         labels = list(self.labels)
         pins: dict[str, str] = {}
-        for pos, (key, side) in enumerate(batch):
+        for pos, row in enumerate(batch):
+            if not isinstance(row, tuple) or len(row) != 2:
+                raise EngineInputError(f"item {pos}: expected a (key, side) pair")
+        known = self.keys.lookup([k if isinstance(k, str) else "" for k, _ in batch])
+        for pos, ((key, side), i) in enumerate(zip(batch, known.tolist(), strict=True)):
+            if i >= 0 and side is None:
+                continue
             err = self.validate_item(key, side)
             if err is None and side is not None:
                 slot = self._slot_for(side, labels)
@@ -307,15 +327,8 @@ class Engine:
 
     def _register_many(self, keys: Sequence[str]) -> np.ndarray:
         """Indices of ``keys``, registering the unknown ones (as ``waiting``) in order."""
-        index = self.index
         start = len(self.keys)
-        out = np.empty(len(keys), dtype=np.int64)
-        for k, key in enumerate(keys):
-            i = index.get(key)
-            if i is None:
-                i = index[key] = len(self.keys)
-                self.keys.append(key)
-            out[k] = i
+        out = self.keys.add(keys)
         added = len(self.keys) - start
         if added:
             self.ledger.add_items(added)
@@ -357,10 +370,7 @@ class Engine:
     def add_answers(self, answers: Sequence[Answer], now_ms: int = 0) -> list[str]:
         """Count new answers; return "applied" or "duplicate" for each, in order."""
         answers = list(answers)
-        for pos, ans in enumerate(answers):
-            err = self.validate_answer(ans)
-            if err:
-                raise EngineInputError(f"answer {pos}: {err}")
+        self._check_answers(answers)
         self.now_ms = max(self.now_ms, int(now_ms))
         if not answers:
             return []
@@ -795,14 +805,14 @@ class Engine:
             it["first_ms"][fresh] = now_ms
         self._touch(np.asarray(targets, dtype=np.int64))
         swap = planner.uniform(qids.astype(np.uint64), 3) < 0.5
-        keys = self.keys
+        first = np.where(swap, partners, targets)
+        second = np.where(swap, targets, partners)
         name = WHY_NAMES[why]
-        out = []
-        for qid, t, p, s in zip(qids.tolist(), targets.tolist(), partners.tolist(),
-                                swap.tolist(), strict=True):
-            a, b = (keys[p], keys[t]) if s else (keys[t], keys[p])
-            out.append(Question(str(qid), a, b, name, now_ms))
-        return out
+        return [
+            Question(str(qid), a, b, name, now_ms)
+            for qid, a, b in zip(qids.tolist(), self.keys.keys_of(first),
+                                 self.keys.keys_of(second), strict=True)
+        ]
 
     def _expire(self, now_ms: int) -> None:
         q = self.q
@@ -824,7 +834,7 @@ class Engine:
             "v": SNAPSHOT_VERSION,
             "config": [c.alpha, c.inflight, c.max_outstanding, c.budget, c.item_ceiling,
                        c.question_timeout_ms, c.check_rate, c.seed, c.alpha_slack],
-            "keys": self.keys,
+            "keys": self.keys.to_state(),
             "sources": self.source_names,
             "delta": self.delta.tobytes(),
             "se": self.se.tobytes(),
@@ -853,8 +863,7 @@ class Engine:
             if st.get("v") != SNAPSHOT_VERSION:
                 raise EngineInputError(f"snapshot version {st.get('v')!r} is not supported")
             eng = cls(EngineConfig(*st["config"]))
-            eng.keys = list(st["keys"])
-            eng.index = {k: i for i, k in enumerate(eng.keys)}
+            eng.keys = KeyIndex.from_state(st["keys"])
             eng.source_names = list(st["sources"])
             eng.source_index = {k: i for i, k in enumerate(eng.source_names)}
             eng.delta = np.frombuffer(st["delta"], dtype=np.float64).copy()

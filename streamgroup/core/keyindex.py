@@ -1,0 +1,159 @@
+"""Item keys and their dense indices, in a few bytes per key.
+
+A Python ``dict`` of ``str`` to ``int`` costs well over 100 bytes per key. Here the keys
+live in one UTF-8 blob with an offsets array, and lookups go through an open-addressing
+table of 64-bit hashes (numpy), about 45 bytes per key in all. Hashes are Python's own
+(salted per process), so the table is rebuilt, never stored.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator, Sequence
+from typing import Any
+
+import numpy as np
+
+_EMPTY = 0  # table cells hold index + 1
+
+
+class KeyIndex:
+    """Append-only map between keys and 0..n-1."""
+
+    def __init__(self) -> None:
+        self.n = 0
+        self.blob = bytearray()
+        self.offsets = np.zeros(17, dtype=np.int64)
+        self.hashes = np.zeros(16, dtype=np.int64)
+        self.table = np.zeros(32, dtype=np.int64)
+
+    # -- reading ------------------------------------------------------------------------
+    def __len__(self) -> int:
+        return self.n
+
+    def __getitem__(self, i: int) -> str:
+        if not 0 <= i < self.n:
+            raise IndexError(i)
+        o = self.offsets
+        return self.blob[o[i]:o[i + 1]].decode("utf-8")
+
+    def __iter__(self) -> Iterator[str]:
+        for i in range(self.n):
+            yield self[i]
+
+    def __contains__(self, key: object) -> bool:
+        return isinstance(key, str) and self.get(key) is not None
+
+    def get(self, key: str, default: Any = None) -> Any:
+        i = int(self.lookup([key])[0])
+        return default if i < 0 else i
+
+    def keys_of(self, idx: Sequence[int]) -> list[str]:
+        o, blob = self.offsets, self.blob
+        starts, ends = o[idx].tolist(), o[np.asarray(idx, dtype=np.int64) + 1].tolist()
+        return [blob[s:e].decode("utf-8") for s, e in zip(starts, ends, strict=True)]
+
+    def lookup(self, keys: Sequence[str]) -> np.ndarray:
+        """Index of each key, or -1."""
+        h = np.fromiter((hash(k) for k in keys), dtype=np.int64, count=len(keys))
+        return self._find(keys, h)
+
+    def _find(self, keys: Sequence[str], h: np.ndarray) -> np.ndarray:
+        out = np.full(len(h), -1, dtype=np.int64)
+        if self.n == 0 or len(h) == 0:
+            return out
+        mask = len(self.table) - 1
+        pos = h & mask
+        active = np.arange(len(h))
+        while len(active):
+            cell = self.table[pos[active]]
+            live = cell != _EMPTY
+            active, cell = active[live], cell[live] - 1
+            hit = self.hashes[cell] == h[active]
+            if hit.any():
+                hits = np.nonzero(hit)[0]
+                stored = self.keys_of(cell[hits])
+                ok = np.fromiter(
+                    (k == keys[q] for k, q in zip(stored, active[hits].tolist(), strict=True)),
+                    dtype=bool, count=len(hits))
+                found = hits[ok]
+                out[active[found]] = cell[found]
+                keep = np.ones(len(active), dtype=bool)
+                keep[found] = False
+                active = active[keep]
+            pos[active] = (pos[active] + 1) & mask
+        return out
+
+    # -- writing ------------------------------------------------------------------------
+    def add(self, keys: Sequence[str]) -> np.ndarray:
+        """Indices of ``keys``, appending the unknown ones in order of first appearance."""
+        h = np.fromiter((hash(k) for k in keys), dtype=np.int64, count=len(keys))
+        out = self._find(keys, h)
+        missing = np.nonzero(out < 0)[0]
+        if len(missing) == 0:
+            return out
+        fresh: dict[str, int] = {}
+        new_pos: list[int] = []
+        for q in missing.tolist():
+            k = keys[q]
+            i = fresh.get(k)
+            if i is None:
+                i = fresh[k] = self.n + len(fresh)
+                new_pos.append(q)
+            out[q] = i
+        self._append([keys[q] for q in new_pos], h[new_pos])
+        return out
+
+    def _append(self, keys: list[str], h: np.ndarray) -> None:
+        start, count = self.n, len(keys)
+        need = start + count
+        if need + 1 > len(self.offsets):
+            cap = max(need + 1, len(self.offsets) + len(self.offsets) // 4)
+            self.offsets = np.resize(self.offsets, cap)
+            self.hashes = np.resize(self.hashes, cap)
+        encoded = [k.encode("utf-8") for k in keys]
+        lengths = np.fromiter((len(e) for e in encoded), dtype=np.int64, count=count)
+        self.offsets[start + 1:need + 1] = self.offsets[start] + np.cumsum(lengths)
+        self.blob += b"".join(encoded)
+        self.hashes[start:need] = h
+        self.n = need
+        if need * 2 > len(self.table):
+            size = len(self.table)
+            while need * 2 > size:
+                size *= 2
+            self.table = np.zeros(size, dtype=np.int64)
+            self._insert(np.arange(need))
+        else:
+            self._insert(np.arange(start, need))
+
+    def _insert(self, idx: np.ndarray) -> None:
+        mask = len(self.table) - 1
+        pos = self.hashes[idx] & mask
+        todo = np.arange(len(idx))
+        while len(todo):
+            p = pos[todo]
+            free = self.table[p] == _EMPTY
+            # among claimants of one free cell, the first wins; the rest move on
+            _, first = np.unique(p, return_index=True)
+            win = np.zeros(len(todo), dtype=bool)
+            win[first] = True
+            win &= free
+            self.table[p[win]] = idx[todo[win]] + 1
+            todo = todo[~win]
+            pos[todo] = (pos[todo] + 1) & mask
+
+    # -- snapshot -----------------------------------------------------------------------
+    def to_state(self) -> dict[str, bytes]:
+        return {"blob": bytes(self.blob), "offsets": self.offsets[: self.n + 1].tobytes()}
+
+    @classmethod
+    def from_state(cls, st: dict[str, bytes]) -> KeyIndex:
+        out = cls()
+        offsets = np.frombuffer(st["offsets"], dtype=np.int64)
+        n = len(offsets) - 1
+        blob = st["blob"]
+        keys = [blob[offsets[i]:offsets[i + 1]].decode("utf-8") for i in range(n)]
+        out._append(keys, np.fromiter((hash(k) for k in keys), dtype=np.int64, count=n))
+        return out
+
+    def nbytes(self) -> int:
+        return len(self.blob) + self.offsets.nbytes + self.hashes.nbytes + self.table.nbytes
