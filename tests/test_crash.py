@@ -194,7 +194,7 @@ def test_closed_loop_with_kills_loses_and_doubles_nothing(redis_url: str) -> Non
         if kills >= 10:
             continue
         if armed is None and r.hget(k.meta, "seq") != seq0:  # it is committing: arm
-            armed = time.monotonic() + rng.uniform(0.0, 0.05)
+            armed = time.monotonic() + rng.uniform(0.0, 0.03)
         if armed is not None and time.monotonic() >= armed:
             proc.send_signal(signal.SIGKILL)
             proc.wait(10)
