@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import msgpack
@@ -58,7 +59,7 @@ ANCHOR_FACTOR = 0.01  # an item joins the reference pool when its error is <= al
 BLOCK_START = 16  # first bootstrap block size
 BLOCK_MAX = 800  # the block stops growing here
 MIN_ANCHORS = 8  # reference members needed before placing the other items
-REFIT_GROWTH = 0.10  # re-learn the sources when counted answers grew by this fraction
+REFIT_GROWTH = 0.20  # re-learn the sources when counted answers grew by this fraction
 REFIT_MIN = 200
 
 _ITEM_FIELDS: dict[str, tuple[Any, Any]] = {
@@ -79,6 +80,20 @@ _Q_FIELDS: dict[str, tuple[Any, Any]] = {
     "state": (np.int8, Q_OPEN),
     "why": (np.int8, PLACE),
 }
+
+
+@dataclass(slots=True)
+class _Intake:
+    """One checked batch of answers, as arrays (indices -1 for keys not registered yet)."""
+
+    a_keys: list[str]
+    b_keys: list[str]
+    ia: np.ndarray
+    ib: np.ndarray
+    sources: list[str]
+    same: np.ndarray
+    with_q: np.ndarray  # positions of answers that name a qid
+    qn: np.ndarray  # those qids as numbers
 
 
 def _check_config(c: EngineConfig) -> None:
@@ -226,6 +241,15 @@ class Engine:
                 return f"item {key!r} is already pinned to side {have!r}"
         return None
 
+    def _register_missing(self, keys: list[str], idx: np.ndarray) -> np.ndarray:
+        missing = idx < 0
+        if not missing.any():
+            return idx
+        out = idx.copy()
+        pos = np.nonzero(missing)[0]
+        out[pos] = self._register_many([keys[k] for k in pos.tolist()])
+        return out
+
     def validate_answer(self, ans: Any) -> str | None:
         try:
             self._check_answers([ans])
@@ -233,39 +257,78 @@ class Engine:
             return str(exc).split(": ", 1)[1]
         return None
 
-    def _check_answers(self, answers: Sequence[Any]) -> tuple[np.ndarray, np.ndarray]:
-        """Raise EngineInputError at the first bad answer; else the indices of a and b
-        (-1 for keys not registered yet)."""
+    def _check_answers(self, answers: Sequence[Any]) -> _Intake:
+        """Raise EngineInputError at the first bad answer, else return the batch as arrays.
+
+        Keys already registered were checked when they arrived, so the common case costs
+        a few vectorised operations per batch rather than string checks per answer.
+        """
+        count = len(answers)
         for pos, ans in enumerate(answers):
-            if not isinstance(ans, Answer):
+            if type(ans) is not Answer:
                 raise EngineInputError(f"answer {pos}: expected an Answer, got "
                                        f"{type(ans).__name__}")
-        ia = self.keys.lookup([x.a for x in answers])
-        ib = self.keys.lookup([x.b for x in answers])
-        qs = self.q
-        sources = self.source_index
-        for pos, (ans, i, j) in enumerate(zip(answers, ia.tolist(), ib.tolist(),
-                                              strict=True)):
-            err = ((i < 0 and validate.item_key(ans.a, "a"))
-                   or (j < 0 and validate.item_key(ans.b, "b"))
-                   or (ans.same is not True and ans.same is not False
-                       and validate.same_flag(ans.same))
-                   or (ans.source not in sources and validate.source_id(ans.source)))
-            if not err and ans.a == ans.b:
+        a_keys = [x.a for x in answers]
+        b_keys = [x.b for x in answers]
+        ia = self.keys.lookup(a_keys)
+        ib = self.keys.lookup(b_keys)
+        bad: dict[int, str] = {}
+        for pos in np.nonzero((ia < 0) | (ib < 0))[0].tolist():
+            err = ((ia[pos] < 0 and validate.item_key(a_keys[pos], "a"))
+                   or (ib[pos] < 0 and validate.item_key(b_keys[pos], "b")))
+            if not err and a_keys[pos] == b_keys[pos]:
                 err = "a and b are the same item"
-            if not err and ans.source not in sources and len(sources) >= MAX_SOURCES:
-                err = f"too many sources (limit {MAX_SOURCES})"
-            if not err and ans.qid is not None:
-                err = validate.qid(ans.qid)
-                if not err:
-                    n = int(ans.qid)
-                    if n >= qs.n:
-                        err = f"qid {ans.qid!r} is not one this worker issued"
-                    elif {int(qs["target"][n]), int(qs["partner"][n])} != {i, j}:
-                        err = f"qid {ans.qid!r} was asked about another pair"
             if err:
-                raise EngineInputError(f"answer {pos}: {err}")
-        return ia, ib
+                bad[pos] = err
+        for pos in np.nonzero((ia == ib) & (ia >= 0))[0].tolist():
+            bad.setdefault(pos, "a and b are the same item")
+        flags = [x.same for x in answers]
+        for pos, f in enumerate(flags):
+            if f is not True and f is not False:
+                err = validate.same_flag(f)
+                if err:
+                    bad.setdefault(pos, err)
+        names = [x.source for x in answers]
+        sources = self.source_index
+        new_sources = {n for n in names if n not in sources}
+        if new_sources:
+            for pos, n in enumerate(names):
+                if n in new_sources:
+                    err = validate.source_id(n)
+                    if not err and len(sources) + len(new_sources) > MAX_SOURCES:
+                        err = f"too many sources (limit {MAX_SOURCES})"
+                    if err:
+                        bad.setdefault(pos, err)
+        with_q = [pos for pos, x in enumerate(answers) if x.qid is not None]
+        qn = np.full(len(with_q), -1, dtype=np.int64)
+        for k, pos in enumerate(with_q):
+            q = answers[pos].qid
+            err = validate.qid(q)
+            if err:
+                bad.setdefault(pos, err)
+            else:
+                qn[k] = int(q) if len(q) < 19 else -1
+                if qn[k] < 0:
+                    bad.setdefault(pos, f"qid {q!r} is not one this worker issued")
+        if len(with_q):
+            wq = np.asarray(with_q, dtype=np.int64)
+            issued = (qn >= 0) & (qn < self.q.n)
+            for k in np.nonzero(~issued & (qn >= 0))[0].tolist():
+                bad.setdefault(with_q[k], f"qid {answers[with_q[k]].qid!r} is not one "
+                                          "this worker issued")
+            safe = np.where(issued, qn, 0)
+            t, p = self.q["target"][safe], self.q["partner"][safe]
+            i, j = ia[wq], ib[wq]
+            match = ((t == i) & (p == j)) | ((t == j) & (p == i))
+            for k in np.nonzero(issued & ~match)[0].tolist():
+                bad.setdefault(with_q[k], f"qid {answers[with_q[k]].qid!r} was asked "
+                                          "about another pair")
+        if bad:
+            pos = min(bad)
+            raise EngineInputError(f"answer {pos}: {bad[pos]}")
+        same = np.fromiter((bool(f) for f in flags), dtype=bool, count=count)
+        return _Intake(a_keys, b_keys, ia, ib, names, same, np.asarray(with_q, dtype=np.int64),
+                       qn)
 
     @staticmethod
     def _slot_for(side: str, labels: list[str | None]) -> int | None:
@@ -354,9 +417,12 @@ class Engine:
             self.pool = np.append(self.pool, i)
 
     def _source_ids(self, names: Sequence[str]) -> np.ndarray:
+        index = self.source_index
+        if len(set(names)) == 1 and names[0] in index:
+            return np.full(len(names), index[names[0]], dtype=np.int64)
         out = np.empty(len(names), dtype=np.int64)
         for k, name in enumerate(names):
-            j = self.source_index.get(name)
+            j = index.get(name)
             if j is None:
                 j = len(self.source_names)
                 self.source_names.append(name)
@@ -370,22 +436,19 @@ class Engine:
     def add_answers(self, answers: Sequence[Answer], now_ms: int = 0) -> list[str]:
         """Count new answers; return "applied" or "duplicate" for each, in order."""
         answers = list(answers)
-        self._check_answers(answers)
+        got = self._check_answers(answers)
         self.now_ms = max(self.now_ms, int(now_ms))
         if not answers:
             return []
-        a = self._register_many([x.a for x in answers])
-        b = self._register_many([x.b for x in answers])
-        src = self._source_ids([x.source for x in answers])
-        same = np.fromiter((bool(x.same) for x in answers), dtype=bool, count=len(answers))
+        a = self._register_missing(got.a_keys, got.ia)
+        b = self._register_missing(got.b_keys, got.ib)
+        src = self._source_ids(got.sources)
+        same = got.same
         fresh = self.seen.add_new(pair_keys(a, b, src))
         # A qid answered twice is a duplicate even from another source; a qid is closed
         # by its first answer even when that (pair, source) was heard before.
-        with_q = np.fromiter((k for k, x in enumerate(answers) if x.qid is not None),
-                             dtype=np.int64)
+        with_q, qn = got.with_q, got.qn
         if len(with_q):
-            qn = np.fromiter((int(answers[k].qid) for k in with_q.tolist()), dtype=np.int64,
-                             count=len(with_q))
             first = np.zeros(len(qn), dtype=bool)
             first[np.unique(qn, return_index=True)[1]] = True
             again = (self.q["state"][qn] == Q_ANSWERED) | ~first

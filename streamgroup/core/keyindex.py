@@ -19,8 +19,11 @@ _EMPTY = 0  # table cells hold index + 1
 class KeyIndex:
     """Append-only map between keys and 0..n-1."""
 
+    CACHE = 1 << 17  # recently used keys kept in a plain dict for speed
+
     def __init__(self) -> None:
         self.n = 0
+        self.cache: dict[str, int] = {}
         self.blob = bytearray()
         self.offsets = np.zeros(17, dtype=np.int64)
         self.hashes = np.zeros(16, dtype=np.int64)
@@ -54,8 +57,21 @@ class KeyIndex:
 
     def lookup(self, keys: Sequence[str]) -> np.ndarray:
         """Index of each key, or -1."""
-        h = np.fromiter((hash(k) for k in keys), dtype=np.int64, count=len(keys))
-        return self._find(keys, h)
+        cache = self.cache
+        out = np.fromiter((cache.get(k, -1) for k in keys), dtype=np.int64, count=len(keys))
+        miss = np.nonzero(out < 0)[0]
+        if len(miss):
+            rest = [keys[q] for q in miss.tolist()]
+            h = np.fromiter((hash(k) for k in rest), dtype=np.int64, count=len(rest))
+            found = self._find(rest, h)
+            out[miss] = found
+            self._remember(rest, found)
+        return out
+
+    def _remember(self, keys: Sequence[str], idx: np.ndarray) -> None:
+        if len(self.cache) + len(keys) > self.CACHE:
+            self.cache = {}
+        self.cache.update((k, i) for k, i in zip(keys, idx.tolist(), strict=True) if i >= 0)
 
     def _find(self, keys: Sequence[str], h: np.ndarray) -> np.ndarray:
         out = np.full(len(h), -1, dtype=np.int64)
@@ -86,8 +102,7 @@ class KeyIndex:
     # -- writing ------------------------------------------------------------------------
     def add(self, keys: Sequence[str]) -> np.ndarray:
         """Indices of ``keys``, appending the unknown ones in order of first appearance."""
-        h = np.fromiter((hash(k) for k in keys), dtype=np.int64, count=len(keys))
-        out = self._find(keys, h)
+        out = self.lookup(keys)
         missing = np.nonzero(out < 0)[0]
         if len(missing) == 0:
             return out
@@ -100,7 +115,10 @@ class KeyIndex:
                 i = fresh[k] = self.n + len(fresh)
                 new_pos.append(q)
             out[q] = i
-        self._append([keys[q] for q in new_pos], h[new_pos])
+        new_keys = [keys[q] for q in new_pos]
+        self._append(new_keys, np.fromiter((hash(k) for k in new_keys), dtype=np.int64,
+                                           count=len(new_keys)))
+        self._remember(new_keys, np.arange(self.n - len(new_keys), self.n))
         return out
 
     def _append(self, keys: list[str], h: np.ndarray) -> None:
