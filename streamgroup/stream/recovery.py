@@ -55,14 +55,26 @@ def new_epoch(now: float) -> str:
 
 
 def load_state(client: redis.Redis, keys: Keys, settings: Settings,
-               clock: Any = time.time) -> WorkerState:
-    """The committed state of the namespace, creating it on the very first start."""
+               clock: Any = time.time, expect_epoch: str | None = None) -> WorkerState:
+    """The committed state of the namespace, creating it on the very first start.
+
+    ``expect_epoch``: the epoch this process loaded before (a reload after a lost
+    connection). Then the namespace must still carry it: an empty Redis means its data
+    was lost (restarted without persistence, flushed), not a first start.
+    """
     pipe = client.pipeline(transaction=False)
     pipe.get(keys.epoch)
     pipe.get(keys.snapshot)
     pipe.exists(keys.journal)
     pipe.exists(keys.assign)
     epoch_raw, snap, has_journal, has_assign = pipe.execute()
+    if expect_epoch is not None and (epoch_raw or b"").decode() != expect_epoch:
+        found = "no epoch key" if epoch_raw is None else f"epoch {epoch_raw.decode()}"
+        raise StateError(
+            f"namespace {keys.ns!r}: the state this worker was running (epoch "
+            f"{expect_epoch}) is gone: Redis now has {found} ({keys.epoch}); its data was "
+            f"lost or replaced (a restart without persistence, a flush?); refusing to "
+            f"start over")
     if epoch_raw is None:
         present = [name for name, there in (("snapshot", snap is not None),
                                             ("journal", has_journal), ("assign", has_assign))

@@ -91,6 +91,7 @@ class Worker:
         self._revisions_seen = 0
         self.batches = 0
         self.retries = 0
+        self._epoch: str | None = None  # the deployment epoch once loaded: reloads need it
         self.health: Any = None
 
     # -- control ------------------------------------------------------------------------
@@ -156,9 +157,12 @@ class Worker:
         self.state = None
         client = recovery.connect(self.settings)
         client.ping()
-        recovery.ensure_groups(client, self.keys)
         t0 = time.monotonic()
-        self.state = recovery.load_state(client, self.keys, self.settings, self.clock)
+        # state first: after a data loss, refuse before writing anything (groups included)
+        self.state = recovery.load_state(client, self.keys, self.settings, self.clock,
+                                         expect_epoch=self._epoch)
+        self._epoch = self.state.epoch
+        recovery.ensure_groups(client, self.keys)
         self.client = client
         self._held = None
         self._backlog = []

@@ -1,0 +1,383 @@
+"""Fault scenarios against private redis-server processes, shared by the tests and the matrix.
+
+Each scenario starts its own ``redis-server`` (never port 6379), runs the worker as a
+separate process (``python -m streamgroup.stream.worker``, as deployed) over a fixed,
+recorded input, injects one kind of fault while it works, and compares the end state with
+an uninterrupted run over the same input on the same server (another namespace). It
+returns a :class:`Result`: ``tests/test_faults*.py`` assert ``passed``;
+``scripts/fault_matrix.py`` prints them all as JSON and as the README table.
+
+Why a recorded input written in full before the worker starts: the batches the worker cuts
+then depend only on the entries (XREADGROUP COUNT), so an interrupted run must end with
+exactly the assignments, counters, questions and decisions of the uninterrupted one.
+"""
+
+from __future__ import annotations
+
+import os
+import random
+import signal
+import subprocess
+import sys
+import tempfile
+import time
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from typing import Any
+
+import redis
+
+from streamgroup.keys import Keys
+from streamgroup.settings import Settings
+from streamgroup.stream.worker import Worker
+from tests.redisproc import RedisProc
+from tests.test_crash import consumed, final_view, recorded_input, write_input
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+FLAGS: dict[str, Any] = {"batch": 5, "block_ms": 50, "snapshot_every": 0.2, "consumer": "w1",
+                         "metrics_addr": "", "seed": 1, "history_every": 3600,
+                         "log_format": "json"}
+AOF = ("--appendonly", "yes", "--appendfsync", "always")
+PARTS = ("assign", "meta", "stats", "decisions", "questions", "dead")
+
+
+@dataclass
+class Result:
+    """One row of the fault matrix."""
+
+    fault: str
+    outcome: str = ""
+    passed: bool = False
+    details: dict[str, Any] = field(default_factory=dict)
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"fault": self.fault, "outcome": self.outcome, "passed": self.passed,
+                "details": self.details}
+
+
+def wait_for(cond: Callable[[], Any], timeout: float, what: str, tick: float = 0.005) -> Any:
+    """Poll ``cond`` until it is truthy; AssertionError naming ``what`` after ``timeout``."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        got = cond()
+        if got:
+            return got
+        time.sleep(tick)
+    raise AssertionError(f"timed out after {timeout}s waiting for {what}")
+
+
+class WorkerProc:
+    """``streamgroup run`` as a process, its JSON log in a file (a pipe could fill and block)."""
+
+    def __init__(self, url: str, ns: str, logdir: str, **flags: Any) -> None:
+        self.flags = {**FLAGS, **flags}
+        args = [sys.executable, "-m", "streamgroup", "run", "--redis", url, "--ns", ns]
+        for name, v in self.flags.items():
+            args += ["--" + name.replace("_", "-"), str(v)]
+        fd, self.logpath = tempfile.mkstemp(prefix="worker-", suffix=".log", dir=logdir)
+        self._log = os.fdopen(fd, "wb")
+        self.proc = subprocess.Popen(args, cwd=ROOT, stdout=self._log, stderr=subprocess.STDOUT)
+
+    def log(self) -> str:
+        if not self._log.closed:
+            self._log.flush()
+        with open(self.logpath, encoding="utf-8", errors="replace") as f:
+            return f.read()
+
+    def alive(self) -> bool:
+        return self.proc.poll() is None
+
+    def kill(self) -> None:
+        if self.alive():
+            self.proc.send_signal(signal.SIGKILL)
+        self.proc.wait(10)
+        self._log.close()
+
+    def stop(self, timeout: float = 30) -> int:
+        """SIGTERM and the exit code (the worker drains and exits 0)."""
+        if self.alive():
+            self.proc.send_signal(signal.SIGTERM)
+        try:
+            return self.proc.wait(timeout)
+        finally:
+            self._log.close()
+
+
+@contextmanager
+def server(extra: Sequence[str] = ()) -> Iterator[RedisProc]:
+    srv = RedisProc(extra=extra).start()
+    try:
+        yield srv
+    finally:
+        srv.cleanup()
+
+
+def probe(srv: RedisProc) -> redis.Redis:
+    """A single-connection client: ``CLIENT KILL ... SKIPME yes`` from it spares itself."""
+    return redis.Redis(port=srv.port, single_connection_client=True, socket_timeout=30)
+
+
+def reference(srv: RedisProc, ns: str = "ref", n: int = 200, seed: int = 11
+              ) -> tuple[Any, list[dict[str, Any]], dict[str, Any]]:
+    """Write the recorded input to ``ns`` and run it uninterrupted; (crowd, entries, view)."""
+    r = probe(srv)
+    crowd, entries = recorded_input(n=n, seed=seed)
+    write_input(r, ns, crowd, entries)
+    flags = {k: v for k, v in FLAGS.items() if k != "log_format"}
+    w = Worker(Settings(redis=srv.url, ns=ns, **flags))
+    assert w.run_until(lambda _w: consumed(r, ns), 120), "the reference run did not finish"
+    w.close()
+    return crowd, entries, final_view(r, srv.url, ns)
+
+
+def compare(want: dict[str, Any], got: dict[str, Any]) -> list[str]:
+    """The parts of the end state that differ from the uninterrupted run."""
+    return [p for p in PARTS if got[p] != want[p]]
+
+
+def seq(r: redis.Redis, ns: str) -> int:
+    return int(r.hget(Keys(ns).meta, "seq") or 0)
+
+
+def finish(w: WorkerProc, r: redis.Redis, ns: str, timeout: float = 60) -> int:
+    """Wait until every input entry is consumed and acknowledged; SIGTERM; the exit code."""
+    wait_for(lambda: consumed(r, ns) or not w.alive(), timeout, "the worker to consume all")
+    return w.stop()
+
+
+def equal_run(res: Result, want: dict[str, Any], r: redis.Redis, url: str, ns: str,
+              code: int) -> Result:
+    """Fill ``res`` from the end state of ``ns`` against the uninterrupted ``want``."""
+    got = final_view(r, url, ns)
+    diff = compare(want, got)
+    res.details.update(exit_code=code, differs=diff,
+                       applied=got["meta"].get("applied"), items=len(got["assign"]),
+                       dead=len(got["dead"]))
+    res.passed = code == 0 and not diff
+    return res
+
+
+def count(log: str, event: str) -> int:
+    return log.count(f'"event": "{event}"')
+
+
+# -- scenarios ---------------------------------------------------------------------------
+
+def redis_restart_aof(restarts: int = 3, seed: int = 1) -> Result:
+    """Redis (appendonly yes, appendfsync always) killed -9 and restarted mid-run, 3 times."""
+    res = Result("Redis killed (-9) and restarted mid-run, AOF appendfsync always")
+    rng = random.Random(seed)
+    with server(AOF) as srv, tempfile.TemporaryDirectory() as tmp:
+        _, _, want = reference(srv)
+        r = probe(srv)
+        crowd, entries = recorded_input()
+        write_input(r, "aof", crowd, entries)
+        w = WorkerProc(srv.url, "aof", tmp)
+        done = 0
+        for _ in range(restarts):
+            s0 = seq(r, "aof")
+            wait_for(lambda s=s0: seq(r, "aof") > s + rng.randint(1, 20) or not w.alive(),
+                     30, "the worker to commit batches")
+            if consumed(r, "aof") or not w.alive():
+                break
+            srv.kill()
+            srv.start()
+            r = probe(srv)
+            done += 1
+        code = finish(w, r, "aof")
+        log = w.log()
+        res.details.update(restarts=done, reconnects=count(log, "connection lost; reloading "
+                                                                "state"))
+        equal_run(res, want, r, srv.url, "aof", code)
+        res.passed = res.passed and done == restarts
+        res.outcome = (f"{done} restarts; worker reconnected and finished; end state "
+                       + ("equals" if not res.details["differs"] else "DIFFERS from")
+                       + " an uninterrupted run")
+    return res
+
+
+def redis_data_lost() -> Result:
+    """Redis restarted without persistence mid-run: the worker must stop (exit 3), not reset."""
+    res = Result("Redis restarted with its data gone (no persistence) mid-run")
+    with server() as srv, tempfile.TemporaryDirectory() as tmp:
+        r = probe(srv)
+        crowd, entries = recorded_input()
+        write_input(r, "lost", crowd, entries)
+        w = WorkerProc(srv.url, "lost", tmp, batch=2)
+        wait_for(lambda: seq(r, "lost") >= 20 or not w.alive(), 30, "some commits")
+        srv.stop()
+        srv.start()
+        r = probe(srv)
+        try:
+            wait_for(lambda: not w.alive(), 30, "the worker to stop", tick=0.02)
+        except AssertionError:
+            w.kill()
+        code = w.proc.returncode
+        log = w.log()
+        left = sorted(k.decode() for k in r.keys("{lost}:*"))
+        stopped = [line for line in log.splitlines() if "inconsistent state" in line]
+        res.details.update(exit_code=code, keys_written_after_loss=left,
+                           message=stopped[-1][:600] if stopped else None)
+        res.passed = code == 3 and not left and bool(stopped)
+        res.outcome = (f"worker exited {code}" + (" with a state error" if stopped else "")
+                       + ("; wrote nothing" if not left else f"; wrote {left}"))
+    return res
+
+
+def client_kill(kills: int = 8, seed: int = 2) -> Result:
+    """CLIENT KILL TYPE normal at random moments: the worker reconnects, nothing lost."""
+    res = Result("connections killed (CLIENT KILL TYPE normal), 8 times mid-run")
+    rng = random.Random(seed)
+    with server() as srv, tempfile.TemporaryDirectory() as tmp:
+        _, _, want = reference(srv)
+        r = probe(srv)
+        crowd, entries = recorded_input()
+        write_input(r, "kill", crowd, entries)
+        w = WorkerProc(srv.url, "kill", tmp)
+        done = 0
+        while done < kills and w.alive() and not consumed(r, "kill"):
+            s0 = seq(r, "kill")
+            wait_for(lambda s=s0: seq(r, "kill") > s + rng.randint(0, 8) or not w.alive()
+                     or consumed(r, "kill"), 30, "the worker to commit")
+            done += int(r.client_kill_filter(_type="normal", skipme=True) or 0) > 0
+        code = finish(w, r, "kill")
+        log = w.log()
+        res.details.update(kills=done, reconnects=count(log, "connection lost; reloading "
+                                                              "state"))
+        equal_run(res, want, r, srv.url, "kill", code)
+        res.passed = res.passed and done == kills and res.details["reconnects"] >= 1
+        res.outcome = (f"{done} kills, {res.details['reconnects']} reconnects; end state "
+                       + ("equals" if not res.details["differs"] else "DIFFERS from")
+                       + " an uninterrupted run")
+    return res
+
+
+def redis_paused(seed: int = 3) -> Result:
+    """CLIENT PAUSE ALL (twice) and DEBUG SLEEP (once) mid-run: the worker waits, loses nothing."""
+    res = Result("Redis paused (CLIENT PAUSE 1 s ALL x2, DEBUG SLEEP 1 s) mid-run")
+    rng = random.Random(seed)
+    with server() as srv, tempfile.TemporaryDirectory() as tmp:
+        _, _, want = reference(srv)
+        r = probe(srv)
+        crowd, entries = recorded_input()
+        write_input(r, "pause", crowd, entries)
+        w = WorkerProc(srv.url, "pause", tmp)
+        stalls = []
+        for how in ("pause", "sleep", "pause"):
+            s0 = seq(r, "pause")
+            wait_for(lambda s=s0: seq(r, "pause") > s + rng.randint(1, 10) or not w.alive(),
+                     30, "the worker to commit")
+            if consumed(r, "pause"):
+                break
+            t0 = time.monotonic()
+            if how == "pause":
+                r.execute_command("CLIENT", "PAUSE", 1000, "ALL")
+            else:
+                r.execute_command("DEBUG", "SLEEP", 1)
+            s1 = seq(r, "pause")  # blocks until the pause is over
+            wait_for(lambda s=s1: seq(r, "pause") > s or consumed(r, "pause"), 30,
+                     "the worker to commit again after the pause")
+            stalls.append(round(time.monotonic() - t0, 2))
+        code = finish(w, r, "pause")
+        res.details.update(stalls_s=stalls, reconnects=count(w.log(), "connection lost; "
+                                                                      "reloading state"))
+        equal_run(res, want, r, srv.url, "pause", code)
+        res.passed = res.passed and len(stalls) == 3
+        res.outcome = (f"{len(stalls)} pauses; commits resumed {stalls} s after each began; "
+                       "end state " + ("equals" if not res.details["differs"] else
+                                       "DIFFERS from") + " an uninterrupted run")
+    return res
+
+
+def redis_paused_past_timeout() -> Result:
+    """DEBUG SLEEP past the worker's socket timeout: it gives up the connection, reloads."""
+    res = Result("Redis blocked (DEBUG SLEEP 11 s) past the worker's socket timeout")
+    with server() as srv, tempfile.TemporaryDirectory() as tmp:
+        _, _, want = reference(srv)
+        r = probe(srv)
+        crowd, entries = recorded_input()
+        write_input(r, "stall", crowd, entries)
+        w = WorkerProc(srv.url, "stall", tmp)
+        wait_for(lambda: seq(r, "stall") > 10 or not w.alive(), 30, "the worker to commit")
+        t0 = time.monotonic()
+        r.execute_command("DEBUG", "SLEEP", 11)
+        s1 = seq(r, "stall")
+        wait_for(lambda: seq(r, "stall") > s1 or consumed(r, "stall"), 60, "commits again")
+        stall = round(time.monotonic() - t0, 2)
+        code = finish(w, r, "stall")
+        res.details.update(stall_s=stall, reconnects=count(w.log(), "connection lost; "
+                                                                    "reloading state"))
+        equal_run(res, want, r, srv.url, "stall", code)
+        res.outcome = (f"{res.details['reconnects']} reconnects; commits resumed after "
+                       f"{stall} s; end state " + ("equals" if not res.details["differs"]
+                                                   else "DIFFERS from")
+                       + " an uninterrupted run")
+    return res
+
+
+def _consistent(r: redis.Redis, ns: str, total: dict[str, int]) -> dict[str, Any]:
+    """Acknowledged entries, meta counters and the journaled state moved together.
+
+    The commit trims each input stream below its oldest pending entry in the same
+    transaction as the XACK, so ``written - XLEN`` is what was acknowledged; a half-applied
+    batch would show as a mismatch with the counters of ``{NS}:meta`` or the state's seq.
+    """
+    from streamgroup.stream import recovery
+
+    k = Keys(ns)
+    meta = {f.decode(): v.decode() for f, v in r.hgetall(k.meta).items()}
+    state = recovery.load_state(r, k, Settings(redis="redis://x", ns=ns), time.time)
+    acked = {s: total[s] - r.xlen(getattr(k, s)) for s in ("items", "answers")}
+    return {"meta_seq": int(meta.get("seq", 0)), "state_seq": state.seq,
+            "acked": acked,
+            "meta_entries": {s: int(meta.get("entries:" + s, 0)) for s in ("items", "answers")},
+            "state_entries": {s: int(state.counters.get("entries:" + s, 0))
+                              for s in ("items", "answers")}}
+
+
+def redis_maxmemory() -> Result:
+    """maxmemory reached (noeviction) mid-run: batches refused whole; recovers once freed."""
+    res = Result("Redis at maxmemory (noeviction) mid-run, then memory freed")
+    with server() as srv, tempfile.TemporaryDirectory() as tmp:
+        _, _, want = reference(srv)
+        r = probe(srv)
+        crowd, entries = recorded_input()
+        write_input(r, "oom", crowd, entries)
+        total = {"items": r.xlen(Keys("oom").items), "answers": r.xlen(Keys("oom").answers)}
+        w = WorkerProc(srv.url, "oom", tmp)
+        wait_for(lambda: seq(r, "oom") > 10 or not w.alive(), 30, "the worker to commit")
+        r.config_set("maxmemory-policy", "noeviction")
+        r.config_set("maxmemory", int(r.info("memory")["used_memory"]))
+        refused = wait_for(lambda: r.info("stats").get("total_error_replies", 0) > 0
+                           and "maxmemory" in w.log() or not w.alive(), 30,
+                           "the worker to meet an out-of-memory error")
+        s0 = seq(r, "oom")
+        held = True
+        deadline = time.monotonic() + 1.0  # while full, no batch may get through
+        while time.monotonic() < deadline and held:
+            held = seq(r, "oom") == s0
+            time.sleep(0.05)
+        check = _consistent(r, "oom", total)
+        alive = w.alive()
+        r.config_set("maxmemory", 0)
+        restarted = False
+        if not w.alive():  # what a supervisor would do
+            first = w.proc.returncode
+            w = WorkerProc(srv.url, "oom", tmp)
+            restarted = True
+        code = finish(w, r, "oom")
+        ok = (check["meta_seq"] == check["state_seq"]
+              and check["acked"] == check["meta_entries"] == check["state_entries"])
+        res.details.update(refused=bool(refused), no_commit_while_full=held,
+                           survived=alive, consistent_while_full=ok, **check)
+        if restarted:
+            res.details["first_exit_code"] = first
+        equal_run(res, want, r, srv.url, "oom", code)
+        res.passed = res.passed and ok and held and alive
+        res.outcome = ("batches refused whole while full (acks, counters and state agree); "
+                       + ("worker waited and resumed" if alive else
+                          f"worker exited {res.details.get('first_exit_code')}, restarted")
+                       + "; end state " + ("equals" if not res.details["differs"] else
+                                           "DIFFERS from") + " an uninterrupted run")
+    return res
