@@ -12,7 +12,8 @@ API (stable; the stream layer, the demo and the benchmarks code against it):
   are registered as ``waiting`` items. Raises :class:`EngineInputError`, applying nothing,
   if any answer is bad.
 - ``plan(now_ms) -> list[Question]``: the questions to send now.
-- ``take_changes() -> list[Record]``: records that changed since the last call.
+- ``take_changes() -> list[Record]``: records that changed since the last call;
+  ``take_updates()`` returns them together with the ones whose side or status changed.
 - ``record(key) -> Record | None``; ``stats() -> dict``; ``sources() -> list[dict]``;
   ``done() -> bool``.
 - ``snapshot() -> bytes`` and ``Engine.restore(data) -> Engine``: a restored engine behaves
@@ -181,12 +182,24 @@ class Engine:
 
     def take_changes(self) -> list[Record]:
         """Records changed since the last call (each item once, in item order)."""
+        return self.take_updates()[0]
+
+    def take_updates(self) -> tuple[list[Record], list[Record]]:
+        """(records changed since the last call, those among them whose side or status
+        changed: the decisions to publish; an item first seen as ``waiting`` has none)."""
         dirty = np.nonzero(self.items.view("dirty"))[0]
         out = self._records(dirty)
+        it = self.items
+        side = self.ledger.items["side"][dirty]
+        status = it["status"][dirty]
+        seen = it["shown_status"][dirty]
+        moved = (side != it["shown_side"][dirty]) | (status != seen)
+        moved &= ~((seen < 0) & (status == WAITING))
+        decided = [out[k] for k in np.nonzero(moved)[0].tolist()]
         self.items["dirty"][dirty] = False
         self.items["shown_side"][dirty] = self.ledger.items["side"][dirty]
         self.items["shown_status"][dirty] = self.items["status"][dirty]
-        return out
+        return out, decided
 
     def take_latencies(self) -> list[float]:
         """Seconds from first question to commit, for items committed since the last call."""

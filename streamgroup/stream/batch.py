@@ -148,9 +148,9 @@ def process(state: WorkerState, items_stream: str, items: list[Entry],
         if da.answers:
             _apply_answers(state, da.answers, da.aids, da.origins, answers_stream, now_ms, out)
     out.questions = state.engine.plan(now_ms)
-    out.records = state.engine.take_changes()
+    out.records, decided = state.engine.take_updates()
     for k in [k for k, v in counts.items() if not v]:
         del counts[k]
     out.batch.counts = counts
-    out.decisions = state.finish(out.batch, out.records)
+    out.decisions = state.finish(out.batch, decided)
     return out

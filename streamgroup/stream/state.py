@@ -8,7 +8,7 @@ Everything here is rebuilt exactly by ``snapshot + journal replay``:
   skips any entry not newer than the snapshot, so a stray repeat can never double-apply);
 - the window of recent ``aid`` values (bounded, FIFO; the journal lists the aids each
   batch accepted, so replay rebuilds the window exactly);
-- the side/status last published per item, to write ``{NS}:decisions`` only on a change;
+- (the side/status last published per item lives in the engine: ``take_updates``);
 - counters (dead letters by reason, duplicates by kind, ...), journaled as per-batch deltas.
 """
 
@@ -24,7 +24,6 @@ import msgpack
 from ..core.engine import Engine
 from ..core.types import Answer, EngineConfig, Record
 from ..errors import StateError
-from ..keys import STATUSES
 
 SNAPSHOT_VERSION = 1
 JOURNAL_VERSION = 1
@@ -34,7 +33,6 @@ DEFAULT_AID_WINDOW = 100_000
 OP_ITEMS = "i"
 OP_ANSWERS = "a"
 
-_STATUS_CODE = {s: i for i, s in enumerate(STATUSES)}
 
 
 class AidWindow:
@@ -108,8 +106,6 @@ class WorkerState:
         self.seq = 0
         self.aids = AidWindow(aid_window)
         self.counters: Counter[str] = Counter()
-        self.published: dict[str, int] = {}  # key -> code of the side/status last published
-        self._labels: dict[str | None, int] = {None: 0}
 
     # -- applying -----------------------------------------------------------------------
     def apply_items(self, items: list[tuple[str, str | None]]) -> list[str]:
@@ -130,43 +126,22 @@ class WorkerState:
             else:
                 raise StateError(f"journal entry {batch.seq} has an unknown op {op!r}")
         self.engine.plan(batch.now_ms)
-        self.finish(batch, self.engine.take_changes())
+        self.finish(batch, self.engine.take_updates()[1])
 
-    def finish(self, batch: Batch, records: Iterable[Record]) -> list[Record]:
-        """Fold a committed (or replayed) batch into the worker's memory.
-
-        Returns the records whose side or status changed (the decisions to publish).
-        """
+    def finish(self, batch: Batch, decisions: list[Record]) -> list[Record]:
+        """Fold a committed (or replayed) batch into the worker's memory; pass through the
+        records whose side or status changed (the decisions to publish)."""
         self.seq = batch.seq
         self.aids.extend(batch.aids)
         self.counters.update(batch.counts)
-        changed: list[Record] = []
-        pub = self.published
-        for r in records:
-            code = self._code(r)
-            prev = pub.get(r.key)
-            if prev != code:
-                pub[r.key] = code
-                # an item just registered as waiting has nothing decided yet: no entry
-                if prev is not None or r.status != "waiting":
-                    changed.append(r)
-        return changed
-
-    def _code(self, r: Record) -> int:
-        labels = self._labels
-        side = labels.get(r.side)
-        if side is None:
-            side = labels[r.side] = len(labels)
-        return side * 8 + _STATUS_CODE.get(r.status, 7)
+        return decisions
 
     # -- snapshots ----------------------------------------------------------------------
     def snapshot_bytes(self, now_ms: int) -> bytes:
-        labels = sorted(self._labels.items(), key=lambda kv: kv[1])
         return msgpack.packb(
             {"v": SNAPSHOT_VERSION, "epoch": self.epoch, "seq": self.seq, "t": now_ms,
              "engine": self.engine.snapshot(), "aids": self.aids.items(),
-             "counters": dict(self.counters), "labels": [k for k, _ in labels],
-             "pub_keys": list(self.published), "pub_codes": list(self.published.values())},
+             "counters": dict(self.counters)},
             use_bin_type=True,
         )
 
@@ -186,8 +161,6 @@ class WorkerState:
         st.seq = int(m["seq"])
         st.aids.extend(m["aids"])
         st.counters.update(m["counters"])
-        st._labels = {k: i for i, k in enumerate(m["labels"])}
-        st.published = dict(zip(m["pub_keys"], m["pub_codes"], strict=True))
         return st
 
     @staticmethod
