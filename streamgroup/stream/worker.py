@@ -29,7 +29,7 @@ from ..serve.metrics import WorkerMetrics
 from ..settings import Settings
 from . import recovery
 from .batch import Outcome, process
-from .commit import Caps, CommitPlan, build_commit, execute, receive, send
+from .commit import Caps, CommitError, CommitPlan, build_commit, execute, receive, send
 from .state import WorkerState
 
 EXIT_OK, EXIT_ERROR, EXIT_STATE = 0, 1, 3
@@ -58,6 +58,16 @@ def _answers_in(entry: tuple[bytes, dict[bytes, bytes]]) -> int:
     return 1  # not an array: the codec will reject it
 
 _CONN_ERRORS = (redis.ConnectionError, redis.TimeoutError, ConnectionError, TimeoutError)
+
+
+def _transient(exc: BaseException) -> bool:
+    """Worth a reload and a retry: a lost connection, or Redis refusing writes at maxmemory.
+
+    A batch refused for memory was not applied at all: while Redis is over maxmemory it
+    refuses every command queued in a MULTI, and EXEC then aborts the whole transaction.
+    """
+    return isinstance(exc, _CONN_ERRORS) or (
+        isinstance(exc, (redis.ResponseError, CommitError)) and "maxmemory" in str(exc))
 
 log = structlog.get_logger("streamgroup.worker")
 
@@ -186,7 +196,9 @@ class Worker:
         while True:
             try:
                 return fn()
-            except _CONN_ERRORS as exc:
+            except Exception as exc:
+                if not _transient(exc):
+                    raise
                 attempt += 1
                 self.retries += 1
                 if self.metrics is not None:
@@ -207,6 +219,8 @@ class Worker:
             left = deadline - time.monotonic()
             if left <= 0:
                 return
+            if self.health is not None:  # waiting for Redis: not ready, but not hung
+                self.health.beat()
             time.sleep(min(left, 0.05))
 
     # -- the loop -----------------------------------------------------------------------
@@ -214,12 +228,19 @@ class Worker:
         """One turn: read a batch, process it, commit it. Returns the entries consumed."""
         try:
             return self._turn()
-        except _CONN_ERRORS as exc:
+        except Exception as exc:
+            if isinstance(exc, redis.ResponseError) and "NOGROUP" in str(exc):
+                raise StateError(f"the consumer group {GROUP} is gone from the input streams "
+                                 f"({exc}): Redis lost the namespace's data; refusing to "
+                                 f"start over") from None
+            if not _transient(exc):
+                raise
             self.retries += 1
             if self.metrics is not None:
                 self.metrics.redis_retries.inc()
             self._held = None  # its outcome is unknown: the reload decides
-            self._log.warning("connection lost; reloading state", error=str(exc))
+            self._log.warning("connection lost; reloading state" if isinstance(
+                exc, _CONN_ERRORS) else "redis refused a write; reloading state", error=str(exc))
             if self.health is not None:
                 self.health.set_ready(False)
             self.state = None
@@ -369,7 +390,9 @@ class Worker:
                 journal=None, snapshot=self.state.snapshot_bytes(int(self.clock() * 1000)),
                 meta=self.state.meta_fields(), acks={}, group=GROUP, pack_questions=False)
             execute(self.client, plan)
-        except _CONN_ERRORS as exc:  # nothing is lost: the journal still holds it all
+        except Exception as exc:  # nothing is lost: the journal still holds it all
+            if not _transient(exc):
+                raise
             self._log.warning("final snapshot skipped", error=str(exc))
 
     def _claim(self, now: float) -> None:
