@@ -186,3 +186,25 @@ def test_small_bench_run_meets_the_error_target(mixed: bool) -> None:
     # not far above the limit.
     assert res["questions"] < res["fixed_baseline"]
     assert (res["questions"] - res["bootstrap_questions"]) / res["per_item_limit"] < 1.6
+
+
+def test_bench_table_flags_missed_targets() -> None:
+    """The README table marks a run that misses a target as not met."""
+    import importlib.util
+    from pathlib import Path
+
+    path = Path(__file__).resolve().parent.parent / "scripts" / "bench_table.py"
+    spec = importlib.util.spec_from_file_location("bench_table", path)
+    assert spec is not None and spec.loader is not None
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    base = {"mixed": False, "ratio_to_limit": 1.01, "ratio_to_fixed": 0.4,
+            "bootstrap_share": 0.001, "error_ci95": [5e-4, 1.2e-3], "questions": 1000}
+    rows = {"delta 0.6, W=1": {**base, "inflight": 1},
+            "delta 0.6, W=8": {**base, "inflight": 8, "questions": 1030}}
+    got = {t: ok for t, _, ok in mod.checks(rows, 1e-3)}
+    assert got["delta 0.6, W=1: spend <= 1.05 x limit"]
+    assert not got["delta 0.6, W=8: spend <= 2% above W=1 (same seed)"]
+    rows["delta 0.6, W=1"]["error_ci95"] = [1.1e-3, 2e-3]
+    got = {t: ok for t, _, ok in mod.checks(rows, 1e-3)}
+    assert not got["delta 0.6, W=1: error CI95 low <= alpha"]
