@@ -140,6 +140,13 @@ def seq(r: redis.Redis, ns: str) -> int:
     return int(r.hget(Keys(ns).meta, "seq") or 0)
 
 
+def advance(r: redis.Redis, ns: str, w: WorkerProc, batches: int, timeout: float = 30) -> None:
+    """Wait for ``batches`` more commits (or the end of the input, or the worker's exit)."""
+    goal = seq(r, ns) + batches
+    wait_for(lambda: seq(r, ns) >= goal or not w.alive() or consumed(r, ns), timeout,
+             f"{batches} more commits in {ns}")
+
+
 def finish(w: WorkerProc, r: redis.Redis, ns: str, timeout: float = 60) -> int:
     """Wait until every input entry is consumed and acknowledged; SIGTERM; the exit code."""
     wait_for(lambda: consumed(r, ns) or not w.alive(), timeout, "the worker to consume all")
@@ -176,9 +183,7 @@ def redis_restart_aof(restarts: int = 3, seed: int = 1) -> Result:
         w = WorkerProc(srv.url, "aof", tmp)
         done = 0
         for _ in range(restarts):
-            s0 = seq(r, "aof")
-            wait_for(lambda s=s0: seq(r, "aof") > s + rng.randint(1, 20) or not w.alive(),
-                     30, "the worker to commit batches")
+            advance(r, "aof", w, rng.randint(1, 20))
             if consumed(r, "aof") or not w.alive():
                 break
             srv.kill()
@@ -237,9 +242,7 @@ def client_kill(kills: int = 8, seed: int = 2) -> Result:
         w = WorkerProc(srv.url, "kill", tmp)
         done = 0
         while done < kills and w.alive() and not consumed(r, "kill"):
-            s0 = seq(r, "kill")
-            wait_for(lambda s=s0: seq(r, "kill") > s + rng.randint(0, 8) or not w.alive()
-                     or consumed(r, "kill"), 30, "the worker to commit")
+            advance(r, "kill", w, rng.randint(1, 8))
             done += int(r.client_kill_filter(_type="normal", skipme=True) or 0) > 0
         code = finish(w, r, "kill")
         log = w.log()
@@ -265,9 +268,7 @@ def redis_paused(seed: int = 3) -> Result:
         w = WorkerProc(srv.url, "pause", tmp)
         stalls = []
         for how in ("pause", "sleep", "pause"):
-            s0 = seq(r, "pause")
-            wait_for(lambda s=s0: seq(r, "pause") > s + rng.randint(1, 10) or not w.alive(),
-                     30, "the worker to commit")
+            advance(r, "pause", w, rng.randint(1, 10))
             if consumed(r, "pause"):
                 break
             t0 = time.monotonic()
