@@ -277,10 +277,11 @@ class Engine:
         a few vectorised operations per batch rather than string checks per answer.
         """
         count = len(answers)
-        for pos, ans in enumerate(answers):
-            if type(ans) is not Answer:
-                raise EngineInputError(f"answer {pos}: expected an Answer, got "
-                                       f"{type(ans).__name__}")
+        if set(map(type, answers)) - {Answer}:
+            for pos, ans in enumerate(answers):
+                if type(ans) is not Answer:
+                    raise EngineInputError(f"answer {pos}: expected an Answer, got "
+                                           f"{type(ans).__name__}")
         a_keys = [x.a for x in answers]
         b_keys = [x.b for x in answers]
         ia = self.keys.lookup(a_keys)
@@ -296,14 +297,14 @@ class Engine:
         for pos in np.nonzero((ia == ib) & (ia >= 0))[0].tolist():
             bad.setdefault(pos, "a and b are the same item")
         flags = [x.same for x in answers]
-        for pos, f in enumerate(flags):
-            if f is not True and f is not False:
+        if set(map(type, flags)) - {bool}:
+            for pos, f in enumerate(flags):
                 err = validate.same_flag(f)
                 if err:
                     bad.setdefault(pos, err)
         names = [x.source for x in answers]
         sources = self.source_index
-        new_sources = {n for n in names if n not in sources}
+        new_sources = set(names) - sources.keys()
         if new_sources:
             for pos, n in enumerate(names):
                 if n in new_sources:
@@ -312,29 +313,34 @@ class Engine:
                         err = f"too many sources (limit {MAX_SOURCES})"
                     if err:
                         bad.setdefault(pos, err)
-        with_q = [pos for pos, x in enumerate(answers) if x.qid is not None]
+        qids = [x.qid for x in answers]
+        with_q = [pos for pos, q in enumerate(qids) if q is not None]
         qn = np.full(len(with_q), -1, dtype=np.int64)
-        for k, pos in enumerate(with_q):
-            q = answers[pos].qid
-            err = validate.qid(q)
-            if err:
-                bad.setdefault(pos, err)
+        if with_q:
+            texts = [qids[pos] for pos in with_q]
+            if (set(map(type, texts)) == {str} and all(map(str.isdigit, texts))
+                    and all(map(str.isascii, texts)) and max(map(len, texts)) < 19):
+                qn = np.array(texts).astype(np.int64)
             else:
-                qn[k] = int(q) if len(q) < 19 else -1
-                if qn[k] < 0:
-                    bad.setdefault(pos, f"qid {q!r} is not one this worker issued")
-        if len(with_q):
+                for k, q in enumerate(texts):
+                    err = validate.qid(q)
+                    if err:
+                        bad.setdefault(with_q[k], err)
+                    elif q.isascii() and len(q) < 19:
+                        qn[k] = int(q)
+        if with_q:
             wq = np.asarray(with_q, dtype=np.int64)
-            issued = (qn >= 0) & (qn < self.q.n)
-            for k in np.nonzero(~issued & (qn >= 0))[0].tolist():
-                bad.setdefault(with_q[k], f"qid {answers[with_q[k]].qid!r} is not one "
-                                          "this worker issued")
+            known = qn >= 0
+            issued = known & (qn < self.q.n)
+            for k in np.nonzero(~issued)[0].tolist():
+                bad.setdefault(with_q[k], f"qid {qids[with_q[k]]!r} is not one this "
+                                          "worker issued")
             safe = np.where(issued, qn, 0)
             t, p = self.q["target"][safe], self.q["partner"][safe]
             i, j = ia[wq], ib[wq]
             match = ((t == i) & (p == j)) | ((t == j) & (p == i))
             for k in np.nonzero(issued & ~match)[0].tolist():
-                bad.setdefault(with_q[k], f"qid {answers[with_q[k]].qid!r} was asked "
+                bad.setdefault(with_q[k], f"qid {qids[with_q[k]]!r} was asked "
                                           "about another pair")
         if bad:
             pos = min(bad)

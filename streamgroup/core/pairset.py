@@ -20,49 +20,46 @@ def pair_keys(a: np.ndarray, b: np.ndarray, src: np.ndarray) -> np.ndarray:
 
 
 class PairSet:
-    """Sorted uint64 array plus a small recent set, merged geometrically.
-
-    About 8 bytes per member once merged, versus ~70 for a Python set of ints.
-    """
+    """Two sorted uint64 arrays: a large settled one and a small recent one that is merged
+    into it geometrically (8 bytes per member, all checks vectorised)."""
 
     def __init__(self) -> None:
         self.sorted = np.zeros(0, dtype=np.uint64)
-        self.recent: set[int] = set()
+        self.recent = np.zeros(0, dtype=np.uint64)
 
     def __len__(self) -> int:
         return len(self.sorted) + len(self.recent)
 
-    def _in_sorted(self, keys: np.ndarray) -> np.ndarray:
-        if len(self.sorted) == 0:
+    @staticmethod
+    def _member(arr: np.ndarray, keys: np.ndarray) -> np.ndarray:
+        if len(arr) == 0:
             return np.zeros(len(keys), dtype=bool)
-        pos = np.searchsorted(self.sorted, keys)
-        pos = np.minimum(pos, len(self.sorted) - 1)
-        return self.sorted[pos] == keys
+        pos = np.minimum(np.searchsorted(arr, keys), len(arr) - 1)
+        return arr[pos] == keys
+
+    def contains(self, keys: np.ndarray) -> np.ndarray:
+        return self._member(self.sorted, keys) | self._member(self.recent, keys)
 
     def add_new(self, keys: np.ndarray) -> np.ndarray:
         """Add keys in order; return a mask of those that were new (first of their kind)."""
-        old = self._in_sorted(keys)
-        new = np.zeros(len(keys), dtype=bool)
-        recent = self.recent
-        for i, k in enumerate(keys.tolist()):
-            if old[i] or k in recent:
-                continue
-            recent.add(k)
-            new[i] = True
-        if len(recent) > max(65_536, len(self.sorted) // 4):
-            self.merge()
+        keys = np.asarray(keys, dtype=np.uint64)
+        new = ~self.contains(keys)
+        cand = np.nonzero(new)[0]
+        if len(cand):
+            _, first = np.unique(keys[cand], return_index=True)
+            new[:] = False
+            new[cand[first]] = True
+            fresh = np.sort(keys[new])
+            self.recent = np.insert(self.recent, np.searchsorted(self.recent, fresh), fresh)
+            if len(self.recent) > max(65_536, len(self.sorted) // 4):
+                self.merge()
         return new
 
-    def contains(self, keys: np.ndarray) -> np.ndarray:
-        old = self._in_sorted(keys)
-        return old | np.fromiter((k in self.recent for k in keys.tolist()), dtype=bool,
-                                 count=len(keys))
-
     def merge(self) -> None:
-        if self.recent:
-            extra = np.fromiter(self.recent, dtype=np.uint64, count=len(self.recent))
-            self.sorted = np.union1d(self.sorted, extra)
-            self.recent = set()
+        if len(self.recent):
+            # both runs are sorted and disjoint: a stable sort merges them in linear time
+            self.sorted = np.sort(np.concatenate([self.sorted, self.recent]), kind="stable")
+            self.recent = np.zeros(0, dtype=np.uint64)
 
     def to_bytes(self) -> bytes:
         self.merge()
