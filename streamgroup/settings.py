@@ -69,6 +69,8 @@ class Settings:
                 raise bad(name, "must be at least 1")
         if self.inflight > 64:
             raise bad("inflight", "must be at most 64")
+        if not (0 <= self.seed < 2**32):
+            raise bad("seed", "must be in [0, 2**32)")
         if self.budget < 0:
             raise bad("budget", "must be 0 (unlimited) or positive")
         if not (0.0 <= self.check_rate <= 0.5):

@@ -105,6 +105,8 @@ def _check_config(c: EngineConfig) -> None:
             raise EngineInputError(f"{name} must be at least 1, got {getattr(c, name)!r}")
     if c.budget < 0:
         raise EngineInputError(f"budget must be >= 0, got {c.budget!r}")
+    if not (0 <= c.seed < 2**32):
+        raise EngineInputError(f"seed must be in [0, 2**32), got {c.seed!r}")
     if not (0.0 <= c.alpha_slack <= 0.25):
         raise EngineInputError(f"alpha_slack must be in [0, 0.25], got {c.alpha_slack!r}")
     if not (0.0 <= c.check_rate <= 0.5):
@@ -118,6 +120,7 @@ class Engine:
         self.config = config or EngineConfig()
         _check_config(self.config)
         # the least evidence that can end a walk: the randomised boundary's lower edge
+        self._salt = int(self.config.seed) * 1_000_003  # every planning coin depends on the seed
         self.boundary = threshold(min(0.499, self.config.alpha * (1 + self.config.alpha_slack)))
         self.ledger = Ledger()
         self.items = Columns(_ITEM_FIELDS)
@@ -591,7 +594,8 @@ class Engine:
         e = err[loose]
         pi = np.clip((alpha - nxt) / np.maximum(e - nxt, 1e-300), 0.0, 1.0)
         count = self.ledger.items["count"][idx[loose]].astype(np.uint64)
-        coin = planner.uniform(idx[loose].astype(np.uint64) * np.uint64(1 << 20) + count, 29)
+        coin = planner.uniform(idx[loose].astype(np.uint64) * np.uint64(1 << 20) + count,
+                              29 + self._salt)
         out = strict.copy()
         out[np.nonzero(loose)[0][coin < pi]] = True
         return out
@@ -810,7 +814,8 @@ class Engine:
         checks = planner.check_count(len(out), cfg.check_rate, self.q.n)
         checks = min(checks, room - len(out))
         if checks > 0 and len(self.pool) >= 2:
-            salt = np.arange(self.q.n, self.q.n + checks, dtype=np.uint64)
+            salt = np.arange(self.q.n, self.q.n + checks, dtype=np.uint64) ^ planner.mix(
+                self._salt)
             ia = (planner.mix(salt ^ np.uint64(5)) % np.uint64(len(self.pool))).astype(np.int64)
             ib = (planner.mix(salt ^ np.uint64(9)) % np.uint64(len(self.pool) - 1)).astype(
                 np.int64)
@@ -854,7 +859,7 @@ class Engine:
     def _partners(self, targets: np.ndarray, k: np.ndarray) -> np.ndarray:
         """The k-th partner of each target: the reference pool in a per-item rotation, then
         (once an item has met every member) any placed item, so pairs do not repeat."""
-        h = planner.mix(targets.astype(np.uint64))
+        h = planner.mix(targets.astype(np.uint64) ^ planner.mix(self._salt))
         size = np.uint64(self._active_pool())
         out = self.pool[((h + k) % size).astype(np.int64)]
         beyond = k >= size
@@ -886,7 +891,7 @@ class Engine:
             fresh = side[it["first_ms"][side] < 0]
             it["first_ms"][fresh] = now_ms
         self._touch(np.asarray(targets, dtype=np.int64))
-        swap = planner.uniform(qids.astype(np.uint64), 3) < 0.5
+        swap = planner.uniform(qids.astype(np.uint64), 3 + self._salt) < 0.5
         first = np.where(swap, partners, targets)
         second = np.where(swap, targets, partners)
         name = WHY_NAMES[why]
