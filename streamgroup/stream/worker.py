@@ -19,7 +19,6 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
-import msgpack
 import redis
 import structlog
 
@@ -30,14 +29,13 @@ from ..settings import Settings
 from . import recovery
 from .batch import Outcome, process
 from .commit import Caps, CommitError, CommitPlan, build_commit, execute, receive, send
+from .progress import Progress
 from .state import WorkerState
 
 EXIT_OK, EXIT_ERROR, EXIT_STATE = 0, 1, 3
 BACKOFF_BASE = 0.1  # seconds; doubled per failed attempt, jittered, capped
 BACKOFF_CAP = 5.0
 IDLE_PLAN_EVERY = 1.0  # seconds between plan() calls while no entries arrive
-GAUGES_EVERY = 0.5  # seconds between refreshes of engine-derived gauges
-GROUP_INFO_EVERY = 5.0  # seconds between XINFO GROUPS reads (lag and pending gauges)
 JOURNAL_FLOOR = 4 << 20  # bytes of journal always allowed before an early snapshot
 BATCH_ANSWERS = 20_000  # answers in one batch at most (unless `batch` is larger); packed
 # entries beyond it wait, already read, for the next batches
@@ -95,14 +93,11 @@ class Worker:
         self._next_snapshot = 0.0
         self._journal_bytes = 0  # journal written since the last snapshot
         self._snapshot_bytes = 0  # size of the last snapshot written
-        self._next_gauges = 0.0
-        self._next_group_info = 0.0
-        self._next_history = 0.0
-        self._revisions_seen = 0
         self.batches = 0
         self.retries = 0
         self._epoch: str | None = None  # the deployment epoch once loaded: reloads need it
         self.health: Any = None
+        self.progress = Progress(settings, self.keys, self.caps.history)
 
     # -- control ------------------------------------------------------------------------
     def request_stop(self) -> None:
@@ -181,13 +176,14 @@ class Worker:
         now = self.clock()
         self._next_snapshot = now + self.settings.snapshot_every
         self._journal_bytes = 0
-        self._revisions_seen = int(self.state.engine.stats()["revisions"])
+        self.progress.metrics, self.progress.health = self.metrics, self.health
+        self.progress.reset(self.state)
         self._log.info("state loaded", seq=self.state.seq, epoch=self.state.epoch,
                        seconds=round(time.monotonic() - t0, 3))
         if self.metrics is not None:
             if hasattr(self.metrics, "budget"):
                 self.metrics.budget.set(self.settings.budget)
-            self._refresh_gauges(force=True)
+            self.progress.refresh_gauges(self.state, force=True)
         if self.health is not None:
             self.health.set_ready(True)
 
@@ -317,7 +313,7 @@ class Worker:
             if self._pending_first or self._stop:
                 self._flush()
         elif held is None:
-            self._periodic(self.clock())
+            self.progress.periodic(self.clock(), self.state, self.client)
         return n
 
     def _take_backlog(self) -> list[Any]:
@@ -348,7 +344,8 @@ class Worker:
     def _done(self, held: _Held) -> None:
         self._next_plan = held.now + IDLE_PLAN_EVERY
         self.batches += 1
-        self._after_batch(held.out, time.perf_counter() - held.t0, self.clock())
+        self.progress.batch_done(held.out, time.perf_counter() - held.t0, self.clock(),
+                                 self.state, self.client)
 
     def _worth_planning(self) -> bool:
         """With no input, plan() matters only while some item is still undecided."""
@@ -409,99 +406,6 @@ class Worker:
             self._log.info("claimed idle entries of other consumers", entries=claimed)
             self._pending_first = True
             self._backlog = []  # still pending: the id-0 reads return them again
-
-    # -- metrics and progress -----------------------------------------------------------
-    def _after_batch(self, out: Outcome, seconds: float, now: float) -> None:
-        if self.health is not None:
-            self.health.beat()
-        m = self.metrics
-        if m is not None:
-            c = out.counts
-            m.batches.inc()
-            m.batch_seconds.observe(seconds)
-            if c["applied"]:
-                m.answers_applied.inc(c["applied"])
-            if c["items_applied"]:
-                m.items_added.inc(c["items_applied"])
-            for kind in ("qid", "aid", "pair_source", "item"):
-                if c["dup:" + kind]:
-                    m.answers_duplicate.labels(kind=kind).inc(c["dup:" + kind])
-            for stream, d in out.dead:
-                m.entries_rejected.labels(stream=stream.rsplit(":", 1)[-1],
-                                          reason=d.kind).inc()
-            if out.questions:
-                whys: dict[str, int] = {}
-                for q in out.questions:
-                    whys[q.why] = whys.get(q.why, 0) + 1
-                for why, k in whys.items():
-                    m.questions_issued.labels(why=why).inc(k)
-            take = getattr(self.state.engine, "take_latencies", None) if self.state else None
-            if take is not None:
-                for sec in take():
-                    m.decision_seconds.observe(sec)
-        self._periodic(now)
-
-    def _periodic(self, now: float) -> None:
-        if self.health is not None:
-            self.health.beat()
-        self._refresh_gauges()
-        if now >= self._next_history:
-            self._next_history = now + self.settings.history_every
-            self._write_history(now)
-        if self.metrics is not None and now >= self._next_group_info:
-            self._next_group_info = now + GROUP_INFO_EVERY
-            self._group_info()
-
-    def _refresh_gauges(self, force: bool = False) -> None:
-        m, state = self.metrics, self.state
-        if m is None or state is None:
-            return
-        t = time.monotonic()
-        if not force and t < self._next_gauges:
-            return
-        self._next_gauges = t + GAUGES_EVERY
-        st = state.engine.stats()
-        m.set_items(st["items"])
-        m.spend.set(st["spend"])
-        m.questions_outstanding.set(st["outstanding"])
-        m.noise_pooled.set(st["pooled_delta"])
-        rev = int(st["revisions"])
-        if rev > self._revisions_seen:
-            m.revisions.inc(rev - self._revisions_seen)
-        self._revisions_seen = rev
-        m.set_sources(state.engine.sources())
-
-    def _write_history(self, now: float) -> None:
-        if self.client is None or self.state is None:
-            return
-        st = self.state.engine.stats()
-        items = st["items"]
-        pipe = self.client.pipeline(transaction=False)
-        pipe.xadd(self.keys.history, {
-            "ts": int(now * 1000), "placed": items.get("placed", 0),
-            "asking": items.get("asking", 0), "waiting": items.get("waiting", 0),
-            "unresolved": items.get("unresolved", 0), "spend": st["spend"],
-            "outstanding": st["outstanding"]}, maxlen=self.caps.history, approximate=True)
-        # The learned noise for `status`, the demo and the report (msgpack map per source),
-        # refreshed with each progress sample; like the sample itself it may be one batch
-        # ahead of the last commit, which is fine for a summary nobody replays.
-        noise = {s["source"]: msgpack.packb({"delta": s["delta"], "se": s["se"],
-                                             "answers": s["answers"]})
-                 for s in self.state.engine.sources() if s["answers"]}
-        if noise:
-            pipe.hset(self.keys.noise, mapping=noise)
-        pipe.execute()
-
-    def _group_info(self) -> None:
-        assert self.client is not None and self.metrics is not None
-        for stream, label in ((self.keys.items, "items"), (self.keys.answers, "answers")):
-            for g in self.client.xinfo_groups(stream):
-                if g.get("name") in (GROUP.encode(), GROUP):
-                    lag = g.get("lag")
-                    if lag is not None:
-                        self.metrics.consumer_lag.labels(stream=label).set(int(lag))
-                    self.metrics.pending.labels(stream=label).set(int(g.get("pending", 0)))
-
 
 @dataclass
 class _Held:
