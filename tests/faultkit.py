@@ -39,6 +39,7 @@ FLAGS: dict[str, Any] = {"batch": 5, "block_ms": 50, "snapshot_every": 0.2, "con
                          "metrics_addr": "", "seed": 1, "history_every": 3600,
                          "log_format": "json"}
 AOF = ("--appendonly", "yes", "--appendfsync", "always")
+DEBUG = ("--enable-debug-command", "yes")
 PARTS = ("assign", "meta", "stats", "decisions", "questions", "dead")
 
 
@@ -149,6 +150,8 @@ def advance(r: redis.Redis, ns: str, w: WorkerProc, batches: int, timeout: float
 
 def finish(w: WorkerProc, r: redis.Redis, ns: str, timeout: float = 60) -> int:
     """Wait until every input entry is consumed and acknowledged; SIGTERM; the exit code."""
+    # (a SIGTERM before the signal handlers are installed would end it with -15)
+    wait_for(lambda: "state loaded" in w.log() or not w.alive(), timeout, "the worker ready")
     wait_for(lambda: consumed(r, ns) or not w.alive(), timeout, "the worker to consume all")
     return w.stop()
 
@@ -260,7 +263,7 @@ def redis_paused(seed: int = 3) -> Result:
     """CLIENT PAUSE ALL (twice) and DEBUG SLEEP (once) mid-run: the worker waits, loses nothing."""
     res = Result("Redis paused (CLIENT PAUSE 1 s ALL x2, DEBUG SLEEP 1 s) mid-run")
     rng = random.Random(seed)
-    with server() as srv, tempfile.TemporaryDirectory() as tmp:
+    with server(DEBUG) as srv, tempfile.TemporaryDirectory() as tmp:
         _, _, want = reference(srv)
         r = probe(srv)
         crowd, entries = recorded_input()
@@ -294,7 +297,7 @@ def redis_paused(seed: int = 3) -> Result:
 def redis_paused_past_timeout() -> Result:
     """DEBUG SLEEP past the worker's socket timeout: it gives up the connection, reloads."""
     res = Result("Redis blocked (DEBUG SLEEP 11 s) past the worker's socket timeout")
-    with server() as srv, tempfile.TemporaryDirectory() as tmp:
+    with server(DEBUG) as srv, tempfile.TemporaryDirectory() as tmp:
         _, _, want = reference(srv)
         r = probe(srv)
         crowd, entries = recorded_input()
@@ -381,4 +384,98 @@ def redis_maxmemory() -> Result:
                           f"worker exited {res.details.get('first_exit_code')}, restarted")
                        + "; end state " + ("equals" if not res.details["differs"] else
                                            "DIFFERS from") + " an uninterrupted run")
+    return res
+
+
+def _clients(r: redis.Redis) -> int:
+    return len(r.client_list(_type="normal"))
+
+
+def sigkill_startup(kills: int = 12, seed: int = 4) -> Result:
+    """SIGKILL during start-up and recovery: connect, journal replay, pending reread, claim.
+
+    Snapshots are rare (the journal holds every batch), so a start replays hundreds of
+    journal entries; every other restart takes a new consumer name, so it must claim the
+    killed one's pending entries (XAUTOCLAIM) before it reads anything new. Each kill lands
+    a random 0-250 ms after the new process opened its first connection.
+    """
+    res = Result("worker SIGKILLed during start-up and recovery (replay, reread, claim), "
+                 f"{kills} times")
+    rng = random.Random(seed)
+    flags = {"snapshot_every": 3600, "claim_idle": 0.05}
+    with server() as srv, tempfile.TemporaryDirectory() as tmp:
+        _, _, want = reference(srv)
+        r = probe(srv)
+        crowd, entries = recorded_input()
+        write_input(r, "boot", crowd, entries)
+        first = WorkerProc(srv.url, "boot", tmp, **flags)  # builds up a long journal
+        advance(r, "boot", first, 150)
+        first.kill()
+        base = _clients(r)
+        # calibrate: from the first connection of a start to its "state loaded" line
+        cal = WorkerProc(srv.url, "boot", tmp, **flags)
+        wait_for(lambda: _clients(r) > base or not cal.alive(), 30, "a connection")
+        t0 = time.monotonic()
+        wait_for(lambda: "state loaded" in cal.log() or not cal.alive(), 30, "state loaded")
+        window = 1.5 * (time.monotonic() - t0) + 0.02
+        cal.kill()
+        phases = {"loading": 0, "rereading or claiming": 0, "running": 0}
+        for i in range(kills):
+            wait_for(lambda: _clients(r) <= base, 10, "the killed connection to close")
+            consumer = "w1" if i % 2 == 0 else f"w-{i}"
+            s0 = seq(r, "boot")
+            w = WorkerProc(srv.url, "boot", tmp, consumer=consumer, **flags)
+            wait_for(lambda w=w: _clients(r) > base or not w.alive(), 30, "a connection")
+            time.sleep(rng.uniform(0.0, window))  # the random moment of the kill
+            assert w.alive(), w.log()[-2000:]
+            w.kill()
+            if "state loaded" not in w.log():
+                phases["loading"] += 1
+            elif seq(r, "boot") == s0:
+                phases["rereading or claiming"] += 1
+            else:
+                phases["running"] += 1
+        wait_for(lambda: _clients(r) <= base, 10, "the killed connection to close")
+        last = WorkerProc(srv.url, "boot", tmp, consumer="w-last", **flags)
+        code = finish(last, r, "boot")
+        res.details.update(kills=kills, phases=phases, window_s=round(window, 3))
+        equal_run(res, want, r, srv.url, "boot", code)
+        res.passed = res.passed and phases["loading"] >= 2 and sum(phases.values()) == kills
+        res.outcome = (f"{kills} kills ({phases['loading']} while loading the state, "
+                       f"{phases['rereading or claiming']} before the first new commit); end "
+                       "state " + ("equals" if not res.details["differs"] else "DIFFERS from")
+                       + " an uninterrupted run")
+    return res
+
+
+def namespace_flushed() -> Result:
+    """FLUSHALL while the worker runs (Redis stays up): it must stop, never start over.
+
+    It reads next (NOGROUP: exit 3, nothing written) or commits next (the commit fails on
+    the missing streams: exit 1, and the keys that commit wrote make a restart refuse with
+    exit 3). Either way nothing is silently recreated.
+    """
+    res = Result("namespace flushed (FLUSHALL) while the worker runs")
+    with server() as srv, tempfile.TemporaryDirectory() as tmp:
+        r = probe(srv)
+        crowd, entries = recorded_input()
+        write_input(r, "flush", crowd, entries)
+        w = WorkerProc(srv.url, "flush", tmp, batch=2)
+        advance(r, "flush", w, 20)
+        r.flushall()
+        wait_for(lambda: not w.alive(), 30, "the worker to stop", tick=0.02)
+        first, second = w.proc.returncode, None
+        k = Keys("flush")
+        if first != 3:
+            again = WorkerProc(srv.url, "flush", tmp)  # what a supervisor would do
+            wait_for(lambda: not again.alive(), 30, "the restarted worker to stop", tick=0.02)
+            second = again.proc.returncode
+        started_over = bool(r.exists(k.snapshot) or r.exists(k.epoch))
+        res.details.update(first_exit_code=first, restart_exit_code=second,
+                           started_over=started_over,
+                           keys_left=sorted(x.decode() for x in r.keys("{flush}:*")))
+        res.passed = not started_over and (first == 3 or (first == 1 and second == 3))
+        res.outcome = (f"worker exited {first}" + (
+            f"; a restarted worker exited {second}" if second is not None else "")
+            + ("; nothing recreated" if not started_over else "; it STARTED OVER"))
     return res

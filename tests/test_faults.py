@@ -34,3 +34,62 @@ def test_redis_killed_and_restarted_with_aof_loses_nothing() -> None:
     """Redis -9 and back 3 times (appendfsync always): same end state as no restarts."""
     res = faultkit.redis_restart_aof()
     assert res.passed, res.as_dict()
+
+
+def test_flushed_namespace_is_never_silently_restarted() -> None:
+    """FLUSHALL under a running worker: it stops, and a restarted one refuses with exit 3."""
+    res = faultkit.namespace_flushed()
+    assert res.passed, res.as_dict()
+
+
+def test_redis_paused_and_debug_sleep_lose_nothing() -> None:
+    """CLIENT PAUSE and DEBUG SLEEP mid-run: commits resume after each, same end state."""
+    res = faultkit.redis_paused()
+    assert res.passed, res.as_dict()
+    assert all(s < 5 for s in res.details["stalls_s"])
+
+
+@pytest.mark.slow
+def test_redis_blocked_past_the_socket_timeout_loses_nothing() -> None:
+    """DEBUG SLEEP 11 s (past the 10 s socket timeout): reconnect, reload, same end state."""
+    res = faultkit.redis_paused_past_timeout()
+    assert res.passed, res.as_dict()
+    assert res.details["reconnects"] >= 1
+
+
+@pytest.mark.slow
+def test_sigkill_during_startup_and_recovery_matches_an_uninterrupted_run() -> None:
+    """12 kills while loading, replaying, rereading or claiming: same end state as no kills."""
+    res = faultkit.sigkill_startup()
+    assert res.passed, res.as_dict()
+
+
+def test_outage_shows_not_ready_but_alive_and_resumes() -> None:
+    """While Redis is down the worker backs off: /healthz stays alive, /readyz says not ready."""
+    import threading
+    import time
+
+    from streamgroup.serve.http import Health
+    from streamgroup.settings import Settings
+    from streamgroup.stream.worker import Worker
+
+    with faultkit.server(faultkit.AOF) as srv:
+        w = Worker(Settings(redis=srv.url, ns="hb", metrics_addr="", block_ms=20,
+                            consumer="w1"))
+        w.health = Health(stale_after=0.3)  # judged 10x faster than in production
+        codes: list[int] = []
+        t = threading.Thread(target=lambda: codes.append(w.run()), daemon=True)
+        t.start()
+        faultkit.wait_for(lambda: w.health.ready(), 10, "ready")
+        srv.kill()
+        faultkit.wait_for(lambda: not w.health.ready(), 10, "not ready")
+        down_until = time.monotonic() + 1.5  # five stale periods of outage
+        while time.monotonic() < down_until:
+            assert w.health.alive(), w.health.liveness()
+            time.sleep(0.02)
+        assert w.retries >= 2
+        srv.start()
+        faultkit.wait_for(lambda: w.health.ready(), 15, "ready again after the outage")
+        w.request_stop()
+        t.join(15)
+        assert codes == [0]
