@@ -23,6 +23,7 @@ API (stable; the stream layer, the demo and the benchmarks code against it):
 from __future__ import annotations
 
 import math
+import zlib
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -50,6 +51,7 @@ from .sprt import threshold, weight
 from .types import APPLIED, DUPLICATE, Answer, EngineConfig, Question, Record
 
 SNAPSHOT_VERSION = 1
+SNAPSHOT_MAGIC = b"SGZ1"  # zlib-compressed msgpack follows
 STATUS_NAMES = (STATUS_WAITING, STATUS_ASKING, STATUS_PLACED, STATUS_UNRESOLVED)
 WAITING, ASKING, PLACED, UNRESOLVED = range(4)
 WHY_NAMES = (WHY_SEED, WHY_PLACE, WHY_CHECK)
@@ -941,11 +943,15 @@ class Engine:
             "work": [np.concatenate([self.carry, *self.nudged]).astype(np.int64).tobytes(),
                      self.cursor],
         }
-        return msgpack.packb(state, use_bin_type=True)
+        # The arrays are mostly small integers and zeros: zlib at its fastest level makes
+        # the snapshot several times smaller, which is what Redis holds per item.
+        return SNAPSHOT_MAGIC + zlib.compress(msgpack.packb(state, use_bin_type=True), 1)
 
     @classmethod
     def restore(cls, data: bytes) -> Engine:
         try:
+            if data[: len(SNAPSHOT_MAGIC)] == SNAPSHOT_MAGIC:
+                data = zlib.decompress(data[len(SNAPSHOT_MAGIC):])
             st = msgpack.unpackb(data, raw=False)
             if st.get("v") != SNAPSHOT_VERSION:
                 raise EngineInputError(f"snapshot version {st.get('v')!r} is not supported")
@@ -974,7 +980,7 @@ class Engine:
             eng.carry = uniq(np.frombuffer(carry, dtype=np.int64))
         except EngineInputError:
             raise
-        except (ValueError, KeyError, TypeError, msgpack.UnpackException) as exc:
+        except (ValueError, KeyError, TypeError, zlib.error, msgpack.UnpackException) as exc:
             raise EngineInputError(f"snapshot is unreadable: {exc}") from None
         return eng
 
