@@ -21,8 +21,12 @@ port, persistence off), with the same batch size everywhere:
   ``--items`` items (after start-up), per item; ``redis_bytes_per_item``: growth of Redis's
   ``used_memory`` for the namespace after those items are in and a snapshot is written.
 
-The machine is shared (2 cores for Redis, the worker, the adapter and the lookup process),
-so the ratio is the figure to watch; absolute rates move with the load.
+The machine is shared (2 cores for Redis, the worker, the adapter and the lookup process,
+and whatever else runs there), so the rates move with the load: ``worker_cpu_share_*``
+says how much of a core the worker got, and ``*_per_cpu_s`` divides by it (the rate a
+dedicated core would give, if the worker is the bottleneck). ``exec_ms_*`` is the mean
+time Redis spends inside one batch transaction (lookups wait behind it), and
+``lookup_idle_p99_ms`` is the lookup latency of this machine with no worker running.
 """
 
 from __future__ import annotations
@@ -337,6 +341,9 @@ def main(argv: list[str] | None = None) -> int:
         "lookup_idle_p99_ms": round(idle["p99_ms"], 3),
         "exec_ms_plain": round(plain["exec_ms"], 3),
         "exec_ms_packed": round(packed["exec_ms"], 3),
+        # per second of the worker's own CPU time: what a dedicated core would give
+        "worker_entries_per_cpu_s": round(plain["entries_per_s"] / plain["worker_cpu_share"]),
+        "packed_answers_per_cpu_s": round(packed["answers_per_s"] / packed["worker_cpu_share"]),
         "worker_cpu_share_plain": round(plain["worker_cpu_share"], 2),
         "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
         "items": mem["items"],
