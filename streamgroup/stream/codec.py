@@ -270,7 +270,8 @@ def _unpack_pack(pack: bytes) -> list[Any]:
             max_bin_len=MAX_PACK_BYTES, max_ext_len=0,
         )
     except ValueError as exc:  # includes the length limits above and bad UTF-8
-        text = str(exc)
+        # some msgpack errors carry no message: name the problem instead of "()"
+        text = str(exc) or _UNPACK_WHY.get(type(exc).__name__, type(exc).__name__)
         if "exceeds max_array_len" in text:
             raise _Bad(TOO_LARGE, f"pack holds more than {MAX_PACK_ANSWERS} answers") from None
         raise _Bad(BAD_PACK, f"pack is not valid msgpack within the limits ({text})") from None
@@ -283,6 +284,8 @@ def _unpack_pack(pack: bytes) -> list[Any]:
     return data
 
 
+_UNPACK_WHY = {"FormatError": "a byte that starts no msgpack value",
+               "StackError": "nested too deeply"}
 _FAST_CHARS = 32  # strings this short are within every byte limit even at 4 bytes a char
 
 
