@@ -162,6 +162,7 @@ class Worker:
         self.state = None
         client = recovery.connect(self.settings)
         client.ping()
+        recovery.tune_socket(client)
         t0 = time.monotonic()
         # state first: after a data loss, refuse before writing anything (groups included)
         self.state = recovery.load_state(client, self.keys, self.settings, self.clock,
