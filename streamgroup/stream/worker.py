@@ -7,6 +7,14 @@ leaves the batch pending, so it is applied exactly once later; after a lost conn
 in-memory state is thrown away and reloaded from Redis, because the worker cannot know
 whether the last EXEC took effect.
 
+Overlap: batch k's transaction is sent after batch k+1 has been read and its reply is read
+after batch k+1 has been processed, so Redis executes one while Python computes the other
+(see ``_turn``). Batches stay bounded: at most ``batch`` entries per stream and at most
+``max(batch, BATCH_ANSWERS)`` answers (big packs read together wait in a local backlog).
+State: every committed batch appends one journal entry; every ``snapshot_every`` seconds,
+or as soon as the journal has outgrown the last snapshot, the batch's transaction writes a
+fresh snapshot and drops the journal instead.
+
 Exit codes of :meth:`Worker.run`: 0 after a requested stop, 1 after an unexpected error
 (logged with its traceback), 3 when the state in Redis is inconsistent (StateError).
 """
