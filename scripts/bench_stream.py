@@ -151,6 +151,7 @@ class Feeder:
         self.pack = pack
         self.r.xgroup_create(self.k.questions, "crowd", id="0", mkstream=True)
         self.names = np.array(crowd.source_names, dtype=object)
+        self.questions = 0  # questions read (and answered) so far
 
     def step(self) -> int:
         reply = self.r.xreadgroup("crowd", "c", {self.k.questions: ">"}, count=20_000,
@@ -168,6 +169,7 @@ class Feeder:
                 qs.append(Question(f[b"qid"].decode(), f[b"a"].decode(), f[b"b"].decode(),
                                    "", 0))
         answers = self.crowd.answer_now(qs)
+        self.questions += len(qs)
         conn = self.r.connection
         cmds = [("XACK", self.k.questions, "crowd", *[e[0] for e in entries])]
         if self.pack:
@@ -248,6 +250,7 @@ def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
              str(seconds), "500"], stdout=subprocess.PIPE)
     r.config_resetstat()
     e0, a0, c0, t0 = consumed(), applied(), cpu_seconds(proc.pid), time.monotonic()
+    q0 = feeder.questions
     t_end = t0 + seconds
     while time.monotonic() < t_end:
         feeder.step()
@@ -258,6 +261,7 @@ def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
         "answers_per_s": (a1 - a0) / (t1 - t0),
         "worker_cpu_share": (c1 - c0) / (t1 - t0),
         "answers_in_window": a1 - a0,
+        "questions_per_answer": (feeder.questions - q0) / max(1, a1 - a0),
         # mean time Redis spends inside one batch transaction (it serves nothing else then)
         "exec_ms": stats.get("cmdstat_exec", {}).get("usec_per_call", 0.0) / 1000,
     }
@@ -332,6 +336,7 @@ def main(argv: list[str] | None = None) -> int:
         "raw_entries_per_s": round(raw_rate),
         "raw_runs": [round(raw), round(raw2)],
         "worker_entries_per_s": round(plain["entries_per_s"]),
+        "questions_per_answer_plain": round(plain["questions_per_answer"], 3),
         "ratio": round(plain["entries_per_s"] / raw_rate, 3),
         "packed_answers_per_s": round(packed["answers_per_s"]),
         "packed_over_plain": round(packed["answers_per_s"] / plain["entries_per_s"], 2),
