@@ -59,6 +59,7 @@ class DemoOptions:
     embedded: str = "auto"  # auto | redis-server | fakeredis
     quiet: bool = False
     inflight: int = 4  # questions in flight per item (the worker's W)
+    item_ceiling: int = 200  # answers per shard before it is left to a person
     latency_ms: tuple[int, int] = LATENCY_MS
     time_limit: float = 110.0  # seconds before the demo gives up waiting
     progress_every: float = 1.0
@@ -79,6 +80,7 @@ class DemoSummary:
     server: str
     sources: list[dict[str, Any]] = field(default_factory=list)  # learned vs true bias
     report_path: str | None = None
+    unresolved_keys: list[str] = field(default_factory=list)  # for a person to look at
 
     @property
     def ok(self) -> bool:
@@ -154,8 +156,9 @@ def _summarise(client: Client, crowd: Crowd, opts: DemoOptions, seconds: float,
                finished: bool, server: str,
                engine_sources: list[dict[str, Any]] | None = None) -> DemoSummary:
     truth = {k: crowd.side_of(k) for k in crowd.keys}
-    placed = [(r["key"], r["side"]) for r in client.assignments()
-              if r["status"] == "placed" and r["key"] in truth]
+    records = [r for r in client.assignments() if r["key"] in truth]
+    placed = [(r["key"], r["side"]) for r in records if r["status"] == "placed"]
+    unresolved = sorted(r["key"] for r in records if r["status"] == "unresolved")
     # The worker names the sides "0" and "1" (the first reference item is "0"); the demo
     # knows the kilns, so it reads the labels the way that matches best.
     agree = sum(1 for k, s in placed if str(truth[k]) == str(s))
@@ -172,7 +175,7 @@ def _summarise(client: Client, crowd: Crowd, opts: DemoOptions, seconds: float,
         items=opts.items, placed=counts["placed"], unresolved=counts["unresolved"],
         accuracy=best / len(placed) if placed else None, wrong=len(placed) - best,
         spend=int(st["spend"] or 0), limit_per_item=limit, seconds=seconds,
-        finished=finished, server=server, sources=sources)
+        finished=finished, server=server, sources=sources, unresolved_keys=unresolved)
 
 
 def error_upper_bound(wrong: int, n: int, confidence: float = 0.95) -> float:
@@ -208,6 +211,11 @@ def render_summary(s: DemoSummary, alpha: float) -> str:
         lines.append("  stopped before every shard was decided (time limit or interrupted)")
     acc = "n/a" if s.accuracy is None else f"{100 * s.accuracy:.2f}%"
     lines.append(f"  placed {s.placed}, unresolved {s.unresolved} (for a person to look at)")
+    if s.unresolved_keys:
+        more = len(s.unresolved_keys) - 5
+        lines.append("    unresolved: " + ", ".join(s.unresolved_keys[:5])
+                     + (f" and {more} more (streamgroup export --status unresolved)"
+                        if more > 0 else ""))
     lines.append(f"  accuracy against the hidden kilns: {acc}: {s.wrong} wrong of {s.placed} "
                  f"(alpha expects about {alpha * s.placed:.1f}; 95% upper bound on the "
                  f"error rate {100 * error_upper_bound(s.wrong, s.placed):.2f}% vs alpha "
@@ -256,7 +264,7 @@ def run_demo(opts: DemoOptions, out: TextIO | None = None, err: TextIO | None = 
                   f"alpha {opts.alpha:g}, seed {opts.seed}; {server}, namespace {ns}",
                   file=err, flush=True)
         settings = Settings(redis=url, ns=ns, alpha=opts.alpha, seed=opts.seed,
-                            inflight=opts.inflight,
+                            inflight=opts.inflight, item_ceiling=opts.item_ceiling,
                             metrics_addr="", consumer="demo-worker", block_ms=20,
                             pack_questions=True, log_level="warning",
                             question_timeout=30.0, history_every=0.5)
