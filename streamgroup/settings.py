@@ -124,6 +124,11 @@ class Settings:
 
 def redact_url(url: str) -> str:
     parts = urlsplit(url)
+    if "password=" in parts.query:  # redis-py also takes ?password=...: mask it too
+        query = "&".join("password=***" if q.startswith("password=") else q
+                         for q in parts.query.split("&"))
+        parts = parts._replace(query=query)
+        url = urlunsplit(parts)
     if parts.password is None and parts.username is None:
         return url
     host = parts.hostname or ""
