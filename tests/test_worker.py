@@ -320,3 +320,19 @@ def test_big_packs_are_split_into_batches_of_bounded_answers(redis_url: str) -> 
     assert max(steps) == 1 and len(steps) == 10
     assert meta(r)["applied"] == "300" and r.xlen(K.answers) == 0
     w.close()
+
+
+def test_changed_engine_settings_warn_and_keep_the_committed_ones(redis_url: str) -> None:
+    """A restart with another alpha logs the difference; the committed engine config stays."""
+    from structlog.testing import capture_logs
+
+    w = Worker(settings(redis_url, alpha=1e-3))
+    w.start()
+    w.close()
+    w2 = Worker(settings(redis_url, alpha=1e-2))
+    with capture_logs() as logs:
+        w2.start()
+    w2.close()
+    warn = [e for e in logs if e["log_level"] == "warning" and "differ" in e["event"]]
+    assert warn and warn[0]["differ"] == {"alpha": {"committed": 1e-3, "given": 1e-2}}
+    assert w2.state.engine.config.alpha == 1e-3

@@ -17,6 +17,7 @@ from collections.abc import Iterator
 from typing import Any
 
 import redis
+import structlog
 from redis.backoff import NoBackoff
 from redis.retry import Retry
 
@@ -24,6 +25,8 @@ from ..errors import StateError
 from ..keys import GROUP, Keys
 from ..settings import Settings
 from .state import Batch, WorkerState
+
+log = structlog.get_logger("streamgroup.recovery")
 
 JOURNAL_CHUNK = 200  # journal entries fetched per XRANGE during replay
 
@@ -112,6 +115,15 @@ def load_state(client: redis.Redis, keys: Keys, settings: Settings,
             f"committed state was lost (a Redis restart without persistence?); refusing "
             f"to start over")
     state = WorkerState.from_snapshot(snap, epoch, settings.aid_window)
+    kept = getattr(state.engine, "config", None)
+    wanted = settings.engine_config()
+    if kept is not None and kept != wanted:
+        changed = {f: (getattr(kept, f), getattr(wanted, f)) for f in wanted.__slots__
+                   if getattr(kept, f, None) != getattr(wanted, f)}
+        log.warning("engine settings differ from the committed state; the committed ones "
+                    "stay in force (start a new namespace to change them)",
+                    ns=keys.ns, differ={k: {"committed": a, "given": b}
+                                        for k, (a, b) in changed.items()})
     replay_journal(client, keys, state)
     return state
 
