@@ -8,7 +8,6 @@ import signal
 import subprocess
 import sys
 import time
-from dataclasses import replace
 from typing import Any
 
 import msgpack
@@ -54,11 +53,11 @@ def recorded_input(n: int = 200, seed: int = 11) -> tuple[Crowd, list[dict[str, 
     while i < len(answers):
         roll = rng.random()
         if roll < 0.05:  # a packed entry of a few answers
-            chunk = [replace(a, qid=None) for a in answers[i:i + 7]]
+            chunk = [a._replace(qid=None) for a in answers[i:i + 7]]
             entries.append({"pack": pack_answers(chunk)})
             i += len(chunk)
             continue
-        a = replace(answers[i], qid=None)
+        a = answers[i]._replace(qid=None)
         entries.append(answer_fields(a, f"aid-{i}"))
         if roll < 0.08:
             entries.append(answer_fields(a, f"aid-{i}"))  # a producer retry

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import NamedTuple
 
 
 @dataclass(frozen=True, slots=True)
@@ -22,8 +23,11 @@ class EngineConfig:
     alpha_slack: float = 0.03
 
 
-@dataclass(frozen=True, slots=True)
-class Answer:
+# Answer, Question and Record are NamedTuples: immutable values like frozen dataclasses,
+# but about twice as cheap to build, and the worker builds three of them per answer.
+
+
+class Answer(NamedTuple):
     """One answer: do items ``a`` and ``b`` belong together?"""
 
     a: str
@@ -33,8 +37,7 @@ class Answer:
     qid: str | None = None  # the question answered, when it was one of ours
 
 
-@dataclass(frozen=True, slots=True)
-class Question:
+class Question(NamedTuple):
     """A question the engine wants asked."""
 
     qid: str
@@ -44,8 +47,7 @@ class Question:
     ts_ms: int
 
 
-@dataclass(frozen=True, slots=True)
-class Record:
+class Record(NamedTuple):
     """Where an item stands: the value served by lookups."""
 
     key: str
