@@ -1,0 +1,120 @@
+"""Decisions inside the engine: commits, the randomised boundary, revisions, give-ups."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from . import noise, planner
+from .codes import ANCHOR_FACTOR, PLACED, UNRESOLVED
+from .columns import uniq
+from .evidence import decision_error
+from .ledger import UNPLACED
+
+
+class DecideMixin:
+    """Commit, revise or give up (part of :class:`~streamgroup.core.engine.Engine`)."""
+
+    def _refit(self, cold: bool = False) -> None:
+        fit = noise.fit(self.ledger, self.delta, self.se, cold=cold)
+        self.delta, self.se, self.src_answers = fit.delta, fit.se, fit.answers
+        self.pooled, self.pooled_se = fit.pooled, fit.pooled_se
+        self.counted_at_fit = self._counted()
+        share = np.bincount(self.ledger.answer("src"), minlength=len(self.delta)).astype(float)
+        share /= max(share.sum(), 1.0)
+        self.shared = float((share * share).sum())
+
+    def _decide(self, touched: np.ndarray) -> None:
+        """Commit, revise or give up on the touched items, following every consequence."""
+        led = self.ledger.items
+        alpha = self.config.alpha
+        todo = uniq(touched)
+        for _ in range(64):
+            if len(todo) == 0:
+                return
+            todo = todo[~led["pinned"][todo]]
+            llr = led["llr"][todo]
+            spread = self.ledger.spread(todo, self.shared)
+            err = decision_error(llr, spread)
+            lean = (llr > 0).astype(np.int8)
+            side = led["side"][todo]
+            ok = err <= alpha
+            commit = self._may_commit(todo, err, spread, side == UNPLACED)
+            newly = todo[commit]
+            flips = todo[ok & (side != UNPLACED) & (lean != side)]
+            if len(newly):
+                led["side"][newly] = lean[commit]
+                self._committed(newly)
+            ok |= commit
+            if len(flips):
+                led["side"][flips] = 1 - led["side"][flips]
+                self.items["rev"][flips] += 1
+                self.revisions += len(flips)
+                self.items["dirty"][flips] = True
+            strong = todo[err <= alpha * ANCHOR_FACTOR]
+            if len(strong):
+                self._grow_pool(strong)
+            self._give_up(todo[~ok])
+            if len(flips):
+                self.ledger.recompute(self.delta, self.se)
+                todo = np.arange(len(self.keys))
+            elif len(newly):
+                released = self.ledger.release_pending()
+                todo = self.ledger.count(released, self.delta, self.se)
+                todo = uniq(todo)
+            else:
+                return
+
+    def _may_commit(self, idx: np.ndarray, err: np.ndarray, spread: np.ndarray,
+                    open_: np.ndarray) -> np.ndarray:
+        """Which open items commit now: those with error <= alpha, and, at random, those
+        just above it.
+
+        The walk moves in whole steps, so the error at the first step past the boundary can
+        land a hair above alpha (an estimate of the bias a hair low), and the next step far
+        below it. An item within alpha * (1 + slack) commits with the probability pi that
+        makes its expected error alpha: pi * err + (1 - pi) * err_next = alpha, where
+        err_next is its error one agreeing answer later (a randomised boundary, as in a
+        randomised test). The coin is a hash of the item and its answer count, so a replay
+        decides the same way.
+        """
+        alpha = self.config.alpha
+        strict = open_ & (err <= alpha)
+        loose = open_ & ~strict & (err <= alpha * (1.0 + self.config.alpha_slack))
+        if not loose.any():
+            return strict
+        llr = self.ledger.items["llr"][idx[loose]]
+        nxt = decision_error(np.abs(llr) + self._best_step(), spread[loose])
+        e = err[loose]
+        pi = np.clip((alpha - nxt) / np.maximum(e - nxt, 1e-300), 0.0, 1.0)
+        count = self.ledger.items["count"][idx[loose]].astype(np.uint64)
+        coin = planner.uniform(idx[loose].astype(np.uint64) * np.uint64(1 << 20) + count,
+                              29 + self._salt)
+        out = strict.copy()
+        out[np.nonzero(loose)[0][coin < pi]] = True
+        return out
+
+    def _committed(self, idx: np.ndarray) -> None:
+        st = self.items["status"]
+        st[idx] = PLACED
+        self.items["dirty"][idx] = True
+        first = self.items["first_ms"][idx]
+        asked = first[first >= 0]
+        self.latencies.extend(((self.now_ms - asked) / 1000.0).tolist())
+
+    def _give_up(self, idx: np.ndarray) -> None:
+        if len(idx) == 0:
+            return
+        cnt = self.ledger.items["count"][idx]
+        st = self.items["status"][idx]
+        stuck = idx[(cnt >= self.config.item_ceiling) & (st != PLACED) & (st != UNRESOLVED)]
+        if len(stuck):
+            self.items["status"][stuck] = UNRESOLVED
+            self.items["dirty"][stuck] = True
+
+    def _grow_pool(self, idx: np.ndarray) -> None:
+        if self.phase != "run":
+            return
+        idx = idx[self.ledger.items["side"][idx] != UNPLACED]
+        known = np.isin(idx, self.pool)
+        if (~known).any():
+            self.pool = np.concatenate([self.pool, idx[~known]])

@@ -1,0 +1,156 @@
+"""Checking what is handed to the engine: one reason per bad input, nothing applied."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from ..errors import EngineInputError
+from . import validate
+from .pairset import MAX_SOURCES
+from .types import Answer
+
+
+@dataclass(slots=True)
+class Intake:
+    """One checked batch of answers, as arrays (indices -1 for keys not registered yet)."""
+
+    a_keys: list[str]
+    b_keys: list[str]
+    ia: np.ndarray
+    ib: np.ndarray
+    sources: list[str]
+    same: np.ndarray
+    with_q: np.ndarray  # positions of answers that name a qid
+    qn: np.ndarray  # those qids as numbers
+
+
+class IntakeMixin:
+    """Validation of items and answers (part of :class:`~streamgroup.core.engine.Engine`)."""
+
+    # Attributes provided by Engine: keys, labels, ledger, q, source_index, source_names.
+    def validate_item(self, key: Any, side: Any = None) -> str | None:
+        err = validate.item_key(key)
+        if err or side is None:
+            return err
+        err = validate.side_label(side)
+        if err:
+            return err
+        if self._slot_for(side, self.labels) is None:
+            bound = ", ".join(str(x) for x in self.labels if x is not None)
+            return f"side label {side!r} would be a third group (bound: {bound})"
+        i = self.keys.get(key)
+        if i is not None and self.ledger.items["pinned"][i]:
+            have = self.label(int(self.ledger.items["side"][i]))
+            if have != side:
+                return f"item {key!r} is already pinned to side {have!r}"
+        return None
+
+    def _register_missing(self, keys: list[str], idx: np.ndarray) -> np.ndarray:
+        missing = idx < 0
+        if not missing.any():
+            return idx
+        out = idx.copy()
+        pos = np.nonzero(missing)[0]
+        out[pos] = self._register_many([keys[k] for k in pos.tolist()])
+        return out
+
+    def validate_answer(self, ans: Any) -> str | None:
+        try:
+            self._check_answers([ans])
+        except EngineInputError as exc:
+            return str(exc).split(": ", 1)[1]
+        return None
+
+    def _check_answers(self, answers: Sequence[Any]) -> Intake:
+        """Raise EngineInputError at the first bad answer, else return the batch as arrays.
+
+        Keys already registered were checked when they arrived, so the common case costs
+        a few vectorised operations per batch rather than string checks per answer.
+        """
+        count = len(answers)
+        if set(map(type, answers)) - {Answer}:
+            for pos, ans in enumerate(answers):
+                if type(ans) is not Answer:
+                    raise EngineInputError(f"answer {pos}: expected an Answer, got "
+                                           f"{type(ans).__name__}")
+        a_keys = [x.a for x in answers]
+        b_keys = [x.b for x in answers]
+        ia = self.keys.lookup(a_keys)
+        ib = self.keys.lookup(b_keys)
+        bad: dict[int, str] = {}
+        for pos in np.nonzero((ia < 0) | (ib < 0))[0].tolist():
+            err = ((ia[pos] < 0 and validate.item_key(a_keys[pos], "a"))
+                   or (ib[pos] < 0 and validate.item_key(b_keys[pos], "b")))
+            if not err and a_keys[pos] == b_keys[pos]:
+                err = "a and b are the same item"
+            if err:
+                bad[pos] = err
+        for pos in np.nonzero((ia == ib) & (ia >= 0))[0].tolist():
+            bad.setdefault(pos, "a and b are the same item")
+        flags = [x.same for x in answers]
+        if set(map(type, flags)) - {bool}:
+            for pos, f in enumerate(flags):
+                err = validate.same_flag(f)
+                if err:
+                    bad.setdefault(pos, err)
+        names = [x.source for x in answers]
+        sources = self.source_index
+        new_sources = set(names) - sources.keys()
+        if new_sources:
+            for pos, n in enumerate(names):
+                if n in new_sources:
+                    err = validate.source_id(n)
+                    if not err and len(sources) + len(new_sources) > MAX_SOURCES:
+                        err = f"too many sources (limit {MAX_SOURCES})"
+                    if err:
+                        bad.setdefault(pos, err)
+        qids = [x.qid for x in answers]
+        with_q = [pos for pos, q in enumerate(qids) if q is not None]
+        qn = np.full(len(with_q), -1, dtype=np.int64)
+        if with_q:
+            texts = [qids[pos] for pos in with_q]
+            if (set(map(type, texts)) == {str} and all(map(str.isdigit, texts))
+                    and all(map(str.isascii, texts)) and max(map(len, texts)) < 19):
+                qn = np.array(texts).astype(np.int64)
+            else:
+                for k, q in enumerate(texts):
+                    err = validate.qid(q)
+                    if err:
+                        bad.setdefault(with_q[k], err)
+                    elif q.isascii() and len(q) < 19:
+                        qn[k] = int(q)
+        if with_q:
+            wq = np.asarray(with_q, dtype=np.int64)
+            known = qn >= 0
+            issued = known & (qn < self.q.n)
+            for k in np.nonzero(~issued)[0].tolist():
+                bad.setdefault(with_q[k], f"qid {qids[with_q[k]]!r} is not one this "
+                                          "worker issued")
+            safe = np.where(issued, qn, 0)
+            t, p = self.q["target"][safe], self.q["partner"][safe]
+            i, j = ia[wq], ib[wq]
+            match = ((t == i) & (p == j)) | ((t == j) & (p == i))
+            for k in np.nonzero(issued & ~match)[0].tolist():
+                bad.setdefault(with_q[k], f"qid {qids[with_q[k]]!r} was asked "
+                                          "about another pair")
+        if bad:
+            pos = min(bad)
+            raise EngineInputError(f"answer {pos}: {bad[pos]}")
+        same = np.fromiter((bool(f) for f in flags), dtype=bool, count=count)
+        return Intake(a_keys, b_keys, ia, ib, names, same, np.asarray(with_q, dtype=np.int64),
+                       qn)
+
+    @staticmethod
+    def _slot_for(side: str, labels: list[str | None]) -> int | None:
+        if side in labels:
+            return labels.index(side)
+        if side in ("0", "1") and labels[int(side)] is None:
+            return int(side)
+        for k in (0, 1):
+            if labels[k] is None and str(k) not in labels:
+                return k
+        return None

@@ -1,0 +1,176 @@
+"""Issuing questions inside the engine: who to ask about, within every cap."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from . import planner
+from .codes import ASKING, CHECK, PLACE, Q_EXPIRED, Q_OPEN, WAITING, WHY_NAMES
+from .columns import uniq
+from .ledger import UNPLACED
+from .sprt import weight
+from .types import Question
+
+
+class QuestionsMixin:
+    """Planning of questions (part of :class:`~streamgroup.core.engine.Engine`)."""
+
+    def plan(self, now_ms: int) -> list[Question]:
+        """The questions to send now, within every cap."""
+        self.now_ms = max(self.now_ms, int(now_ms))
+        now = self.now_ms
+        self._expire(now)
+        cfg = self.config
+        room = cfg.max_outstanding - self.outstanding
+        if cfg.budget:
+            room = min(room, cfg.budget - sum(self.issued))
+        if room <= 0:
+            return []
+        if self.phase == "boot":
+            out = self._plan_block(now, room)
+            if self.phase == "boot":
+                return out
+            room -= len(out)
+        else:
+            out = []
+        return out + self._plan_place(now, room)
+
+    def _best_step(self) -> float:
+        seen = self.src_answers > 0
+        if not seen.any():
+            return abs(float(weight(self.pooled)))
+        return float(np.max(np.abs(weight(self.delta[seen]))))
+
+    def _plan_place(self, now_ms: int, room: int) -> list[Question]:
+        """Placement questions for items that were nudged, carried over, or never asked.
+
+        Only those items are looked at (not every item), so a round costs time in
+        proportion to the answers that arrived, not to the size of the deployment.
+        """
+        if room <= 0 or len(self.pool) == 0:
+            return []
+        cfg = self.config
+        parts = [self.carry, *self.nudged]
+        self.nudged = []
+        cand = uniq(np.concatenate(parts)) if parts else np.zeros(0, dtype=np.int64)
+        targets, self.carry = self._serve(cand, room)
+        n = len(self.keys)
+        while len(targets) < room and self.cursor < n:
+            end = min(n, self.cursor + max(4 * (room - len(targets)), 1024))
+            more, rest = self._serve(np.arange(self.cursor, end), room - len(targets))
+            self.cursor = end
+            targets = np.concatenate([targets, more])
+            self.carry = np.concatenate([self.carry, rest])
+        if len(targets) == 0:
+            return []
+        # distinct partners for the slots one item gets in one round
+        order = np.argsort(targets, kind="stable")
+        sorted_t = targets[order]
+        first = np.r_[0, np.nonzero(np.diff(sorted_t))[0] + 1]
+        offset = np.empty(len(targets), dtype=np.int64)
+        offset[order] = np.arange(len(targets)) - np.repeat(first, np.diff(np.r_[first,
+                                                                              len(targets)]))
+        k = self.items["asked"][targets].astype(np.uint64) + offset.astype(np.uint64)
+        partners = self._partners(targets, k)
+        out = self._issue(targets, partners, PLACE, now_ms)
+        checks = planner.check_count(len(out), cfg.check_rate, self.q.n)
+        checks = min(checks, room - len(out))
+        if checks > 0 and len(self.pool) >= 2:
+            salt = np.arange(self.q.n, self.q.n + checks, dtype=np.uint64) ^ planner.mix(
+                self._salt)
+            ia = (planner.mix(salt ^ np.uint64(5)) % np.uint64(len(self.pool))).astype(np.int64)
+            ib = (planner.mix(salt ^ np.uint64(9)) % np.uint64(len(self.pool) - 1)).astype(
+                np.int64)
+            ib = ib + (ib >= ia)
+            out += self._issue(self.pool[ia], self.pool[ib], CHECK, now_ms)
+        return out
+
+    def _serve(self, cand: np.ndarray, room: int) -> tuple[np.ndarray, np.ndarray]:
+        """(one target per question to ask, candidates left with room when ``room`` ran out)."""
+        empty = np.zeros(0, dtype=np.int64)
+        if len(cand) == 0 or room <= 0:
+            return empty, cand.astype(np.int64)
+        cfg = self.config
+        led = self.ledger.items
+        st = self.items["status"][cand]
+        cand = cand[((st == WAITING) | (st == ASKING)) & (led["side"][cand] == UNPLACED)]
+        need = planner.answers_still_needed(led["llr"][cand], self.boundary, self._best_step())
+        each = planner.slots(cand, need, self.items["inflight"][cand], led["count"][cand],
+                             cfg.inflight, cfg.item_ceiling)
+        cand, each = cand[each > 0], each[each > 0]
+        if len(cand) == 0:
+            return empty, empty
+        ends = np.cumsum(each)
+        served = int(np.searchsorted(ends, room, side="right"))
+        targets = np.repeat(cand, each)[:room]
+        return targets.astype(np.int64), cand[served:].astype(np.int64)
+
+    def _nudge(self, idx: np.ndarray) -> None:
+        if len(idx):
+            self.nudged.append(np.asarray(idx, dtype=np.int64))
+
+    def _active_pool(self) -> int:
+        """Pool members in rotation: it grows only by doublings, so that each item's
+        rotation stays stable and rarely meets the same member twice."""
+        base = self.pool_base or len(self.pool)
+        size = base
+        while size * 2 <= len(self.pool):
+            size *= 2
+        return size
+
+    def _partners(self, targets: np.ndarray, k: np.ndarray) -> np.ndarray:
+        """The k-th partner of each target: the reference pool in a per-item rotation, then
+        (once an item has met every member) any placed item, so pairs do not repeat."""
+        h = planner.mix(targets.astype(np.uint64) ^ planner.mix(self._salt))
+        size = np.uint64(self._active_pool())
+        out = self.pool[((h + k) % size).astype(np.int64)]
+        beyond = k >= size
+        if beyond.any():
+            placed = np.nonzero(self.ledger.item("side") != UNPLACED)[0]
+            pick = (planner.mix(h[beyond] ^ k[beyond]) % np.uint64(len(placed))).astype(np.int64)
+            out[beyond] = placed[pick]
+        return out
+
+    def _issue(self, targets: np.ndarray, partners: np.ndarray, why: int,
+               now_ms: int) -> list[Question]:
+        count = len(targets)
+        if count == 0:
+            return []
+        qids = self.q.grow(count)
+        q = self.q
+        q["target"][qids] = targets
+        q["partner"][qids] = partners
+        q["ts"][qids] = now_ms
+        q["state"][qids] = Q_OPEN
+        q["why"][qids] = why
+        self.outstanding += count
+        self.issued[why] += count
+        it = self.items
+        if why == PLACE:
+            np.add.at(it["inflight"], targets, 1)
+            np.add.at(it["asked"], targets, 1)
+        for side in (targets, partners) if why != CHECK else ():
+            fresh = side[it["first_ms"][side] < 0]
+            it["first_ms"][fresh] = now_ms
+        self._touch(np.asarray(targets, dtype=np.int64))
+        swap = planner.uniform(qids.astype(np.uint64), 3 + self._salt) < 0.5
+        first = np.where(swap, partners, targets)
+        second = np.where(swap, targets, partners)
+        name = WHY_NAMES[why]
+        return [
+            Question(str(qid), a, b, name, now_ms)
+            for qid, a, b in zip(qids.tolist(), self.keys.keys_of(first),
+                                 self.keys.keys_of(second), strict=True)
+        ]
+
+    def _expire(self, now_ms: int) -> None:
+        q = self.q
+        lo, n = self.q_low, q.n
+        if lo >= n:
+            return
+        state = q["state"][lo:n]
+        late = np.nonzero((state == Q_OPEN)
+                          & (q["ts"][lo:n] + self.config.question_timeout_ms <= now_ms))[0]
+        self._close_questions(lo + late, Q_EXPIRED)
+        open_ = np.nonzero(q["state"][lo:n] == Q_OPEN)[0]
+        self.q_low = lo + (int(open_[0]) if len(open_) else n - lo)
