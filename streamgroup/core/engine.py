@@ -98,8 +98,8 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
     def __init__(self, config: EngineConfig | None = None) -> None:
         self.config = config or EngineConfig()
         _check_config(self.config)
-        # the least evidence that can end a walk: the randomised boundary's lower edge
         self._salt = int(self.config.seed) * 1_000_003  # every planning coin depends on the seed
+        # the least evidence that can end a walk: the randomised boundary's lower edge
         self.boundary = threshold(min(0.499, self.config.alpha * (1 + self.config.alpha_slack)))
         self.ledger = Ledger()
         self.items = Columns(_ITEM_FIELDS)
@@ -385,8 +385,9 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         return snapshot.load(cls, data)
 
     def nbytes(self) -> int:
-        """Approximate memory held by the numpy state (excludes the key strings)."""
+        """Approximate memory held by the arrays and the key store (not the key cache)."""
         return (self.ledger.nbytes() + self.items.nbytes() + self.q.nbytes()
-                + self.seen.sorted.nbytes + self.pool.nbytes + self.block_state.nbytes)
+                + self.keys.nbytes() + self.seen.sorted.nbytes + self.seen.recent.nbytes
+                + self.pool.nbytes + self.block_state.nbytes)
 
 
