@@ -157,7 +157,9 @@ def bad_input(cases: list[Case] = CASES) -> Result:
             pipe.xadd(K.items, {"key": key, "side": side})
         pipe.execute()
         # a real qid, answered twice: the repeat is a duplicate (counted, not applied)
-        q = wait_for(lambda: r.xrange(K.questions, count=1), 30, "a first question")
+        q = wait_for(lambda: r.xrange(K.questions, count=1) or not w.alive(), 30,
+                     "a first question")
+        assert w.alive(), f"the worker exited {w.proc.returncode}: {w.log()[-2000:]}"
         qf = q[0][1]
         reused = {"a": qf[b"a"], "b": qf[b"b"], "same": "1", "qid": qf[b"qid"],
                   "source": "q-first"}
