@@ -19,6 +19,8 @@ from typing import Any
 
 import pytest
 import redis
+from redis.backoff import NoBackoff
+from redis.retry import Retry
 
 from streamgroup.client import Client
 from streamgroup.settings import Settings
@@ -195,9 +197,10 @@ def _make_certs(d: str) -> dict[str, str]:
     def ssl(*args: str) -> None:
         subprocess.run(["openssl", *args], check=True, capture_output=True, timeout=60)
 
-    ssl("req", "-x509", "-newkey", "rsa:2048", "-nodes", "-keyout", p["ca.key"], "-out",
+    ec = ("-newkey", "ec", "-pkeyopt", "ec_paramgen_curve:prime256v1")  # fast to generate
+    ssl("req", "-x509", *ec, "-nodes", "-keyout", p["ca.key"], "-out",
         p["ca.crt"], "-days", "2", "-subj", "/CN=streamgroup test CA")
-    ssl("req", "-newkey", "rsa:2048", "-nodes", "-keyout", p["srv.key"], "-out", p["srv.csr"],
+    ssl("req", *ec, "-nodes", "-keyout", p["srv.key"], "-out", p["srv.csr"],
         "-subj", "/CN=127.0.0.1")
     ssl("x509", "-req", "-in", p["srv.csr"], "-CA", p["ca.crt"], "-CAkey", p["ca.key"],
         "-CAcreateserial", "-out", p["srv.crt"], "-days", "2", "-extfile", p["ext.cnf"])
@@ -230,7 +233,8 @@ def test_tls_with_a_test_ca(tmpdir_: str) -> None:
         assert "certificate" in bad.stderr.lower() and SECRET not in bad.stderr
         # and plain redis:// to the TLS port gets nowhere
         with pytest.raises(redis.ConnectionError):
-            redis.Redis(port=port, socket_timeout=2, password=SECRET).ping()
+            redis.Redis(port=port, socket_timeout=0.5, password=SECRET,
+                        retry=Retry(NoBackoff(), 0)).ping()
     finally:
         srv.cleanup()
 

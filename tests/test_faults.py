@@ -30,6 +30,7 @@ def test_maxmemory_refuses_whole_batches_and_the_worker_resumes_when_freed() -> 
     assert res.passed, res.as_dict()
 
 
+@pytest.mark.slow
 def test_redis_killed_and_restarted_with_aof_loses_nothing() -> None:
     """Redis -9 and back 3 times (appendfsync always): same end state as no restarts."""
     res = faultkit.redis_restart_aof()
