@@ -336,3 +336,29 @@ def test_changed_engine_settings_warn_and_keep_the_committed_ones(redis_url: str
     warn = [e for e in logs if e["log_level"] == "warning" and "differ" in e["event"]]
     assert warn and warn[0]["differ"] == {"alpha": {"committed": 1e-3, "given": 1e-2}}
     assert w2.state.engine.config.alpha == 1e-3
+
+
+def test_an_answer_refused_only_in_company_cannot_jam_a_batch(monkeypatch) -> None:
+    """If the engine refuses a batch that passed validation, answers go in one by one and
+    the one it refuses alone becomes a dead letter (no Redis needed)."""
+    from streamgroup.core.engine import Engine
+    from streamgroup.errors import EngineInputError
+    from streamgroup.stream.batch import process
+    from streamgroup.stream.state import WorkerState
+
+    real = Engine.add_answers
+
+    def picky(self, answers, now_ms=0):  # stands in for a limit only a whole batch crosses
+        if any(a.source == "poison" for a in answers):
+            raise EngineInputError("answer 0: too many sources")
+        return real(self, answers, now_ms)
+
+    monkeypatch.setattr(Engine, "add_answers", picky)
+    st = WorkerState.fresh(Settings().engine_config(), "e", 100)
+    entries = [(f"{i}-0".encode(), {b"a": f"k{i}".encode(), b"b": f"k{i + 1}".encode(),
+                                    b"same": b"1", b"source": src.encode()})
+               for i, src in enumerate(["s1", "poison", "s2"])]
+    out = process(st, K.items, [], K.answers, entries, 1000)
+    assert out.counts["applied"] == 2 and out.counts["dead:engine"] == 1
+    assert [d.origin for _, d in out.dead] == [f"{K.answers} 1-0"]
+    assert [op for op, _ in out.batch.ops] == ["a", "a"]  # replay repeats the same calls

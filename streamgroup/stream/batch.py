@@ -85,32 +85,58 @@ def _apply_answers(state: WorkerState, answers: list[Answer], aids: list[str | N
         batch.ops.append([OP_ANSWERS, answers_payload(answers)])
         batch.aids.extend(a for a in aids if a is not None)
     except EngineInputError:
-        good: list[Answer] = []
-        good_aids: list[str] = []
+        good: list[tuple[Answer, str | None, Ref]] = []
         for ans, aid, ref in zip(answers, aids, origins, strict=True):
             reason = state.engine.validate_answer(ans)
             if reason is None:
-                good.append(ans)
-                if aid is not None:
-                    good_aids.append(aid)
-                continue
-            kind = _engine_kind(reason)
-            out.dead.append((stream, Dead(_answer_fields(ans, aid), reason, kind,
-                                        origin(stream, ref))))
-            counts["dead:" + kind] += 1
-        results = []
-        if good:
-            # validate_answer looks at each answer alone; answers of one batch do not
-            # depend on one another, so the rest goes in as one call.
-            results = state.apply_answers(good, now_ms)
-            batch.ops.append([OP_ANSWERS, answers_payload(good)])
-            batch.aids.extend(good_aids)
-        answers = good
+                good.append((ans, aid, ref))
+            else:
+                _dead_answer(out, stream, ans, aid, ref, reason)
+        answers, results = _apply_good(state, good, stream, now_ms, out)
     for ans, r in zip(answers, results, strict=True):
         if r == APPLIED:
             counts["applied"] += 1
         else:
             counts["dup:qid" if ans.qid is not None else "dup:pair_source"] += 1
+
+
+def _dead_answer(out: Outcome, stream: str, ans: Answer, aid: str | None, ref: Ref,
+                 reason: str) -> None:
+    kind = _engine_kind(reason)
+    out.dead.append((stream, Dead(_answer_fields(ans, aid), reason, kind, origin(stream, ref))))
+    out.counts["dead:" + kind] += 1
+
+
+def _apply_good(state: WorkerState, good: list[tuple[Answer, str | None, Ref]], stream: str,
+                now_ms: int, out: Outcome) -> tuple[list[Answer], list[str]]:
+    """Apply answers that each passed validation: as one call, or one by one if the engine
+    still refuses the lot (a limit only the whole batch crosses, such as the number of
+    sources); an answer refused alone becomes a dead letter, so no batch can jam the worker.
+    """
+    batch = out.batch
+    answers = [g[0] for g in good]
+    if not answers:
+        return [], []
+    try:
+        results = state.apply_answers(answers, now_ms)
+        batch.ops.append([OP_ANSWERS, answers_payload(answers)])
+        batch.aids.extend(g[1] for g in good if g[1] is not None)
+        return answers, results
+    except EngineInputError:
+        pass
+    applied: list[Answer] = []
+    results = []
+    for ans, aid, ref in good:
+        try:
+            results.extend(state.apply_answers([ans], now_ms))
+        except EngineInputError as exc:
+            _dead_answer(out, stream, ans, aid, ref, str(exc))
+            continue
+        batch.ops.append([OP_ANSWERS, answers_payload([ans])])
+        if aid is not None:
+            batch.aids.append(aid)
+        applied.append(ans)
+    return applied, results
 
 
 def _answer_fields(ans: Answer, aid: str | None) -> dict[str, str]:
