@@ -94,3 +94,29 @@ def test_outage_shows_not_ready_but_alive_and_resumes() -> None:
         w.request_stop()
         t.join(15)
         assert codes == [0]
+
+
+def test_lag_gauge_is_set_even_when_redis_cannot_count_the_lag() -> None:
+    """After an XDEL past the group's position XINFO lag is nil: the gauge still moves."""
+    from streamgroup.keys import GROUP, Keys
+    from streamgroup.serve.metrics import WorkerMetrics
+    from streamgroup.settings import Settings
+    from streamgroup.stream.progress import Progress
+
+    k = Keys("lag")
+    with faultkit.server() as srv:
+        r = faultkit.probe(srv)
+        for i in range(10):
+            r.xadd(k.answers, {"a": "p", "b": f"q{i}", "same": "1"})
+        r.xgroup_create(k.answers, GROUP, id="0")
+        r.xgroup_create(k.items, GROUP, id="0", mkstream=True)
+        got = r.xreadgroup(GROUP, "w1", {k.answers: ">"}, count=4)
+        r.xack(k.answers, GROUP, *[e[0] for e in got[0][1]][:3])  # one stays pending
+        r.xdel(k.answers, r.xrange(k.answers)[-1][0])  # a producer deletes an undelivered one
+        assert [g["lag"] for g in r.xinfo_groups(k.answers)] == [None]
+        prog = Progress(Settings(ns="lag"), k, 100)
+        prog.metrics = WorkerMetrics()
+        prog.metrics.consumer_lag.labels(stream="answers").set(1234)  # a stale earlier value
+        prog._group_info(r)
+        assert prog.metrics.consumer_lag.labels(stream="answers")._value.get() == 10 - 1 - 1
+        assert prog.metrics.pending.labels(stream="answers")._value.get() == 1

@@ -129,7 +129,12 @@ class Progress:
         for stream, label in ((self.keys.items, "items"), (self.keys.answers, "answers")):
             for g in client.xinfo_groups(stream):
                 if g.get("name") in (GROUP.encode(), GROUP):
-                    lag = g.get("lag")
-                    if lag is not None:
-                        self.metrics.consumer_lag.labels(stream=label).set(int(lag))
-                    self.metrics.pending.labels(stream=label).set(int(g.get("pending", 0)))
+                    lag, pending = g.get("lag"), int(g.get("pending", 0))
+                    if lag is None:
+                        # Redis cannot count it after entries were deleted (XDEL) past the
+                        # group's position; the input is trimmed below the oldest pending
+                        # entry, so XLEN - pending bounds it from above (a stale gauge
+                        # would keep a lag alert firing, or silent, for good).
+                        lag = max(0, int(client.xlen(stream)) - pending)
+                    self.metrics.consumer_lag.labels(stream=label).set(int(lag))
+                    self.metrics.pending.labels(stream=label).set(pending)
