@@ -145,9 +145,10 @@ def test_batch_fast_path_equals_entry_by_entry_path(monkeypatch: pytest.MonkeyPa
     assert fast.origins == slow.origins and not fast.dead
     # one bad byte anywhere sends the batch down the per-entry path, which rejects it alone
     monkeypatch.undo()
-    bad = [*entries[:5], _e(900, a=b"shard-\x7f", b="x", same="1"), *entries[5:]]
-    d = decode_answers(S, bad)
-    assert len(d.answers) == 200 and [x.origin for x in d.dead] == [f"{S} 900-0"]
+    for poison in (b"shard-\x7f", b"shard-\x00x", b"shard-\xc2\x85", b"\xe9t\xe9"):
+        bad = [*entries[:5], _e(900, a=poison, b="x", same="1"), *entries[5:]]
+        d = decode_answers(S, bad)
+        assert len(d.answers) == 200 and [x.origin for x in d.dead] == [f"{S} 900-0"]
 
 
 def test_pack_fast_path_equals_element_by_element_path(monkeypatch: pytest.MonkeyPatch) -> None:

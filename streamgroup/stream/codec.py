@@ -54,6 +54,7 @@ ENGINE = "engine"
 # C0 controls and DEL in bytes, plus the C1 controls U+0080..U+009F as UTF-8 (0xC2 0x80-9F).
 _CTRL_B = re.compile(rb"[\x00-\x1f\x7f]|\xc2[\x80-\x9f]")
 _CTRL_S = re.compile("[\x00-\x1f\x7f-\x9f]")
+_CTRL_NO_NUL = re.compile("[\x01-\x1f\x7f-\x9f]")  # NUL is the fast path's separator
 
 Entry = tuple[bytes, dict[bytes, bytes]]
 Ref = bytes | tuple[bytes, int]
@@ -171,12 +172,14 @@ def decode_items(stream: str, entries: Sequence[Entry]) -> Decoded:
 def _fast_answers(entries: Sequence[Entry], out: Decoded) -> bool:
     """The common case, checked for the whole batch at once: every entry a good plain answer.
 
-    Control characters and UTF-8 validity are checked by one regex search and one decode
-    over all text fields joined by spaces (an ASCII separator cannot hide or create either
-    problem). Returns False, having added nothing, if anything needs the entry-by-entry path.
+    All text fields (five per entry; an absent optional one as an empty string) are joined
+    by NUL and decoded once; one regex search then finds any control character, and the
+    split must give back exactly the fields joined (a NUL inside a value would add one).
+    Returns False, having added nothing, if anything needs the entry-by-entry path.
     """
     texts: list[bytes] = []
     rows = []
+    empty = b""
     for eid, f in entries:
         ra, rb, rs = f.get(b"a"), f.get(b"b"), f.get(b"same")
         if ra is None or rb is None or ra == rb or (rs != b"1" and rs != b"0"):
@@ -184,35 +187,33 @@ def _fast_answers(entries: Sequence[Entry], out: Decoded) -> bool:
         src, qid, aid = f.get(b"source"), f.get(b"qid"), f.get(b"aid")
         if not (0 < len(ra) <= MAX_KEY_BYTES and 0 < len(rb) <= MAX_KEY_BYTES):
             return False
-        texts.append(ra)
-        texts.append(rb)
-        if src is not None:
-            if not 0 < len(src) <= MAX_SOURCE_BYTES:
-                return False
-            texts.append(src)
-        if qid is not None:
-            if not 0 < len(qid) <= MAX_ID_BYTES:
-                return False
-            texts.append(qid)
-        if aid is not None:
-            if not 0 < len(aid) <= MAX_ID_BYTES:
-                return False
-            texts.append(aid)
-        rows.append((eid, ra, rb, rs == b"1", src, qid, aid))
-    joined = b" ".join(texts)
-    if _CTRL_B.search(joined) is not None:
-        return False
+        if src is None:
+            src = empty
+        elif not 0 < len(src) <= MAX_SOURCE_BYTES:
+            return False
+        if qid is not None and not 0 < len(qid) <= MAX_ID_BYTES:
+            return False
+        if aid is not None and not 0 < len(aid) <= MAX_ID_BYTES:
+            return False
+        texts += (ra, rb, src, qid or empty, aid or empty)
+        rows.append((eid, rs == b"1", qid is not None, aid is not None))
     try:
-        joined.decode()
+        text = b"\0".join(texts).decode()
     except UnicodeDecodeError:
         return False
+    if _CTRL_NO_NUL.search(text) is not None:
+        return False
+    parts = text.split("\0")
+    if len(parts) != len(texts):
+        return False
     answers, aids, origins = out.answers, out.aids, out.origins
-    for eid, ra, rb, same, src, qid, aid in rows:
-        answers.append(Answer(ra.decode(), rb.decode(), same,
-                              "" if src is None else src.decode(),
-                              None if qid is None else qid.decode()))
-        aids.append(None if aid is None else aid.decode())
+    i = 0
+    for eid, same, has_qid, has_aid in rows:
+        answers.append(Answer(parts[i], parts[i + 1], same, parts[i + 2],
+                              parts[i + 3] if has_qid else None))
+        aids.append(parts[i + 4] if has_aid else None)
         origins.append(eid)
+        i += 5
     return True
 
 

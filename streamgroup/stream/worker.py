@@ -44,7 +44,7 @@ EXIT_OK, EXIT_ERROR, EXIT_STATE = 0, 1, 3
 BACKOFF_BASE = 0.1  # seconds; doubled per failed attempt, jittered, capped
 BACKOFF_CAP = 5.0
 IDLE_PLAN_EVERY = 1.0  # seconds between plan() calls while no entries arrive
-JOURNAL_FLOOR = 4 << 20  # bytes of journal always allowed before an early snapshot
+JOURNAL_FLOOR = 32 << 20  # bytes of journal always allowed before an early snapshot
 BATCH_ANSWERS = 20_000  # answers in one batch at most (unless `batch` is larger); packed
 # entries beyond it wait, already read, for the next batches
 
