@@ -70,8 +70,8 @@ def flood(n_answers: int = 1_000_000, n_items: int = 5_000, max_outstanding: int
           inflight: int = 2, budget: int = 100, per_entry: int = MAX_PACK_ANSWERS,
           batch: int = 500, timeout: float = 180.0) -> Result:
     """Burst ``n_answers`` answers at a running worker; check memory, caps and lag."""
-    how = "packed" if per_entry > 1 else "one-answer entries of"
-    res = Result(f"flood: {n_answers:,} {how} answers in one burst, producer far ahead")
+    how = "packed answers" if per_entry > 1 else "answers, one per entry,"
+    res = Result(f"flood: {n_answers:,} {how} in one burst, producer far ahead")
     payloads = packs(n_answers, n_items, per_entry=per_entry)
     with server() as srv, tempfile.TemporaryDirectory() as tmp:
         r = probe(srv)
