@@ -167,6 +167,8 @@ def simulate(args: argparse.Namespace) -> dict[str, Any]:
         t = time.perf_counter()
         engine.add_answers(answers, now)
         engine.take_changes()  # keep the change log from growing, as the worker does
+        if hasattr(engine, "take_latencies"):
+            engine.take_latencies()
         t_engine += time.perf_counter() - t
         rounds += 1
         now += args.round_ms
