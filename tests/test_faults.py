@@ -32,7 +32,11 @@ def test_maxmemory_refuses_whole_batches_and_the_worker_resumes_when_freed() -> 
 
 @pytest.mark.slow
 def test_power_cut_that_rolls_back_commits_still_ends_equal() -> None:
-    """AOF everysec losing its tail: the rolled-back batches are read and applied again."""
+    """AOF everysec losing its tail: rolled-back batches are applied again, state equal.
+
+    The output streams may repeat the rolled-back batch's entries (an open finding, see
+    tests/faultkit.py); the records, counters and engine state must be equal.
+    """
     res = faultkit.redis_power_cut_aof()
     assert res.passed, res.as_dict()
     assert sum(res.details["batches_lost_by_kill"]) >= 1  # the cut really took commits back
