@@ -36,6 +36,7 @@ SCENARIOS: dict[str, Callable[[], faultkit.Result]] = {
     "sigkill_startup": faultkit.sigkill_startup,
     "redis_restart_aof": faultkit.redis_restart_aof,
     "redis_power_cut_aof": faultkit.redis_power_cut_aof,
+    "redis_power_cut_aof_checked": faultkit.redis_power_cut_aof_checked,
     "redis_data_lost": faultkit.redis_data_lost,
     "namespace_flushed": faultkit.namespace_flushed,
     "client_kill": faultkit.client_kill,

@@ -43,6 +43,14 @@ def test_power_cut_that_rolls_back_commits_still_ends_equal() -> None:
 
 
 @pytest.mark.slow
+def test_power_cut_with_the_aof_repaired_ends_fully_equal() -> None:
+    """aof-load-truncated no + redis-check-aof --fix: no half transaction, streams equal too."""
+    res = faultkit.redis_power_cut_aof_checked()
+    assert res.passed, res.as_dict()
+    assert res.details["redis_replayed_half_transactions"] == 0
+
+
+@pytest.mark.slow
 def test_redis_killed_and_restarted_with_aof_loses_nothing() -> None:
     """Redis -9 and back 3 times (appendfsync always): same end state as no restarts."""
     res = faultkit.redis_restart_aof()
