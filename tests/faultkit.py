@@ -285,7 +285,9 @@ def redis_restart_aof(restarts: int = 3, seed: int = 1, fsync: str = "always",
                        + " an uninterrupted run"
                        + (f" (but {' and '.join(res.details['output_streams_differ'])} "
                           "streams hold repeated entries)"
-                          if power_cut and res.details["output_streams_differ"] else ""))
+                          if power_cut and res.details["output_streams_differ"] else "")
+                       + (f"; Redis ran {nested} half transaction(s) on loading"
+                          if power_cut else ""))
     return res
 
 
