@@ -92,6 +92,11 @@ class BlockMixin:
         self._refit(cold=True)
         strong = self._admit(members, pinned)
         can_grow = len(members) < min(len(self.keys), BLOCK_MAX)
+        if strong.sum() < MIN_ANCHORS and not can_grow:
+            # every item is in the block already: settle for members that meet alpha
+            self.ledger.redirect_all()
+            self.ledger.recompute(self.delta, self.se, settle=True)
+            strong = self._admit(members, pinned, factor=1.0)
         if strong.sum() < MIN_ANCHORS and can_grow:
             led["side"][free] = UNPLACED
             self.ledger.redirect_all()
@@ -119,22 +124,25 @@ class BlockMixin:
             return
         self._decide(np.arange(len(self.keys)))
 
-    def _admit(self, members: np.ndarray, pinned: np.ndarray) -> np.ndarray:
+    def _admit(self, members: np.ndarray, pinned: np.ndarray, factor: float = ANCHOR_FACTOR
+               ) -> np.ndarray:
         """Members whose evidence from the other admitted members alone is strong.
 
         Dropping a weak member removes its answers from the others' evidence, so the
         check repeats until the admitted set is stable: every reference member then
-        stands on answers among reference members only.
+        stands on answers among reference members only. Each round drops only the weaker
+        half of the failing members, so that a small block does not collapse at once.
         """
         led = self.ledger.items
         keep = np.ones(len(members), dtype=bool)
         sides = led["side"][members].copy()
         for _ in range(len(members)):
             err = decision_error(led["llr"][members], self.ledger.spread(members, self.shared))
-            ok = pinned | (keep & (err <= self.config.alpha * ANCHOR_FACTOR))
-            if (ok == keep).all():
+            failing = keep & ~pinned & (err > self.config.alpha * factor)
+            if not failing.any():
                 break
-            keep = ok
+            cut = np.median(err[failing])
+            keep = keep & ~(failing & (err >= cut))
             led["side"][members] = np.where(keep, sides, UNPLACED)
             self.ledger.redirect_all()
             self.ledger.recompute(self.delta, self.se)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from . import planner
-from .codes import ASKING, CHECK, PLACE, Q_EXPIRED, Q_OPEN, WAITING, WHY_NAMES
+from .codes import ASKING, CHECK, PLACE, Q_EXPIRED, Q_OPEN, UNRESOLVED, WAITING, WHY_NAMES
 from .columns import uniq
 from .ledger import UNPLACED
 from .sprt import weight
@@ -94,6 +94,15 @@ class QuestionsMixin:
         led = self.ledger.items
         st = self.items["status"][cand]
         cand = cand[((st == WAITING) | (st == ASKING)) & (led["side"][cand] == UNPLACED)]
+        # Questions whose answers never count (every partner already asked of the only
+        # source, say) must not go on for ever: twice the ceiling in questions also ends
+        # an item's walk.
+        worn = self.items["asked"][cand] >= 2 * cfg.item_ceiling
+        if worn.any():
+            out = cand[worn & (self.items["inflight"][cand] == 0)]
+            self.items["status"][out] = UNRESOLVED
+            self.items["dirty"][out] = True
+            cand = cand[~worn]
         need = planner.answers_still_needed(led["llr"][cand], self.boundary, self._best_step())
         each = planner.slots(cand, need, self.items["inflight"][cand], led["count"][cand],
                              cfg.inflight, cfg.item_ceiling)
