@@ -239,6 +239,36 @@ def test_tls_with_a_test_ca(tmpdir_: str) -> None:
         srv.cleanup()
 
 
+@pytest.mark.skipif(shutil.which("openssl") is None, reason="openssl CLI not installed")
+def test_mutual_tls_with_a_client_certificate(tmpdir_: str) -> None:
+    """tls-auth-clients yes: the worker's certificate in the URL works; without it, exit 2."""
+    certs = _make_certs(tmpdir_)
+    key, csr, crt = (os.path.join(tmpdir_, n) for n in ("cl.key", "cl.csr", "cl.crt"))
+    ec = ("-newkey", "ec", "-pkeyopt", "ec_paramgen_curve:prime256v1")
+    for args in (("req", *ec, "-nodes", "-keyout", key, "-out", csr, "-subj", "/CN=worker"),
+                 ("x509", "-req", "-in", csr, "-CA", certs["ca.crt"], "-CAkey", certs["ca.key"],
+                  "-CAcreateserial", "-out", crt, "-days", "2")):
+        subprocess.run(["openssl", *args], check=True, capture_output=True, timeout=60)
+    port = free_port()
+    extra = ["--tls-port", str(port), "--tls-cert-file", certs["srv.crt"],
+             "--tls-key-file", certs["srv.key"], "--tls-ca-cert-file", certs["ca.crt"],
+             "--tls-auth-clients", "yes"]
+    srv = SecureRedis(extra, ssl=True, ssl_ca_certs=certs["ca.crt"], ssl_certfile=crt,
+                      ssl_keyfile=key)
+    srv.port = port
+    srv.start()
+    try:
+        base = f"rediss://127.0.0.1:{port}/0?ssl_ca_certs={certs['ca.crt']}"
+        w, _ = _work(f"{base}&ssl_certfile={crt}&ssl_keyfile={key}", tmpdir_)
+        assert w.stop() == 0
+        bad = subprocess.run(["streamgroup", "run", "--redis", base, "--ns", NS,
+                              "--metrics-addr", ""], capture_output=True, text=True,
+                             timeout=60)
+        assert bad.returncode == 2 and len(bad.stderr.splitlines()) == 1, bad.stderr
+    finally:
+        srv.cleanup()
+
+
 def _outside_address() -> str | None:
     """An address of this machine that is not loopback, if it has one."""
     with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as s:
