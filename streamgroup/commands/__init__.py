@@ -29,8 +29,8 @@ SETTING_HELP: dict[str, str] = {
     "redis": "Redis URL (redis://, rediss:// for TLS, unix://); a password in it is never logged",
     "ns": "namespace: every key is {NS}:name",
     "alpha": "per-item error target of the sequential test, in (0, 0.5)",
-    "alpha_slack": "one commit may reach alpha*(1+slack) while the mean error of all "
-                   "commits stays <= alpha, in [0, 0.25]",
+    "alpha_slack": "randomised boundary: an item within alpha*(1+slack) commits with the "
+                   "chance that makes its expected error alpha; 0 = strict; in [0, 0.25]",
     "inflight": "W: questions in flight per item (capped by the fewest answers that could "
                 "still end its test)",
     "max_outstanding": "cap on questions in flight across all items",
