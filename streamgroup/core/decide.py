@@ -15,7 +15,9 @@ class DecideMixin:
     """Commit, revise or give up (part of :class:`~streamgroup.core.engine.Engine`)."""
 
     def _refit(self, cold: bool = False) -> None:
-        fit = noise.fit(self.ledger, self.delta, self.se, cold=cold)
+        # warm refits move little: one EM round each (the estimate converges across them)
+        fit = noise.fit(self.ledger, self.delta, self.se, iterations=3 if cold else 1,
+                        cold=cold)
         self.delta, self.se, self.src_answers = fit.delta, fit.se, fit.answers
         self.pooled, self.pooled_se = fit.pooled, fit.pooled_se
         self.counted_at_fit = self._counted()
