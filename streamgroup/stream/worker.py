@@ -212,7 +212,8 @@ class Worker:
                     self.health.set_ready(False)
                 delay = min(BACKOFF_CAP, BACKOFF_BASE * 2 ** min(attempt, 16))
                 delay *= random.uniform(0.5, 1.0)
-                self._log.warning("redis unreachable; retrying", error=str(exc),
+                self._log.warning("redis unreachable; retrying" if isinstance(
+                    exc, _CONN_ERRORS) else "redis refused a write; retrying", error=str(exc),
                                   attempt=attempt, delay=round(delay, 3))
                 self._sleep(delay)
 
