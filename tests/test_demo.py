@@ -21,11 +21,12 @@ def _script() -> list[str]:
 
 
 @pytest.mark.slow
-def test_readme_demo_command_completes_with_a_summary() -> None:
-    """`streamgroup demo` (small) exits 0 and its summary shows accuracy, spend and sources."""
+def test_readme_demo_command_completes_with_a_summary(tmp_path: Path) -> None:
+    """`streamgroup demo` (small) exits 0, its summary shows accuracy, spend and sources,
+    and it leaves the HTML report behind."""
     env = {k: v for k, v in os.environ.items() if not k.startswith("STREAMGROUP_")}
     proc = subprocess.run([*_script(), "demo", "--items", "150"], capture_output=True,
-                          text=True, env=env, timeout=150)
+                          text=True, env=env, timeout=150, cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr[-2000:]
     out = proc.stdout
     assert "accuracy against the hidden kilns:" in out
@@ -33,6 +34,8 @@ def test_readme_demo_command_completes_with_a_summary() -> None:
     assert "most reliable:" in out and "least reliable:" in out
     assert "s] placed " in proc.stderr and "/150, asking" in proc.stderr  # progress lines
     assert "Traceback" not in proc.stderr
+    assert (tmp_path / "demo-report" / "report.html").exists()
+    assert "report: demo-report" in out
 
 
 @pytest.mark.slow
@@ -82,8 +85,9 @@ def test_interrupted_demo_cleans_up_its_private_redis() -> None:
     import signal
 
     env = {k: v for k, v in os.environ.items() if not k.startswith("STREAMGROUP_")}
-    proc = subprocess.Popen([*_script(), "demo", "--items", "400"], stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True, env=env)
+    proc = subprocess.Popen([*_script(), "demo", "--items", "400", "--no-report"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            env=env)
     try:
         header = proc.stderr.readline()  # the first line names the server, then progress
         url = re.search(r"redis://127\.0\.0\.1:\d+/0", header)

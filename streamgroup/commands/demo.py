@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import importlib.util
 import signal
 import threading
 
@@ -25,7 +26,9 @@ streamgroup demo --items 3000 --alpha 0.0001 --seed 7 --report demo-report""")
     p.add_argument("--inflight", type=int, default=4, metavar="W",
                    help="questions in flight per shard (default 4)")
     p.add_argument("--report", metavar="DIR", default=None,
-                   help="also write the HTML run report into DIR")
+                   help="write the HTML run report into DIR (default: demo-report, when "
+                        "matplotlib is installed: pip install -e '.[report]')")
+    p.add_argument("--no-report", action="store_true", help="do not write the HTML report")
     p.add_argument("--redis", metavar="URL", default=None,
                    help="use this Redis instead of a private one (in a fresh demo-* namespace, "
                         "deleted at the end)")
@@ -41,18 +44,17 @@ def run(args: argparse.Namespace) -> int:
         raise UserError(f"--alpha must be in (0, 0.5) (got {args.alpha})")
     if not 1 <= args.inflight <= 64:
         raise UserError(f"--inflight must be between 1 and 64 (got {args.inflight})")
-    if args.report:
-        try:
-            import matplotlib  # noqa: F401 - only checking that the report can be drawn
-        except ImportError:
-            raise UserError("--report needs matplotlib: pip install -e '.[report]'") from None
+    can_draw = importlib.util.find_spec("matplotlib") is not None
+    if args.report and not args.no_report and not can_draw:
+        raise UserError("--report needs matplotlib: pip install -e '.[report]'")
+    report = None if args.no_report else (args.report or ("demo-report" if can_draw else None))
     from ..demo import DemoOptions, run_demo
     from ..logs import configure_logging
 
     # The worker runs in this process: keep its log to warnings so progress stays readable.
     configure_logging("warning", "console")
     opts = DemoOptions(items=args.items, inflight=args.inflight, alpha=args.alpha,
-                       seed=args.seed, report=args.report, redis_url=args.redis,
+                       seed=args.seed, report=report, redis_url=args.redis,
                        embedded=args.embedded, quiet=args.quiet)
     stop = threading.Event()
 
