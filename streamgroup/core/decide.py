@@ -34,6 +34,10 @@ class DecideMixin:
             if len(todo) == 0:
                 return
             todo = todo[~led["pinned"][todo]]
+            # A placed item can only change by flipping: look at it only if its evidence
+            # now leans the other way (after a refit this skips nearly every item).
+            side, llr = led["side"][todo], led["llr"][todo]
+            todo = todo[(side == UNPLACED) | ((llr > 0) != (side == 1))]
             llr = led["llr"][todo]
             spread = self.ledger.spread(todo, self.shared)
             err = decision_error(llr, spread)
