@@ -295,20 +295,14 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
 
     def _source_ids(self, names: Sequence[str]) -> np.ndarray:
         index = self.source_index
-        if len(set(names)) == 1 and names[0] in index:
-            return np.full(len(names), index[names[0]], dtype=np.int64)
-        out = np.empty(len(names), dtype=np.int64)
-        for k, name in enumerate(names):
-            j = index.get(name)
-            if j is None:
-                j = len(self.source_names)
+        for name in dict.fromkeys(names):  # new sources, in order of first appearance
+            if name not in index:
+                index[name] = len(self.source_names)
                 self.source_names.append(name)
-                self.source_index[name] = j
                 self.delta = np.append(self.delta, 0.0)
                 self.se = np.append(self.se, noise.SE_NEW)
                 self.src_answers = np.append(self.src_answers, 0.0)
-            out[k] = j
-        return out
+        return np.fromiter(map(index.__getitem__, names), dtype=np.int64, count=len(names))
 
     def add_answers(self, answers: Sequence[Answer], now_ms: int = 0) -> list[str]:
         """Count new answers; return "applied" or "duplicate" for each, in order."""

@@ -140,7 +140,7 @@ class IntakeMixin:
         if bad:
             pos = min(bad)
             raise EngineInputError(f"answer {pos}: {bad[pos]}")
-        same = np.fromiter((bool(f) for f in flags), dtype=bool, count=count)
+        same = np.array(flags, dtype=bool) if count else np.zeros(0, dtype=bool)
         return Intake(a_keys, b_keys, ia, ib, names, same, np.asarray(with_q, dtype=np.int64),
                        qn)
 

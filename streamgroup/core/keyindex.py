@@ -9,6 +9,7 @@ table of 64-bit hashes (numpy), about 45 bytes per key in all. Hashes are Python
 from __future__ import annotations
 
 from collections.abc import Iterator, Sequence
+from itertools import repeat
 from typing import Any
 
 import numpy as np
@@ -57,8 +58,8 @@ class KeyIndex:
 
     def lookup(self, keys: Sequence[str]) -> np.ndarray:
         """Index of each key, or -1."""
-        cache = self.cache
-        out = np.fromiter((cache.get(k, -1) for k in keys), dtype=np.int64, count=len(keys))
+        out = np.fromiter(map(self.cache.get, keys, repeat(-1)), dtype=np.int64,
+                          count=len(keys))
         miss = np.nonzero(out < 0)[0]
         if len(miss):
             rest = [keys[q] for q in miss.tolist()]
