@@ -10,7 +10,6 @@ element means nothing of that batch is pushed.
 from __future__ import annotations
 
 import math
-import re
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from typing import Any
 
@@ -19,6 +18,7 @@ import redis
 
 from .errors import StreamgroupError
 from .keys import (
+    CONTROL_CHARS,
     DEFAULT_NS,
     MAX_ID_BYTES,
     MAX_KEY_BYTES,
@@ -31,7 +31,6 @@ from .keys import (
     valid_namespace,
 )
 
-_CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
 _PIPELINE_CHUNK = 1000  # entries per round trip when pushing many
 _TRUE = ("1", "true", "yes", "same")
 _FALSE = ("0", "false", "no", "different")
@@ -53,7 +52,7 @@ def check_text(value: object, what: str, max_bytes: int) -> str:
         raise ClientInputError(f"{what} is empty")
     if size > max_bytes:
         raise ClientInputError(f"{what} {value[:40]!r}... is {size} bytes (limit {max_bytes})")
-    if _CONTROL.search(value):
+    if CONTROL_CHARS.search(value):
         raise ClientInputError(f"{what} {value[:40]!r} contains a control character")
     return value
 

@@ -32,6 +32,9 @@ WHY_PLACE = "place"
 WHY_CHECK = "check"
 WHYS = (WHY_SEED, WHY_PLACE, WHY_CHECK)
 
+# Control characters (Unicode category Cc: C0, DEL, C1), which no key, id or label may hold.
+CONTROL_CHARS = re.compile("[\x00-\x1f\x7f-\x9f]")
+
 _NS_RE = re.compile(r"^[A-Za-z0-9_.\-]{1,64}$")
 
 

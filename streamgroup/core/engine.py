@@ -331,8 +331,9 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
             return out
         a, b, src, same = a[fresh], b[fresh], src[fresh], same[fresh]
         self.spend += len(a)
-        self._touch(np.concatenate([a, b]))
-        self._nudge(np.concatenate([a, b]))
+        both = np.concatenate([a, b])
+        self._touch(both)
+        self._nudge(both)
         if self.phase == "boot":
             self._mark_block_answers(a, b)
         idx = self.ledger.append_answers(a, b, src, same)

@@ -3,10 +3,9 @@
 from __future__ import annotations
 
 import math
-import unicodedata
 from typing import Any
 
-from ..keys import MAX_ID_BYTES, MAX_KEY_BYTES, MAX_LABEL_BYTES, MAX_SOURCE_BYTES
+from ..keys import CONTROL_CHARS, MAX_ID_BYTES, MAX_KEY_BYTES, MAX_LABEL_BYTES, MAX_SOURCE_BYTES
 
 
 def _text(value: Any, what: str, limit: int, allow_empty: bool = False) -> str | None:
@@ -27,7 +26,7 @@ def _text(value: Any, what: str, limit: int, allow_empty: bool = False) -> str |
         value.encode("utf-8")
     except UnicodeEncodeError:
         return f"{what} is not valid UTF-8"
-    if any(unicodedata.category(ch) == "Cc" for ch in value):
+    if CONTROL_CHARS.search(value):
         return f"{what} contains control characters"
     return None
 

@@ -14,18 +14,8 @@ from collections.abc import Sequence
 
 import numpy as np
 
+from ..core.planner import mix as _mix
 from ..core.types import Answer, Question
-
-_M64 = np.uint64(0xFFFFFFFFFFFFFFFF)
-
-
-def _mix(x: np.ndarray) -> np.ndarray:
-    """splitmix64 finaliser, vectorised: a well-spread hash of uint64 values."""
-    with np.errstate(over="ignore"):
-        z = x + np.uint64(0x9E3779B97F4A7C15)
-        z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
-        z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
-        return z ^ (z >> np.uint64(31))
 
 
 def mixed_sources(count: int = 200) -> list[float]:

@@ -12,7 +12,18 @@ from dataclasses import dataclass, field
 
 from ..core.types import APPLIED, Answer, Question, Record
 from ..errors import EngineInputError
-from .codec import ENGINE, UNKNOWN_QID, Dead, Entry, Ref, decode_answers, decode_items, origin
+from .codec import (
+    ENGINE,
+    UNKNOWN_QID,
+    Dead,
+    Decoded,
+    Entry,
+    Ref,
+    answer_fields,
+    decode_answers,
+    decode_items,
+    origin,
+)
 from .state import OP_ANSWERS, OP_ITEMS, Batch, WorkerState, answers_payload
 
 
@@ -103,7 +114,7 @@ def _apply_answers(state: WorkerState, answers: list[Answer], aids: list[str | N
 def _dead_answer(out: Outcome, stream: str, ans: Answer, aid: str | None, ref: Ref,
                  reason: str) -> None:
     kind = _engine_kind(reason)
-    out.dead.append((stream, Dead(_answer_fields(ans, aid), reason, kind, origin(stream, ref))))
+    out.dead.append((stream, Dead(answer_fields(ans, aid), reason, kind, origin(stream, ref))))
     out.counts["dead:" + kind] += 1
 
 
@@ -139,15 +150,16 @@ def _apply_good(state: WorkerState, good: list[tuple[Answer, str | None, Ref]], 
     return applied, results
 
 
-def _answer_fields(ans: Answer, aid: str | None) -> dict[str, str]:
-    f = {"a": ans.a, "b": ans.b, "same": "1" if ans.same else "0"}
-    if ans.source:
-        f["source"] = ans.source
-    if ans.qid is not None:
-        f["qid"] = ans.qid
-    if aid is not None:
-        f["aid"] = aid
-    return f
+def _decoded(out: Outcome, kind: str, stream: str, entries: list[Entry], dec: Decoded
+             ) -> Decoded:
+    """Count a decoded part of the batch and collect its dead letters."""
+    counts = out.counts
+    counts["entries:" + kind] += len(entries)
+    counts["missing"] += dec.missing
+    for d in dec.dead:
+        out.dead.append((stream, d))
+        counts["dead:" + d.kind] += 1
+    return dec
 
 
 def process(state: WorkerState, items_stream: str, items: list[Entry],
@@ -156,21 +168,12 @@ def process(state: WorkerState, items_stream: str, items: list[Entry],
     out = Outcome(Batch(state.seq + 1, now_ms))
     counts = out.counts
     if items:
-        di = decode_items(items_stream, items)
-        counts["entries:items"] += len(items)
-        counts["missing"] += di.missing
-        for d in di.dead:
-            out.dead.append((items_stream, d))
-            counts["dead:" + d.kind] += 1
+        di = _decoded(out, "items", items_stream, items, decode_items(items_stream, items))
         if di.items:
             _apply_items(state, di.items, di.origins, items_stream, out)
     if answers:
-        da = decode_answers(answers_stream, answers)
-        counts["entries:answers"] += len(answers)
-        counts["missing"] += da.missing
-        for d in da.dead:
-            out.dead.append((answers_stream, d))
-            counts["dead:" + d.kind] += 1
+        da = _decoded(out, "answers", answers_stream, answers,
+                      decode_answers(answers_stream, answers))
         if da.answers:
             _apply_answers(state, da.answers, da.aids, da.origins, answers_stream, now_ms, out)
     out.questions = state.engine.plan(now_ms)

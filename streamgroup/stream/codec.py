@@ -31,6 +31,7 @@ import msgpack
 
 from ..core.types import Answer
 from ..keys import (
+    CONTROL_CHARS,
     MAX_ID_BYTES,
     MAX_KEY_BYTES,
     MAX_LABEL_BYTES,
@@ -53,7 +54,7 @@ ENGINE = "engine"
 
 # C0 controls and DEL in bytes, plus the C1 controls U+0080..U+009F as UTF-8 (0xC2 0x80-9F).
 _CTRL_B = re.compile(rb"[\x00-\x1f\x7f]|\xc2[\x80-\x9f]")
-_CTRL_S = re.compile("[\x00-\x1f\x7f-\x9f]")
+_CTRL_S = CONTROL_CHARS
 _CTRL_NO_NUL = re.compile("[\x01-\x1f\x7f-\x9f]")  # NUL is the fast path's separator
 
 Entry = tuple[bytes, dict[bytes, bytes]]
