@@ -116,6 +116,9 @@ def test_answer_counted_once_however_often_delivered() -> None:
     spend = eng.stats()["spend"]
     again = eng.add_answers(answers + [Answer(x.a, x.b, x.same, x.source) for x in answers], 1)
     assert set(again) == {"duplicate"}
+    # the same (pair, source) without a qid, in a later batch of its own
+    later = eng.add_answers([Answer(x.b, x.a, x.same, x.source) for x in answers], 2)
+    assert set(later) == {"duplicate"}
     assert eng.stats()["spend"] == spend
 
 
@@ -277,3 +280,26 @@ def test_outstanding_cap_is_respected() -> None:
         eng.add_answers(crowd.due(now), now)
         now += 500
     assert eng.done()
+
+
+def test_randomised_boundary_commits_with_the_chance_that_makes_the_error_alpha() -> None:
+    """Just above alpha, an item commits with pi = (alpha - e_next) / (e - e_next)."""
+    alpha = 1e-3
+    eng = Engine(EngineConfig(alpha=alpha))
+    n = 20_000
+    eng.ledger.add_items(n)
+    eng.delta, eng.se, eng.src_answers = np.array([0.6]), np.array([0.0]), np.array([1.0])
+    step = float(np.log(4.0))  # weight of one answer at delta = 0.6
+    e = 1.01 * alpha  # error of each item now: 1 / (1 + e^L)
+    llr = np.log((1 - e) / e)
+    eng.ledger.items["llr"][:n] = llr
+    idx = np.arange(n)
+    err = np.full(n, e)
+    commit = eng._may_commit(idx, err, np.zeros(n), np.ones(n, dtype=bool))
+    e_next = 1 / (1 + np.exp(llr + step))
+    pi = (alpha - e_next) / (e - e_next)
+    assert abs(commit.mean() - pi) < 4 * np.sqrt(pi * (1 - pi) / n)
+    # beyond the slack nothing commits; at or below alpha everything does
+    assert not eng._may_commit(idx, np.full(n, 1.04 * alpha), np.zeros(n),
+                               np.ones(n, dtype=bool)).any()
+    assert eng._may_commit(idx, np.full(n, alpha), np.zeros(n), np.ones(n, dtype=bool)).all()
