@@ -346,14 +346,14 @@ def test_an_answer_refused_only_in_company_cannot_jam_a_batch(monkeypatch) -> No
     from streamgroup.stream.batch import process
     from streamgroup.stream.state import WorkerState
 
-    real = Engine.add_answers
+    real = Engine.add_answer_columns
 
-    def picky(self, answers, now_ms=0):  # stands in for a limit only a whole batch crosses
-        if any(a.source == "poison" for a in answers):
+    def picky(self, cols, now_ms=0):  # stands in for a limit only a whole batch crosses
+        if "poison" in cols.source:
             raise EngineInputError("answer 0: too many sources")
-        return real(self, answers, now_ms)
+        return real(self, cols, now_ms)
 
-    monkeypatch.setattr(Engine, "add_answers", picky)
+    monkeypatch.setattr(Engine, "add_answer_columns", picky)
     st = WorkerState.fresh(Settings().engine_config(), "e", 100)
     entries = [(f"{i}-0".encode(), {b"a": f"k{i}".encode(), b"b": f"k{i + 1}".encode(),
                                     b"same": b"1", b"source": src.encode()})

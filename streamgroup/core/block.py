@@ -10,7 +10,7 @@ from . import bootstrap
 from .codes import ANCHOR_FACTOR, BLOCK_MAX, BLOCK_START, MIN_ANCHORS, PLACED, SEED, UNRESOLVED
 from .evidence import decision_error
 from .ledger import UNPLACED
-from .types import Question
+from .types import QuestionColumns
 
 
 class BlockMixin:
@@ -55,11 +55,11 @@ class BlockMixin:
         state[pos[lb[both]], pos[la[both]]] = 2
         self.block_state = state
 
-    def _plan_block(self, now_ms: int, room: int) -> list[Question]:
+    def _plan_block(self, now_ms: int, room: int) -> QuestionColumns:
         n = len(self.keys)
         if len(self.block) == 0:
             if n < 2:
-                return []
+                return QuestionColumns.empty()
             pinned = int(self.ledger.item("pinned").sum())
             self._extend_block(min(n, max(BLOCK_START, min(pinned, BLOCK_MAX))))
         elif len(self.block) < BLOCK_START and n > len(self.block):
@@ -67,10 +67,10 @@ class BlockMixin:
         st = self.block_state
         if (st == 2).all():
             self._solve_block()
-            return []
+            return QuestionColumns.empty()
         i, j = np.nonzero(np.triu(st == 0, 1))
         if len(i) == 0 or room <= 0:
-            return []
+            return QuestionColumns.empty()
         i, j = i[:room], j[:room]
         st[i, j] = st[j, i] = 1
         return self._issue(self.block[i], self.block[j], SEED, now_ms)

@@ -14,6 +14,9 @@ API (stable; the stream layer, the demo and the benchmarks code against it):
 - ``plan(now_ms) -> list[Question]``: the questions to send now.
 - ``take_changes() -> list[Record]``: records that changed since the last call;
   ``take_updates()`` returns them together with the ones whose side or status changed.
+- Column forms of the same calls for whole batches (no object per row; the worker's
+  path): ``add_answer_columns(AnswerColumns, now_ms) -> bool array`` (True = applied),
+  ``plan_columns(now_ms) -> QuestionColumns``, ``take_update_columns()``.
 - ``record(key) -> Record | None``; ``stats() -> dict``; ``sources() -> list[dict]``;
   ``done() -> bool``.
 - ``snapshot() -> bytes`` and ``Engine.restore(data) -> Engine``: a restored engine behaves
@@ -54,7 +57,15 @@ from .ledger import UNPLACED, Ledger
 from .pairset import MAX_ITEMS, PairSet, pair_keys
 from .questions import QuestionsMixin
 from .sprt import threshold
-from .types import APPLIED, DUPLICATE, Answer, EngineConfig, Record
+from .types import (
+    APPLIED,
+    DUPLICATE,
+    Answer,
+    AnswerColumns,
+    EngineConfig,
+    Record,
+    RecordColumns,
+)
 
 _ITEM_FIELDS: dict[str, tuple[Any, Any]] = {
     "status": (np.int8, WAITING),
@@ -149,18 +160,16 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         return self._records(np.array([i]))[0]
 
     def _records(self, idx: np.ndarray) -> list[Record]:
+        return self._record_columns(idx).rows()
+
+    def _record_columns(self, idx: np.ndarray) -> RecordColumns:
         led = self.ledger.items
         side = led["side"][idx]
         llr = led["llr"][idx]
         shown = np.where(side == 1, llr, np.where(side == 0, -llr, np.abs(llr))).round(6)
-        names = [self.label(0), self.label(1), None]
-        return [
-            Record(k, names[s], STATUS_NAMES[st], v, c, r, p)
-            for k, s, st, v, c, r, p in zip(
-                self.keys.keys_of(idx), side.tolist(), self.items["status"][idx].tolist(),
-                shown.tolist(), led["count"][idx].tolist(), self.items["rev"][idx].tolist(),
-                led["pinned"][idx].tolist(), strict=True)
-        ]
+        return RecordColumns(self.keys.keys_of(idx), side, self.items["status"][idx], shown,
+                             led["count"][idx], self.items["rev"][idx], led["pinned"][idx],
+                             (self.label(0), self.label(1)), STATUS_NAMES)
 
     def take_changes(self) -> list[Record]:
         """Records changed since the last call (each item once, in item order)."""
@@ -169,19 +178,22 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
     def take_updates(self) -> tuple[list[Record], list[Record]]:
         """(records changed since the last call, those among them whose side or status
         changed: the decisions to publish; an item first seen as ``waiting`` has none)."""
-        dirty = np.nonzero(self.items.view("dirty"))[0]
-        out = self._records(dirty)
+        cols, moved = self.take_update_columns()
+        return cols.rows(), cols.rows(moved)
+
+    def take_update_columns(self) -> tuple[RecordColumns, list[int]]:
+        """:meth:`take_updates` as columns: (changed records, positions of the decisions)."""
         it = self.items
-        side = self.ledger.items["side"][dirty]
-        status = it["status"][dirty]
+        dirty = np.nonzero(it.view("dirty"))[0]
+        out = self._record_columns(dirty)
+        side, status = out.side, out.status
         seen = it["shown_status"][dirty]
         moved = (side != it["shown_side"][dirty]) | (status != seen)
         moved &= ~((seen < 0) & (status == WAITING))
-        decided = [out[k] for k in np.nonzero(moved)[0].tolist()]
-        self.items["dirty"][dirty] = False
-        self.items["shown_side"][dirty] = self.ledger.items["side"][dirty]
-        self.items["shown_status"][dirty] = self.items["status"][dirty]
-        return out, decided
+        it["dirty"][dirty] = False
+        it["shown_side"][dirty] = side
+        it["shown_status"][dirty] = status
+        return out, np.nonzero(moved)[0].tolist()
 
     def take_latencies(self) -> list[float]:
         """Seconds from first question to commit, for items committed since the last call."""
@@ -307,10 +319,20 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
     def add_answers(self, answers: Sequence[Answer], now_ms: int = 0) -> list[str]:
         """Count new answers; return "applied" or "duplicate" for each, in order."""
         answers = list(answers)
+        for pos, ans in enumerate(answers):
+            if type(ans) is not Answer:
+                raise EngineInputError(f"answer {pos}: expected an Answer, got "
+                                       f"{type(ans).__name__}")
+        fresh = self.add_answer_columns(AnswerColumns.of(answers), now_ms)
+        return [APPLIED if f else DUPLICATE for f in fresh.tolist()]
+
+    def add_answer_columns(self, answers: AnswerColumns, now_ms: int = 0) -> np.ndarray:
+        """:meth:`add_answers` on columns: a bool array, True where the answer was applied
+        (False: a duplicate). Same checks, same all-or-nothing refusal."""
         got = self._check_answers(answers)
         self.now_ms = max(self.now_ms, int(now_ms))
-        if not answers:
-            return []
+        if not len(answers):
+            return np.zeros(0, dtype=bool)
         a = self._register_missing(got.a_keys, got.ia)
         b = self._register_missing(got.b_keys, got.ib)
         src = self._source_ids(got.sources)
@@ -325,7 +347,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
             again = (self.q["state"][qn] == Q_ANSWERED) | ~first
             fresh[with_q[again]] = False
             self._close_questions(qn[~again], Q_ANSWERED)
-        out = [APPLIED if f else DUPLICATE for f in fresh.tolist()]
+        out = fresh.copy()
         self.duplicates += int((~fresh).sum())
         if not fresh.any():
             return out

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -11,7 +10,7 @@ import numpy as np
 from ..errors import EngineInputError
 from . import validate
 from .pairset import MAX_SOURCES
-from .types import Answer
+from .types import Answer, AnswerColumns
 
 
 @dataclass(slots=True)
@@ -59,26 +58,25 @@ class IntakeMixin:
         return out
 
     def validate_answer(self, ans: Any) -> str | None:
+        if type(ans) is not Answer:
+            return f"expected an Answer, got {type(ans).__name__}"
         try:
-            self._check_answers([ans])
+            self._check_answers(AnswerColumns.of([ans]))
         except EngineInputError as exc:
             return str(exc).split(": ", 1)[1]
         return None
 
-    def _check_answers(self, answers: Sequence[Any]) -> Intake:
+    def _check_answers(self, answers: AnswerColumns) -> Intake:
         """Raise EngineInputError at the first bad answer, else return the batch as arrays.
 
         Keys already registered were checked when they arrived, so the common case costs
         a few vectorised operations per batch rather than string checks per answer.
         """
         count = len(answers)
-        if set(map(type, answers)) - {Answer}:
-            for pos, ans in enumerate(answers):
-                if type(ans) is not Answer:
-                    raise EngineInputError(f"answer {pos}: expected an Answer, got "
-                                           f"{type(ans).__name__}")
-        a_keys = [x.a for x in answers]
-        b_keys = [x.b for x in answers]
+        a_keys, b_keys = answers.a, answers.b
+        names, qids, flags = answers.source, answers.qid, answers.same
+        if not (len(b_keys) == len(names) == len(qids) == len(flags) == count):
+            raise EngineInputError("answer columns of different lengths")
         ia = self.keys.lookup(a_keys)
         ib = self.keys.lookup(b_keys)
         bad: dict[int, str] = {}
@@ -91,13 +89,11 @@ class IntakeMixin:
                 bad[pos] = err
         for pos in np.nonzero((ia == ib) & (ia >= 0))[0].tolist():
             bad.setdefault(pos, "a and b are the same item")
-        flags = [x.same for x in answers]
         if set(map(type, flags)) - {bool}:
             for pos, f in enumerate(flags):
                 err = validate.same_flag(f)
                 if err:
                     bad.setdefault(pos, err)
-        names = [x.source for x in answers]
         sources = self.source_index
         new_sources = set(names) - sources.keys()
         if new_sources:
@@ -108,8 +104,8 @@ class IntakeMixin:
                         err = f"too many sources (limit {MAX_SOURCES})"
                     if err:
                         bad.setdefault(pos, err)
-        qids = [x.qid for x in answers]
-        with_q = [pos for pos, q in enumerate(qids) if q is not None]
+        with_q = (list(range(count)) if None not in qids
+                  else [pos for pos, q in enumerate(qids) if q is not None])
         qn = np.full(len(with_q), -1, dtype=np.int64)
         if with_q:
             texts = [qids[pos] for pos in with_q]

@@ -9,7 +9,7 @@ from .codes import ASKING, CHECK, PLACE, Q_EXPIRED, Q_OPEN, UNRESOLVED, WAITING,
 from .columns import uniq
 from .ledger import UNPLACED
 from .sprt import weight
-from .types import Question
+from .types import Question, QuestionColumns
 
 
 class QuestionsMixin:
@@ -17,6 +17,10 @@ class QuestionsMixin:
 
     def plan(self, now_ms: int) -> list[Question]:
         """The questions to send now, within every cap."""
+        return self.plan_columns(now_ms).rows()
+
+    def plan_columns(self, now_ms: int) -> QuestionColumns:
+        """:meth:`plan` as columns."""
         self.now_ms = max(self.now_ms, int(now_ms))
         now = self.now_ms
         self._expire(now)
@@ -25,15 +29,16 @@ class QuestionsMixin:
         if cfg.budget:
             room = min(room, cfg.budget - sum(self.issued))
         if room <= 0:
-            return []
+            return QuestionColumns.empty()
         if self.phase == "boot":
             out = self._plan_block(now, room)
             if self.phase == "boot":
                 return out
             room -= len(out)
         else:
-            out = []
-        return out + self._plan_place(now, room)
+            out = QuestionColumns.empty()
+        out.extend(self._plan_place(now, room))
+        return out
 
     def _best_step(self) -> float:
         seen = self.src_answers > 0
@@ -41,14 +46,14 @@ class QuestionsMixin:
             return abs(float(weight(self.pooled)))
         return float(np.max(np.abs(weight(self.delta[seen]))))
 
-    def _plan_place(self, now_ms: int, room: int) -> list[Question]:
+    def _plan_place(self, now_ms: int, room: int) -> QuestionColumns:
         """Placement questions for items that were nudged, carried over, or never asked.
 
         Only those items are looked at (not every item), so a round costs time in
         proportion to the answers that arrived, not to the size of the deployment.
         """
         if room <= 0 or len(self.pool) == 0:
-            return []
+            return QuestionColumns.empty()
         cfg = self.config
         parts = [self.carry, *self.nudged]
         self.nudged = []
@@ -62,7 +67,7 @@ class QuestionsMixin:
             targets = np.concatenate([targets, more])
             self.carry = np.concatenate([self.carry, rest])
         if len(targets) == 0:
-            return []
+            return QuestionColumns.empty()
         # distinct partners for the slots one item gets in one round
         order = np.argsort(targets, kind="stable")
         sorted_t = targets[order]
@@ -82,7 +87,7 @@ class QuestionsMixin:
             ib = (planner.mix(salt ^ np.uint64(9)) % np.uint64(len(self.pool) - 1)).astype(
                 np.int64)
             ib = ib + (ib >= ia)
-            out += self._issue(self.pool[ia], self.pool[ib], CHECK, now_ms)
+            out.extend(self._issue(self.pool[ia], self.pool[ib], CHECK, now_ms))
         return out
 
     def _serve(self, cand: np.ndarray, room: int) -> tuple[np.ndarray, np.ndarray]:
@@ -141,10 +146,10 @@ class QuestionsMixin:
         return out
 
     def _issue(self, targets: np.ndarray, partners: np.ndarray, why: int,
-               now_ms: int) -> list[Question]:
+               now_ms: int) -> QuestionColumns:
         count = len(targets)
         if count == 0:
-            return []
+            return QuestionColumns.empty()
         qids = self.q.grow(count)
         q = self.q
         q["target"][qids] = targets
@@ -165,12 +170,9 @@ class QuestionsMixin:
         swap = planner.uniform(qids.astype(np.uint64), 3 + self._salt) < 0.5
         first = np.where(swap, partners, targets)
         second = np.where(swap, targets, partners)
-        name = WHY_NAMES[why]
-        return [
-            Question(str(qid), a, b, name, now_ms)
-            for qid, a, b in zip(qids.tolist(), self.keys.keys_of(first),
-                                 self.keys.keys_of(second), strict=True)
-        ]
+        return QuestionColumns(list(map(str, qids.tolist())), self.keys.keys_of(first),
+                               self.keys.keys_of(second), [WHY_NAMES[why]] * count,
+                               [now_ms] * count)
 
     def _expire(self, now_ms: int) -> None:
         q = self.q

@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 
 @dataclass(frozen=True, slots=True)
@@ -62,3 +63,104 @@ class Record(NamedTuple):
 # Outcomes of add_answers, one per answer, in order.
 APPLIED = "applied"
 DUPLICATE = "duplicate"
+
+
+# Column forms of the same values, for whole batches: the worker's hot path moves these
+# between the codec, the engine and the commit without building one object per row.
+
+
+@dataclass(slots=True)
+class AnswerColumns:
+    """A batch of answers as parallel lists (row ``k`` is one :class:`Answer`)."""
+
+    a: list[str]
+    b: list[str]
+    same: list[bool]
+    source: list[str]
+    qid: list[str | None]
+
+    def __len__(self) -> int:
+        return len(self.a)
+
+    @classmethod
+    def empty(cls) -> AnswerColumns:
+        return cls([], [], [], [], [])
+
+    @classmethod
+    def of(cls, answers: Iterable[Answer]) -> AnswerColumns:
+        rows = list(answers)
+        if not rows:
+            return cls.empty()
+        a, b, same, source, qid = (list(c) for c in zip(*rows, strict=True))
+        return cls(a, b, same, source, qid)
+
+    def rows(self) -> list[Answer]:
+        return list(map(Answer, self.a, self.b, self.same, self.source, self.qid))
+
+    def append(self, ans: Answer) -> None:
+        self.a.append(ans.a)
+        self.b.append(ans.b)
+        self.same.append(ans.same)
+        self.source.append(ans.source)
+        self.qid.append(ans.qid)
+
+    def select(self, positions: Sequence[int]) -> AnswerColumns:
+        return AnswerColumns(*([col[k] for k in positions] for col in
+                               (self.a, self.b, self.same, self.source, self.qid)))
+
+
+@dataclass(slots=True)
+class QuestionColumns:
+    """Questions as parallel lists (row ``k`` is one :class:`Question`)."""
+
+    qid: list[str]
+    a: list[str]
+    b: list[str]
+    why: list[str]
+    ts_ms: list[int]
+
+    def __len__(self) -> int:
+        return len(self.qid)
+
+    @classmethod
+    def empty(cls) -> QuestionColumns:
+        return cls([], [], [], [], [])
+
+    def extend(self, other: QuestionColumns) -> None:
+        self.qid += other.qid
+        self.a += other.a
+        self.b += other.b
+        self.why += other.why
+        self.ts_ms += other.ts_ms
+
+    def rows(self) -> list[Question]:
+        return list(map(Question, self.qid, self.a, self.b, self.why, self.ts_ms))
+
+
+@dataclass(slots=True)
+class RecordColumns:
+    """Records as columns: keys, plus numpy arrays; ``side`` is a slot (0, 1, or -1 for
+    none) into ``labels``, ``status`` an index into :data:`codes.STATUS_NAMES`."""
+
+    keys: list[str]
+    side: Any  # np.ndarray int8
+    status: Any  # np.ndarray int8
+    llr: Any  # np.ndarray float64
+    answers: Any  # np.ndarray
+    rev: Any  # np.ndarray
+    pinned: Any  # np.ndarray bool
+    labels: tuple[str, str]
+    status_names: tuple[str, ...]
+
+    def __len__(self) -> int:
+        return len(self.keys)
+
+    def rows(self, positions: Iterable[int] | None = None) -> list[Record]:
+        names = (*self.labels, None)
+        st = self.status_names
+        pos = range(len(self.keys)) if positions is None else list(positions)
+        keys = self.keys
+        side, status, llr = self.side.tolist(), self.status.tolist(), self.llr.tolist()
+        cnt, rev, pin = self.answers.tolist(), self.rev.tolist(), self.pinned.tolist()
+        return [Record(keys[k], names[side[k]], st[status[k]], llr[k], cnt[k], rev[k], pin[k])
+                for k in pos]

@@ -10,7 +10,16 @@ from __future__ import annotations
 from collections import Counter
 from dataclasses import dataclass, field
 
-from ..core.types import APPLIED, Answer, Question, Record
+import numpy as np
+
+from ..core.types import (
+    APPLIED,
+    Answer,
+    AnswerColumns,
+    QuestionColumns,
+    Record,
+    RecordColumns,
+)
 from ..errors import EngineInputError
 from .codec import (
     ENGINE,
@@ -24,7 +33,15 @@ from .codec import (
     decode_items,
     origin,
 )
-from .state import OP_ANSWERS, OP_ITEMS, Batch, WorkerState, answers_payload
+from .state import (
+    OP_ANSWER_COLUMNS,
+    OP_ANSWERS,
+    OP_ITEMS,
+    Batch,
+    WorkerState,
+    answers_columns_payload,
+    answers_payload,
+)
 
 
 @dataclass
@@ -32,9 +49,9 @@ class Outcome:
     """Everything a processed batch hands to the commit and the metrics."""
 
     batch: Batch
-    records: list[Record] = field(default_factory=list)
-    decisions: list[Record] = field(default_factory=list)
-    questions: list[Question] = field(default_factory=list)
+    records: RecordColumns | None = None  # every record that changed
+    decisions: list[Record] = field(default_factory=list)  # those whose side/status moved
+    questions: QuestionColumns = field(default_factory=QuestionColumns.empty)
     dead: list[tuple[str, Dead]] = field(default_factory=list)  # (input stream, letter)
     counts: Counter[str] = field(default_factory=Counter)
 
@@ -70,45 +87,49 @@ def _apply_items(state: WorkerState, items: list[tuple[str, str | None]],
     counts["dup:item"] += len(results) - applied
 
 
-def _apply_answers(state: WorkerState, answers: list[Answer], aids: list[str | None],
+def _apply_answers(state: WorkerState, cols: AnswerColumns, aids: list[str | None],
                    origins: list[Ref], stream: str, now_ms: int, out: Outcome) -> None:
     counts, batch = out.counts, out.batch
     window = state.aids
     if any(a is not None for a in aids):
-        keep_a: list[Answer] = []
-        keep_aid: list[str | None] = []
-        keep_o: list[Ref] = []
+        keep: list[int] = []
         fresh: set[str] = set()
-        for ans, aid, ref in zip(answers, aids, origins, strict=True):
+        for pos, aid in enumerate(aids):
             if aid is not None:
                 if aid in fresh or aid in window:
                     counts["dup:aid"] += 1
                     continue
                 fresh.add(aid)
-            keep_a.append(ans)
-            keep_aid.append(aid)
-            keep_o.append(ref)
-        answers, aids, origins = keep_a, keep_aid, keep_o
-    if not answers:
+            keep.append(pos)
+        if len(keep) < len(aids):
+            cols = cols.select(keep)
+            aids = [aids[k] for k in keep]
+            origins = [origins[k] for k in keep]
+    if not len(cols):
         return
     try:
-        results = state.apply_answers(answers, now_ms)
-        batch.ops.append([OP_ANSWERS, answers_payload(answers)])
+        applied = state.apply_answer_columns(cols, now_ms)
+        batch.ops.append([OP_ANSWER_COLUMNS, answers_columns_payload(cols)])
         batch.aids.extend(a for a in aids if a is not None)
     except EngineInputError:
         good: list[tuple[Answer, str | None, Ref]] = []
-        for ans, aid, ref in zip(answers, aids, origins, strict=True):
+        for ans, aid, ref in zip(cols.rows(), aids, origins, strict=True):
             reason = state.engine.validate_answer(ans)
             if reason is None:
                 good.append((ans, aid, ref))
             else:
                 _dead_answer(out, stream, ans, aid, ref, reason)
         answers, results = _apply_good(state, good, stream, now_ms, out)
-    for ans, r in zip(answers, results, strict=True):
-        if r == APPLIED:
-            counts["applied"] += 1
-        else:
-            counts["dup:qid" if ans.qid is not None else "dup:pair_source"] += 1
+        cols = AnswerColumns.of(answers)
+        applied = np.array([r == APPLIED for r in results], dtype=bool)
+    n_applied = int(applied.sum())
+    if n_applied:
+        counts["applied"] += n_applied
+    if n_applied < len(applied):
+        dup = ~applied
+        with_qid = np.fromiter((q is not None for q in cols.qid), dtype=bool, count=len(cols))
+        counts["dup:qid"] += int((dup & with_qid).sum())
+        counts["dup:pair_source"] += int((dup & ~with_qid).sum())
 
 
 def _dead_answer(out: Outcome, stream: str, ans: Answer, aid: str | None, ref: Ref,
@@ -174,12 +195,12 @@ def process(state: WorkerState, items_stream: str, items: list[Entry],
     if answers:
         da = _decoded(out, "answers", answers_stream, answers,
                       decode_answers(answers_stream, answers))
-        if da.answers:
-            _apply_answers(state, da.answers, da.aids, da.origins, answers_stream, now_ms, out)
-    out.questions = state.engine.plan(now_ms)
-    out.records, decided = state.engine.take_updates()
+        if len(da.cols):
+            _apply_answers(state, da.cols, da.aids, da.origins, answers_stream, now_ms, out)
+    out.questions = state.engine.plan_columns(now_ms)
+    out.records, moved = state.engine.take_update_columns()
     for k in [k for k, v in counts.items() if not v]:
         del counts[k]
     out.batch.counts = counts
-    out.decisions = state.finish(out.batch, decided)
+    out.decisions = state.finish(out.batch, out.records.rows(moved))
     return out

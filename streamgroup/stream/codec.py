@@ -29,7 +29,7 @@ from typing import Any
 
 import msgpack
 
-from ..core.types import Answer
+from ..core.types import Answer, AnswerColumns
 from ..keys import (
     CONTROL_CHARS,
     MAX_ID_BYTES,
@@ -94,13 +94,18 @@ class Decoded:
     """What one batch of entries of a stream turned into."""
 
     items: list[tuple[str, str | None]] = field(default_factory=list)
-    answers: list[Answer] = field(default_factory=list)
-    aids: list[str | None] = field(default_factory=list)  # parallel to answers
+    cols: AnswerColumns = field(default_factory=AnswerColumns.empty)  # the good answers
+    aids: list[str | None] = field(default_factory=list)  # parallel to cols
     # parallel to answers / items: the entry id, or (entry id, index) inside a pack; turned
     # into the readable "stream id[#index]" only when a dead letter needs it
     origins: list[Ref] = field(default_factory=list)
     dead: list[Dead] = field(default_factory=list)
     missing: int = 0  # pending entries whose content was deleted before we read it
+
+    @property
+    def answers(self) -> list[Answer]:
+        """The good answers as rows (tests and slow paths; the worker uses ``cols``)."""
+        return self.cols.rows()
 
 
 def _scalar_text(v: Any) -> str:
@@ -207,14 +212,20 @@ def _fast_answers(entries: Sequence[Entry], out: Decoded) -> bool:
     parts = text.split("\0")
     if len(parts) != len(texts):
         return False
-    answers, aids, origins = out.answers, out.aids, out.origins
-    i = 0
-    for eid, same, has_qid, has_aid in rows:
-        answers.append(Answer(parts[i], parts[i + 1], same, parts[i + 2],
-                              parts[i + 3] if has_qid else None))
-        aids.append(parts[i + 4] if has_aid else None)
-        origins.append(eid)
-        i += 5
+    cols = out.cols
+    cols.a += parts[0::5]
+    cols.b += parts[1::5]
+    cols.same += [r[1] for r in rows]
+    cols.source += parts[2::5]
+    if all(r[2] for r in rows):
+        cols.qid += parts[3::5]
+    else:
+        cols.qid += [q if r[2] else None for q, r in zip(parts[3::5], rows, strict=True)]
+    if any(r[3] for r in rows):
+        out.aids += [x if r[3] else None for x, r in zip(parts[4::5], rows, strict=True)]
+    else:
+        out.aids += [None] * len(rows)
+    out.origins += [r[0] for r in rows]
     return True
 
 
@@ -223,7 +234,7 @@ def decode_answers(stream: str, entries: Sequence[Entry]) -> Decoded:
     out = Decoded()
     if _fast_answers(entries, out):
         return out
-    answers, aids, origins, dead = out.answers, out.aids, out.origins, out.dead
+    answers, aids, origins, dead = out.cols, out.aids, out.origins, out.dead
     for eid, fields in entries:
         if not fields:
             out.missing += 1
@@ -323,11 +334,14 @@ def _fast_pack(data: list[Any], eid: bytes, out: Decoded) -> bool:
         rows.append((a, b, same, src, qid, aid))
     if _CTRL_S.search(" ".join(texts)) is not None:
         return False
-    answers, aids, origins = out.answers, out.aids, out.origins
-    for i, (a, b, same, src, qid, aid) in enumerate(rows):
-        answers.append(Answer(a, b, same, "" if src is None else src, qid))
-        aids.append(aid)
-        origins.append((eid, i))
+    cols = out.cols
+    cols.a += [r[0] for r in rows]
+    cols.b += [r[1] for r in rows]
+    cols.same += [r[2] for r in rows]
+    cols.source += ["" if r[3] is None else r[3] for r in rows]
+    cols.qid += [r[4] for r in rows]
+    out.aids += [r[5] for r in rows]
+    out.origins += [(eid, i) for i in range(len(rows))]
     return True
 
 
@@ -343,7 +357,7 @@ def _decode_pack(stream: str, eid: bytes, fields: dict[bytes, bytes], pack: byte
         return
     if _fast_pack(data, eid, out):
         return
-    answers, aids, origins = out.answers, out.aids, out.origins
+    answers, aids, origins = out.cols, out.aids, out.origins
     for i, el in enumerate(data):
         try:
             if not isinstance(el, dict):

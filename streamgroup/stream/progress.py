@@ -9,6 +9,7 @@ seconds, and a progress sample goes to ``{NS}:history`` every ``history_every`` 
 from __future__ import annotations
 
 import time
+from collections import Counter
 from typing import Any
 
 import msgpack
@@ -60,11 +61,8 @@ class Progress:
             for stream, d in out.dead:
                 m.entries_rejected.labels(stream=stream.rsplit(":", 1)[-1],
                                           reason=d.kind).inc()
-            if out.questions:
-                whys: dict[str, int] = {}
-                for q in out.questions:
-                    whys[q.why] = whys.get(q.why, 0) + 1
-                for why, k in whys.items():
+            if len(out.questions):
+                for why, k in Counter(out.questions.why).items():
                     m.questions_issued.labels(why=why).inc(k)
             take = getattr(state.engine, "take_latencies", None) if state else None
             if take is not None:

@@ -22,7 +22,7 @@ from typing import Any
 import msgpack
 
 from ..core.engine import Engine
-from ..core.types import Answer, EngineConfig, Record
+from ..core.types import Answer, AnswerColumns, EngineConfig, Record
 from ..errors import StateError
 
 SNAPSHOT_VERSION = 1
@@ -31,7 +31,8 @@ DEFAULT_AID_WINDOW = 100_000
 
 # ops in a journal entry, in the order they were applied
 OP_ITEMS = "i"
-OP_ANSWERS = "a"
+OP_ANSWERS = "a"  # payload: one [a, b, same, source, qid] row per answer
+OP_ANSWER_COLUMNS = "A"  # payload: [a-list, b-list, same-list, source-list, qid-list]
 
 
 
@@ -92,6 +93,10 @@ def answers_payload(answers: Sequence[Answer]) -> list[list[Any]]:
     return [[x.a, x.b, x.same, x.source, x.qid] for x in answers]
 
 
+def answers_columns_payload(cols: AnswerColumns) -> list[list[Any]]:
+    return [cols.a, cols.b, cols.same, cols.source, cols.qid]
+
+
 def answers_from_payload(rows: Sequence[Sequence[Any]]) -> list[Answer]:
     return [Answer(r[0], r[1], bool(r[2]), r[3], r[4]) for r in rows]
 
@@ -114,6 +119,9 @@ class WorkerState:
     def apply_answers(self, answers: list[Answer], now_ms: int) -> list[str]:
         return self.engine.add_answers(answers, now_ms)
 
+    def apply_answer_columns(self, cols: AnswerColumns, now_ms: int) -> Any:
+        return self.engine.add_answer_columns(cols, now_ms)
+
     def replay(self, batch: Batch) -> None:
         """Re-run one journaled batch; its questions and records are not published again."""
         if batch.seq <= self.seq:
@@ -121,12 +129,17 @@ class WorkerState:
         for op, payload in batch.ops:
             if op == OP_ITEMS:
                 self.engine.add_items([(k, s) for k, s in payload])
+            elif op == OP_ANSWER_COLUMNS:
+                a, b, same, source, qid = payload
+                self.engine.add_answer_columns(AnswerColumns(a, b, same, source, qid),
+                                               batch.now_ms)
             elif op == OP_ANSWERS:
                 self.engine.add_answers(answers_from_payload(payload), batch.now_ms)
             else:
                 raise StateError(f"journal entry {batch.seq} has an unknown op {op!r}")
-        self.engine.plan(batch.now_ms)
-        self.finish(batch, self.engine.take_updates()[1])
+        self.engine.plan_columns(batch.now_ms)
+        self.engine.take_update_columns()
+        self.finish(batch, [])
 
     def finish(self, batch: Batch, decisions: list[Record]) -> list[Record]:
         """Fold a committed (or replayed) batch into the worker's memory; pass through the

@@ -393,7 +393,7 @@ class Worker:
         try:
             self._flush()  # normally empty: a turn that sees the stop flag commits at once
             plan = build_commit(
-                self.keys, self.caps, records=[], decisions=[], questions=[], dead=[],
+                self.keys, self.caps, records=None, decisions=[], questions=None, dead=[],
                 journal=None, snapshot=self.state.snapshot_bytes(int(self.clock() * 1000)),
                 meta=self.state.meta_fields(), acks={}, group=GROUP, pack_questions=False)
             execute(self.client, plan)
