@@ -49,7 +49,6 @@ import redis
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 sys.path.insert(0, ROOT)
 
-from streamgroup.core.types import Question  # noqa: E402
 from streamgroup.embedded import EmbeddedRedis  # noqa: E402
 from streamgroup.keys import GROUP, Keys  # noqa: E402
 from streamgroup.sim.crowd import Crowd  # noqa: E402
@@ -152,42 +151,52 @@ class Feeder:
         self.r.xgroup_create(self.k.questions, "crowd", id="0", mkstream=True)
         self.names = np.array(crowd.source_names, dtype=object)
         self.questions = 0  # questions read (and answered) so far
+        # entries per read: packed ones hold many questions; plain reads stay the size of a
+        # worker batch so that no single command of the adapter holds Redis up for long
+        self.count = 100 if pack else 1000
 
     def step(self) -> int:
-        reply = self.r.xreadgroup("crowd", "c", {self.k.questions: ">"}, count=20_000,
+        reply = self.r.xreadgroup("crowd", "c", {self.k.questions: ">"}, count=self.count,
                                   block=100)
         if not reply:
             return 0
         entries = reply[0][1]
-        qs: list[Question] = []
+        qid: list[str] = []
+        a: list[str] = []
+        b: list[str] = []
         for _eid, f in entries:
             p = f.get(b"pack")
             if p is not None:
-                qs.extend(Question(m["qid"], m["a"], m["b"], m["why"], m["ts"])
-                          for m in msgpack.unpackb(p, raw=False))
+                rows = msgpack.unpackb(p, raw=False)
+                qid += [m["qid"] for m in rows]
+                a += [m["a"] for m in rows]
+                b += [m["b"] for m in rows]
             else:
-                qs.append(Question(f[b"qid"].decode(), f[b"a"].decode(), f[b"b"].decode(),
-                                   "", 0))
-        answers = self.crowd.answer_now(qs)
-        self.questions += len(qs)
+                qid.append(f[b"qid"].decode())
+                a.append(f[b"a"].decode())
+                b.append(f[b"b"].decode())
+        same, src = self.crowd.answer_keys(a, b)
+        self.questions += len(qid)
         conn = self.r.connection
         cmds = [("XACK", self.k.questions, "crowd", *[e[0] for e in entries])]
         if self.pack:
-            for i in range(0, len(answers), 10_000):
-                rows = [{"a": a.a, "b": a.b, "same": a.same, "source": a.source, "qid": a.qid}
-                        for a in answers[i:i + 10_000]]
+            names = ("a", "b", "same", "source", "qid")
+            for i in range(0, len(qid), 10_000):
+                j = i + 10_000
+                rows = [dict(zip(names, t, strict=True)) for t in
+                        zip(a[i:j], b[i:j], same[i:j], src[i:j], qid[i:j], strict=True)]
                 cmds.append(("XADD", self.k.answers, "*", "pack",
                              msgpack.packb(rows, use_bin_type=True)))
         else:
-            vals: list[Any] = []
-            for a in answers:
-                vals += (a.a, a.b, "1" if a.same else "0", a.source, a.qid)
+            vals: list[Any] = [None] * (5 * len(qid))
+            vals[0::5], vals[1::5], vals[3::5], vals[4::5] = a, b, src, qid
+            vals[2::5] = ["1" if x else "0" for x in same]
             cmds.append(("EVAL", XADD_MANY, 1, self.k.answers, 0, 5, "a", "b", "same",
                          "source", "qid", *vals))
         conn.send_packed_command([b"".join(hiredis.pack_command(c) for c in cmds)])
         for _ in cmds:
             conn.read_response()
-        return len(answers)
+        return len(qid)
 
 
 def lookup_child(url: str, ns: str, n: int, seconds: float, rate: float) -> None:

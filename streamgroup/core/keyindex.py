@@ -52,9 +52,24 @@ class KeyIndex:
         return default if i < 0 else i
 
     def keys_of(self, idx: Sequence[int]) -> list[str]:
-        o, blob = self.offsets, self.blob
-        starts, ends = o[idx].tolist(), o[np.asarray(idx, dtype=np.int64) + 1].tolist()
-        return [blob[s:e].decode("utf-8") for s, e in zip(starts, ends, strict=True)]
+        """The keys at ``idx``: gathered into one NUL-separated buffer by numpy and decoded
+        and split once (keys never hold NUL), instead of a slice and a decode per key."""
+        idx = np.asarray(idx, dtype=np.int64)
+        if len(idx) < 8:
+            o, blob = self.offsets, self.blob
+            return [blob[o[i]:o[i + 1]].decode("utf-8") for i in idx.tolist()]
+        o = self.offsets
+        starts = o[idx]
+        lens = o[idx + 1] - starts
+        width = lens + 1  # each key and its separator
+        out_at = np.cumsum(width) - width
+        src = np.arange(int(width.sum()), dtype=np.int64) + np.repeat(starts - out_at, width)
+        blob = np.frombuffer(self.blob, dtype=np.uint8)  # a short-lived view: the
+        np.minimum(src, len(blob) - 1, out=src)  # bytearray cannot grow while it exists
+        buf = blob[src]
+        del blob
+        buf[out_at + lens] = 0
+        return buf.tobytes().decode("utf-8").split("\0")[:-1]
 
     def lookup(self, keys: Sequence[str]) -> np.ndarray:
         """Index of each key, or -1."""

@@ -86,16 +86,24 @@ class Crowd:
         """Answer each question at once, each by a randomly chosen source."""
         if not questions:
             return []
-        a = np.fromiter((self.index[q.a] for q in questions), dtype=np.int64, count=len(questions))
-        b = np.fromiter((self.index[q.b] for q in questions), dtype=np.int64, count=len(questions))
-        src = self.pick_sources(len(questions))
+        a_keys = [q.a for q in questions]
+        b_keys = [q.b for q in questions]
+        same, names = self.answer_keys(a_keys, b_keys)
+        return [Answer(q.a, q.b, s, n, q.qid)
+                for q, s, n in zip(questions, same, names, strict=True)]
+
+    def answer_keys(self, a_keys: Sequence[str], b_keys: Sequence[str]
+                    ) -> tuple[list[bool], list[str]]:
+        """:meth:`answer_now` on key columns: ("same" flags, source names), one per pair."""
+        count = len(a_keys)
+        index = self.index
+        a = np.fromiter(map(index.__getitem__, a_keys), dtype=np.int64, count=count)
+        b = np.fromiter(map(index.__getitem__, b_keys), dtype=np.int64, count=count)
+        src = self.pick_sources(count)
         same = self.answers_for(a, b, src)
-        self.asked += len(questions)
+        self.asked += count
         names = self.source_names
-        return [
-            Answer(q.a, q.b, bool(s), names[j], q.qid)
-            for q, s, j in zip(questions, same.tolist(), src.tolist(), strict=True)
-        ]
+        return same.tolist(), [names[j] for j in src.tolist()]
 
     def ask(self, questions: Sequence[Question], now_ms: int) -> None:
         """Queue answers to arrive after a random latency (possibly duplicated)."""

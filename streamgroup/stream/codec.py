@@ -305,43 +305,46 @@ _FAST_CHARS = 32  # strings this short are within every byte limit even at 4 byt
 def _fast_pack(data: list[Any], eid: bytes, out: Decoded) -> bool:
     """A whole pack of plain, short, well-typed answers, checked at once (see _fast_answers).
 
-    Returns False, having added nothing, when any element needs the per-element path.
+    The fields are pulled out as columns and every check runs over a whole column. Returns
+    False, having added nothing, when any element needs the per-element path.
     """
-    texts: list[str] = []
-    rows = []
-    for el in data:
-        if type(el) is not dict:
+    if set(map(type, data)) != {dict}:
+        return False
+    get = dict.get
+    a = [get(el, "a") for el in data]
+    b = [get(el, "b") for el in data]
+    if set(map(type, a)) != {str} or set(map(type, b)) != {str} or any(map(str.__eq__, a, b)):
+        return False
+    if not (min(map(len, a)) > 0 and max(map(len, a)) <= _FAST_CHARS
+            and min(map(len, b)) > 0 and max(map(len, b)) <= _FAST_CHARS):
+        return False
+    s = [get(el, "same") for el in data]
+    if not set(map(type, s)) <= {bool, int} or not set(s) <= {0, 1}:
+        return False
+    texts = a + b
+    cols = []
+    for name in ("source", "qid", "aid"):
+        col = [get(el, name) for el in data]
+        kinds = set(map(type, col))
+        if not kinds <= {str, type(None)}:
             return False
-        a, b, s = el.get("a"), el.get("b"), el.get("same")
-        if type(a) is not str or type(b) is not str or a == b:
-            return False
-        if not (0 < len(a) <= _FAST_CHARS and 0 < len(b) <= _FAST_CHARS):
-            return False
-        if s is True or s is False:
-            same = s
-        elif type(s) is int and (s == 0 or s == 1):
-            same = s == 1
-        else:
-            return False
-        texts.append(a)
-        texts.append(b)
-        src, qid, aid = el.get("source"), el.get("qid"), el.get("aid")
-        for v in (src, qid, aid):
-            if v is not None:
-                if type(v) is not str or not 0 < len(v) <= _FAST_CHARS:
-                    return False
-                texts.append(v)
-        rows.append((a, b, same, src, qid, aid))
+        if str in kinds:
+            given = [v for v in col if v is not None] if type(None) in kinds else col
+            if not (min(map(len, given)) > 0 and max(map(len, given)) <= _FAST_CHARS):
+                return False
+            texts += given
+        cols.append(col)
     if _CTRL_S.search(" ".join(texts)) is not None:
         return False
-    cols = out.cols
-    cols.a += [r[0] for r in rows]
-    cols.b += [r[1] for r in rows]
-    cols.same += [r[2] for r in rows]
-    cols.source += ["" if r[3] is None else r[3] for r in rows]
-    cols.qid += [r[4] for r in rows]
-    out.aids += [r[5] for r in rows]
-    out.origins += [(eid, i) for i in range(len(rows))]
+    src, qid, aid = cols
+    dst = out.cols
+    dst.a += a
+    dst.b += b
+    dst.same += [x is True or x == 1 for x in s]
+    dst.source += ["" if v is None else v for v in src] if None in src else src
+    dst.qid += qid
+    out.aids += aid
+    out.origins += [(eid, i) for i in range(len(data))]
     return True
 
 

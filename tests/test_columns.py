@@ -1,0 +1,73 @@
+"""The column forms of the hot path give exactly what the row forms give."""
+
+from __future__ import annotations
+
+import msgpack
+import numpy as np
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from streamgroup.core.codes import STATUS_NAMES
+from streamgroup.core.engine import Engine
+from streamgroup.core.keyindex import KeyIndex
+from streamgroup.core.types import Answer, AnswerColumns, EngineConfig, RecordColumns
+from streamgroup.sim.crowd import Crowd
+from streamgroup.stream.commit import assign_value, assign_values
+
+KEY = st.text(st.characters(blacklist_categories=("Cc", "Cs")), min_size=1, max_size=40)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(KEY, min_size=1, max_size=300, unique=True), st.data())
+def test_keys_of_gathers_the_keys_that_were_added(keys: list[str], data: st.DataObject) -> None:
+    index = KeyIndex()
+    index.add(keys)
+    picks = data.draw(st.lists(st.integers(0, len(keys) - 1), max_size=200))
+    assert index.keys_of(np.array(picks, dtype=np.int64)) == [keys[i] for i in picks]
+    assert index.keys_of(np.arange(len(keys))) == keys
+    index.add(["one more"])  # the blob can still grow after a gather
+    assert index.keys_of([len(keys)] * 9) == ["one more"] * 9
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.integers(1, 200), st.integers(0, 2**32 - 1))
+def test_assign_values_decode_like_the_one_record_form(n: int, seed: int) -> None:
+    rng = np.random.default_rng(seed)
+    rc = RecordColumns(
+        [f"shard-{i}" for i in range(n)], rng.integers(-1, 2, n).astype(np.int8),
+        rng.integers(0, len(STATUS_NAMES), n).astype(np.int8),
+        rng.normal(0, 50, n).round(6), rng.integers(0, 2**31 - 1, n).astype(np.int32),
+        rng.integers(0, 70_000, n).astype(np.int32), rng.random(n) < 0.3,
+        ("north", "söuth"), STATUS_NAMES)
+    rows = rc.rows()
+    packed = assign_values(rc)
+    assert [msgpack.unpackb(v) for v in packed] == [msgpack.unpackb(assign_value(r))
+                                                    for r in rows]
+    assert all(type(msgpack.unpackb(v)["llr"]) is float for v in packed)
+
+
+def test_engine_column_calls_equal_row_calls() -> None:
+    """Two engines fed the same answers, one as rows and one as columns, end identical."""
+    crowd = Crowd(300, seed=4)
+    rows_e, cols_e = Engine(EngineConfig(seed=4)), Engine(EngineConfig(seed=4))
+    for e in (rows_e, cols_e):
+        e.add_items([(k, None) for k in crowd.keys])
+    now = 0
+    for _ in range(200):
+        now += 1000
+        qs = rows_e.plan(now)
+        qc = cols_e.plan_columns(now)
+        assert qc.rows() == qs
+        answers = crowd.answer_now(qs)
+        got = rows_e.add_answers(answers, now)
+        fresh = cols_e.add_answer_columns(AnswerColumns.of(answers), now)
+        assert got == ["applied" if f else "duplicate" for f in fresh.tolist()]
+        updates = rows_e.take_updates()
+        cols, moved = cols_e.take_update_columns()
+        assert updates == (cols.rows(), cols.rows(moved))
+        if rows_e.done():
+            break
+    assert rows_e.snapshot() == cols_e.snapshot()
+    assert AnswerColumns.of(answers).rows() == answers
+    assert AnswerColumns.of([]).rows() == [] and Answer("a", "b", True) in AnswerColumns.of(
+        [Answer("a", "b", True)]).rows()
