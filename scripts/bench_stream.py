@@ -14,7 +14,10 @@ port, persistence off), with the same batch size everywhere:
   records, the journal and the acknowledgements, all in one MULTI/EXEC per batch.
   Measured over a window after a warm-up (past the bootstrap), as answer entries consumed
   per second.
-- ``packed_answers_per_s``: the same loop with packed questions out and packed answers in.
+- ``packed_answers_per_s``: the same loop with packed questions out and packed answers in
+  (over ``--packed-items`` items, so that the window ends well before the work runs out:
+  near the end fewer items are left to ask about, and the loop slows for that reason).
+  In both loops every item is registered before the crowd starts.
 - ``lookup_p99_ms``: HGET of random keys of ``{NS}:assign`` from another process, about
   500 per second, during the plain-entry window (the worker ingesting at full speed).
 - ``worker_bytes_per_item``: growth of the worker's resident memory while it registers
@@ -239,9 +242,12 @@ def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
     k = Keys(ns)
     crowd = Crowd(n, delta=0.6, sources=[0.6] * 50, seed=1)
     fill_items(r, k.items, n)
-    feeder = Feeder(url, ns, crowd, pack)
     proc = spawn_worker(url, ns, batch=batch, block_ms=100, snapshot_every=30,
                         pack_questions=pack, max_outstanding=max_outstanding)
+    # every item registered before the crowd starts: the window then holds answers only
+    wait_until(lambda: int(r.hget(k.meta, "items_applied") or 0) >= n, 600,
+               "the worker to register the items")
+    feeder = Feeder(url, ns, crowd, pack)
 
     def consumed() -> int:
         return int(r.hget(k.meta, "entries:answers") or 0)
@@ -316,7 +322,10 @@ def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     p.add_argument("--items", type=int, default=1_000_000, help="items for the memory part")
     p.add_argument("--loop-items", type=int, default=100_000,
-                   help="items in the closed-loop throughput runs")
+                   help="items in the plain closed-loop run")
+    p.add_argument("--packed-items", type=int, default=300_000,
+                   help="items in the packed closed-loop run (more, so that the run never "
+                        "reaches the end of the work, where fewer questions are in flight)")
     p.add_argument("--batch", type=int, default=500)
     p.add_argument("--warmup", type=float, default=6.0)
     p.add_argument("--seconds", type=float, default=10.0, help="measurement window per run")
@@ -336,7 +345,7 @@ def main(argv: list[str] | None = None) -> int:
                            args.seconds, True, 20 * args.batch)
         raw2 = bench_raw(url, args.batch, args.raw_entries)  # the load may drift: bracket
         redis.Redis.from_url(url).flushall()
-        packed = bench_loop(url, "bp", args.loop_items, args.batch, True, args.warmup,
+        packed = bench_loop(url, "bp", args.packed_items, args.batch, True, args.warmup,
                             args.seconds, False, 50_000)
         mem = bench_memory(url, "bm", args.items, args.batch)
     raw_rate = (raw + raw2) / 2

@@ -162,3 +162,28 @@ def test_pack_fast_path_equals_element_by_element_path(monkeypatch: pytest.Monke
     slow = decode_answers(S, entry)
     assert fast.answers == slow.answers and fast.aids == slow.aids
     assert fast.origins == slow.origins and not fast.dead and len(fast.answers) == 300
+
+
+def _raw(entries: list) -> list:
+    """The same entries as a raw XREADGROUP reply gives them: [id, [f, v, ...]]."""
+    return [[eid, [x for kv in f.items() for x in kv] if f else None] for eid, f in entries]
+
+
+def test_raw_replies_decode_like_parsed_ones() -> None:
+    """The worker reads replies raw; every layout decodes as the (id, dict) form does."""
+    usual = [_e(i, a=f"k{i}", b=f"k{i + 1}", same=str(i % 2), source=f"s{i % 3}", qid=str(i))
+             for i in range(50)]
+    other_order = [_e(60, qid="9", same="1", b="x", a="y", source="s"), _e(61, a="p", b="q",
+                                                                            same="0", aid="z")]
+    packed = [(b"70-0", {b"pack": pack_answers([Answer("m", "n", True, "s", "3")])})]
+    bad = [_e(80, a="p", b="p", same="1"), (b"81-0", {})]
+    for batch in (usual, usual + other_order, usual + packed + bad, bad + usual):
+        raw, parsed = decode_answers(S, _raw(batch)), decode_answers(S, batch)
+        assert raw.answers == parsed.answers and raw.aids == parsed.aids
+        assert raw.origins == parsed.origins and raw.missing == parsed.missing
+        assert [(d.reason, d.origin, d.fields) for d in raw.dead] == [
+            (d.reason, d.origin, d.fields) for d in parsed.dead]
+    items = [_e(1, key="k1"), _e(2, key="k2", side="north"), (b"3-0", {}), _e(4, side="x")]
+    raw, parsed = decode_items(S, _raw(items)), decode_items(S, items)
+    assert raw.items == parsed.items == [("k1", None), ("k2", "north")]
+    assert raw.missing == parsed.missing == 1 and len(raw.dead) == len(parsed.dead) == 1

@@ -58,7 +58,23 @@ _CTRL_S = CONTROL_CHARS
 _CTRL_NO_NUL = re.compile("[\x01-\x1f\x7f-\x9f]")  # NUL is the fast path's separator
 
 Entry = tuple[bytes, dict[bytes, bytes]]
+# The worker reads XREADGROUP replies raw (see ``worker.read_streams``): an entry is then
+# ``[entry_id, [field, value, field, value, ...]]`` (or ``[entry_id, None]`` for a pending
+# entry whose content was deleted). Every decoder here takes either form.
+RawEntry = Any
 Ref = bytes | tuple[bytes, int]
+
+_PLAIN_LAYOUT = [b"a", b"b", b"same", b"source", b"qid"]  # field order of most producers
+
+
+def as_fields(entries: Sequence[Any]) -> list[Entry]:
+    """Entries in the ``(entry_id, {field: value})`` form, whichever form they came in."""
+    out: list[Entry] = []
+    for eid, f in entries:
+        if type(f) is list:
+            f = dict(zip(f[0::2], f[1::2]))  # noqa: B905 - Redis always sends pairs
+        out.append((eid, f or {}))
+    return out
 
 
 def origin(stream: str, ref: Ref) -> str:
@@ -156,7 +172,7 @@ def decode_items(stream: str, entries: Sequence[Entry]) -> Decoded:
     """Turn ``{NS}:items`` entries into ``(key, side)`` pairs and dead letters."""
     out = Decoded()
     items, origins, dead = out.items, out.origins, out.dead
-    for eid, fields in entries:
+    for eid, fields in as_fields(entries):
         if not fields:
             out.missing += 1
             continue
@@ -186,7 +202,25 @@ def _fast_answers(entries: Sequence[Entry], out: Decoded) -> bool:
     texts: list[bytes] = []
     rows = []
     empty = b""
+    layout = _PLAIN_LAYOUT
     for eid, f in entries:
+        if type(f) is list:  # a raw reply: the usual field order is read by position
+            if len(f) == 10 and f[0::2] == layout:
+                ra, rb, rs, src, qid = f[1], f[3], f[5], f[7], f[9]
+                aid = None
+                if ra == rb or (rs != b"1" and rs != b"0"):
+                    return False
+                if not (0 < len(ra) <= MAX_KEY_BYTES and 0 < len(rb) <= MAX_KEY_BYTES
+                        and 0 < len(src) <= MAX_SOURCE_BYTES and 0 < len(qid) <= MAX_ID_BYTES):
+                    return False
+                texts += (ra, rb, src, qid, empty)
+                rows.append((eid, rs == b"1", True, False))
+                continue
+            if not f or len(f) % 2:
+                return False
+            f = dict(zip(f[0::2], f[1::2], strict=True))
+        elif not f:
+            return False
         ra, rb, rs = f.get(b"a"), f.get(b"b"), f.get(b"same")
         if ra is None or rb is None or ra == rb or (rs != b"1" and rs != b"0"):
             return False
@@ -235,7 +269,7 @@ def decode_answers(stream: str, entries: Sequence[Entry]) -> Decoded:
     if _fast_answers(entries, out):
         return out
     answers, aids, origins, dead = out.cols, out.aids, out.origins, out.dead
-    for eid, fields in entries:
+    for eid, fields in as_fields(entries):
         if not fields:
             out.missing += 1
             continue
