@@ -55,7 +55,7 @@ sys.path.insert(0, ROOT)
 from streamgroup.embedded import EmbeddedRedis  # noqa: E402
 from streamgroup.keys import GROUP, Keys  # noqa: E402
 from streamgroup.sim.crowd import Crowd  # noqa: E402
-from streamgroup.stream.commit import XADD_MANY  # noqa: E402
+from streamgroup.stream.commit import xadd_script  # noqa: E402
 
 FILL_ITEMS = """
 for i = tonumber(ARGV[1]), tonumber(ARGV[2]) do
@@ -68,6 +68,9 @@ for i = tonumber(ARGV[1]), tonumber(ARGV[2]) do
              'same', tostring(i % 2), 'source', 'src-' .. (i % 50), 'qid', tostring(i))
 end
 """
+
+
+ANSWER_SCRIPT = xadd_script(("a", "b", "same", "source", "qid"))
 
 
 def key_format(n: int) -> str:
@@ -194,8 +197,7 @@ class Feeder:
             vals: list[Any] = [None] * (5 * len(qid))
             vals[0::5], vals[1::5], vals[3::5], vals[4::5] = a, b, src, qid
             vals[2::5] = ["1" if x else "0" for x in same]
-            cmds.append(("EVAL", XADD_MANY, 1, self.k.answers, 0, 5, "a", "b", "same",
-                         "source", "qid", *vals))
+            cmds.append(("EVAL", ANSWER_SCRIPT, 1, self.k.answers, 0, *vals))
         conn.send_packed_command([b"".join(hiredis.pack_command(c) for c in cmds)])
         for _ in cmds:
             conn.read_response()

@@ -17,7 +17,7 @@ import msgpack
 import numpy as np
 
 from streamgroup.keys import GROUP, MAX_PACK_ANSWERS, Keys
-from streamgroup.stream.commit import XADD_MANY
+from streamgroup.stream.commit import xadd_script
 from tests.faultkit import Result, WorkerProc, consumed, probe, server, wait_for
 from tests.redisproc import free_port
 
@@ -101,7 +101,7 @@ def flood(n_answers: int = 1_000_000, n_items: int = 5_000, max_outstanding: int
             names = ("a", "b", "same", "source")
             for lo in range(0, len(payloads), 5000):
                 vals = [row[n] for row in payloads[lo:lo + 5000] for n in names]
-                r.eval(XADD_MANY, 1, K.answers, 0, len(names), *names, *vals)
+                r.eval(xadd_script(names), 1, K.answers, 0, *vals)
         write_s = time.monotonic() - t0
         peak = {"rss": 0, "redis": 0, "pending": 0, "lag": 0, "outstanding": float(first_out)}
         lag_at_end_of_burst = _lag(r) + int(r.xpending(K.answers, GROUP)["pending"])
