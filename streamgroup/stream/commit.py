@@ -12,9 +12,10 @@ Order inside the transaction (MULTI/EXEC: other clients see all of it or none of
 7. ``XACK`` of every consumed input entry, then a trim of the input stream (below).
 
 Many entries of one stream (questions, decisions) are appended by one ``EVAL`` of a small
-script (:func:`xadd_script`) queued inside the same MULTI/EXEC: one command instead of hundreds, which is most
-of the cost of a commit when done from Python. ``EVAL`` (not ``EVALSHA``) so a script
-cache emptied by a Redis restart can never fail one command of a transaction.
+script (:func:`xadd_script`) queued inside the same MULTI/EXEC: one command instead of
+hundreds, which is most of the cost of a commit when done from Python. ``EVAL`` (not
+``EVALSHA``) so a script cache emptied by a Redis restart can never fail one command of a
+transaction.
 
 Trimming the inputs: after the XACK, a small script (``ACK_TRIM``) trims the input stream
 with ``XTRIM MINID`` just below the oldest entry that any consumer group on it still needs
