@@ -77,8 +77,8 @@ class IntakeMixin:
         names, qids, flags = answers.source, answers.qid, answers.same
         if not (len(b_keys) == len(names) == len(qids) == len(flags) == count):
             raise EngineInputError("answer columns of different lengths")
-        ia = self.keys.lookup(a_keys)
-        ib = self.keys.lookup(b_keys)
+        both = self.keys.lookup(a_keys + b_keys)  # one call: half the fixed costs
+        ia, ib = both[:count], both[count:]
         bad: dict[int, str] = {}
         for pos in np.nonzero((ia < 0) | (ib < 0))[0].tolist():
             err = ((ia[pos] < 0 and validate.item_key(a_keys[pos], "a"))
@@ -108,10 +108,10 @@ class IntakeMixin:
                   else [pos for pos, q in enumerate(qids) if q is not None])
         qn = np.full(len(with_q), -1, dtype=np.int64)
         if with_q:
-            texts = [qids[pos] for pos in with_q]
+            texts = qids if len(with_q) == count else [qids[pos] for pos in with_q]
             if (set(map(type, texts)) == {str} and all(map(str.isdigit, texts))
                     and all(map(str.isascii, texts)) and max(map(len, texts)) < 19):
-                qn = np.array(texts).astype(np.int64)
+                qn = np.fromiter(map(int, texts), dtype=np.int64, count=len(texts))
             else:
                 for k, q in enumerate(texts):
                     err = validate.qid(q)

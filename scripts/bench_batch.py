@@ -1,0 +1,143 @@
+"""Where the worker's CPU goes per answer, in-process and without Redis.
+
+    python scripts/bench_batch.py --json            # plain one-answer entries
+    python scripts/bench_batch.py --packed --json   # packed entries of 10,000 answers
+
+A closed loop like the stream benchmark's, but with no server: a simulated crowd answers
+the engine's questions, each batch of answer entries (built as the worker reads them raw
+from XREADGROUP) goes through ``stream.batch.process`` and ``stream.commit.build_commit``,
+and the commands are packed to bytes as ``commit.send`` would. Timings are per answer,
+after a warm-up past the bootstrap, with a breakdown by phase (the phases are wrapped with
+a timer, which costs a little itself). Figures move with the machine's load: compare runs
+made side by side.
+"""
+
+from __future__ import annotations
+
+import argparse
+import collections
+import json
+import os
+import sys
+import time
+from collections.abc import Callable
+from typing import Any
+
+import hiredis
+import msgpack
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+sys.path.insert(0, ROOT)
+
+import streamgroup.core.engine as engine_mod  # noqa: E402
+import streamgroup.stream.batch as batch_mod  # noqa: E402
+import streamgroup.stream.commit as commit_mod  # noqa: E402
+import streamgroup.stream.state as state_mod  # noqa: E402
+from streamgroup.core.types import EngineConfig  # noqa: E402
+from streamgroup.keys import GROUP, Keys  # noqa: E402
+from streamgroup.sim.crowd import Crowd  # noqa: E402
+
+PHASES = collections.Counter[str]()
+
+
+def _timed(owner: Any, name: str) -> None:
+    fn: Callable[..., Any] = getattr(owner, name)
+
+    def wrapper(*args: Any, **kw: Any) -> Any:
+        t = time.perf_counter()
+        try:
+            return fn(*args, **kw)
+        finally:
+            PHASES[name] += time.perf_counter() - t
+
+    setattr(owner, name, wrapper)
+
+
+def main(argv: list[str] | None = None) -> int:
+    p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    p.add_argument("--items", type=int, default=100_000)
+    p.add_argument("--batch", type=int, default=500, help="answer entries per batch (plain)")
+    p.add_argument("--packed", action="store_true", help="packed answers and questions")
+    p.add_argument("--rounds", type=int, default=400, help="measured batches")
+    p.add_argument("--json", action="store_true")
+    args = p.parse_args(argv)
+    for owner, name in ((batch_mod, "decode_answers"), (state_mod.WorkerState,
+                        "apply_answer_columns"), (engine_mod.Engine, "plan_columns"),
+                        (engine_mod.Engine, "take_update_columns"), (engine_mod.Engine,
+                        "_check_answers"), (engine_mod.Engine, "_decide"),
+                        (engine_mod.Engine, "_refit"), (state_mod.Batch, "journal_bytes")):
+        _timed(owner, name)
+    keys = Keys("bench")
+    crowd = Crowd(args.items, delta=0.6, sources=[0.6] * 50, seed=1)
+    per_batch = 20_000 if args.packed else args.batch
+    cfg = EngineConfig(max_outstanding=max(20 * per_batch, 10_000))
+    st = state_mod.WorkerState.fresh(cfg, "bench", 100_000)
+    seq = iter(range(1, 1 << 62))
+    now = 1_000_000
+    pending: list[Any] = []
+    for lo in range(0, args.items, 500):
+        items = [[f"{next(seq)}-0".encode(), [b"key", k.encode()]]
+                 for k in crowd.keys[lo:lo + 500]]
+        pending += batch_mod.process(st, keys.items, items, keys.answers, [], now).questions.rows()
+    totals = {"answers": 0, "process": 0.0, "build": 0.0, "pack": 0.0}
+
+    def one_round() -> None:
+        nonlocal pending, now
+        qs, pending = pending[:per_batch], pending[per_batch:]
+        same, src = crowd.answer_keys([q.a for q in qs], [q.b for q in qs])
+        if args.packed:
+            entries = []
+            for i in range(0, len(qs), 10_000):
+                rows = [{"a": q.a, "b": q.b, "same": s, "source": n, "qid": q.qid} for q, s, n
+                        in zip(qs[i:i + 10_000], same[i:i + 10_000], src[i:i + 10_000],
+                               strict=True)]
+                entries.append([f"{next(seq)}-0".encode(),
+                                [b"pack", msgpack.packb(rows, use_bin_type=True)]])
+        else:
+            entries = [[f"{next(seq)}-0".encode(),
+                        [b"a", q.a.encode(), b"b", q.b.encode(), b"same", b"1" if s else b"0",
+                         b"source", n.encode(), b"qid", q.qid.encode()]]
+                       for q, s, n in zip(qs, same, src, strict=True)]
+        now += 50
+        t0 = time.perf_counter()
+        out = batch_mod.process(st, keys.items, [], keys.answers, entries, now)
+        t1 = time.perf_counter()
+        plan = commit_mod.build_commit(
+            keys, commit_mod.Caps(), records=out.records, decisions=out.decisions,
+            questions=out.questions, dead=[], journal=out.batch.journal_bytes(),
+            snapshot=None, meta=st.meta_fields(), acks={keys.answers: [e[0] for e in entries]},
+            group=GROUP, pack_questions=args.packed)
+        t2 = time.perf_counter()
+        b"".join([hiredis.pack_command(c) for c in plan.commands])
+        t3 = time.perf_counter()
+        totals["answers"] += len(qs)
+        totals["process"] += t1 - t0
+        totals["build"] += t2 - t1
+        totals["pack"] += t3 - t2
+        pending += out.questions.rows()
+
+    warm = max(20, args.rounds // 2) if not args.packed else 20
+    for _ in range(warm):
+        one_round()
+    PHASES.clear()
+    totals.update(answers=0, process=0.0, build=0.0, pack=0.0)
+    for _ in range(args.rounds if not args.packed else max(10, args.rounds // 20)):
+        one_round()
+    n = max(1, totals["answers"])
+    result = {
+        "mode": "packed" if args.packed else "plain",
+        "answers": totals["answers"],
+        "us_per_answer": round((totals["process"] + totals["build"] + totals["pack"]) / n * 1e6,
+                               2),
+        "process_us": round(totals["process"] / n * 1e6, 2),
+        "build_commit_us": round(totals["build"] / n * 1e6, 2),
+        "pack_command_us": round(totals["pack"] / n * 1e6, 2),
+        "phases_us": {k: round(v / n * 1e6, 2) for k, v in PHASES.most_common()},
+        "items": st.engine.stats()["items"],
+    }
+    print(json.dumps(result, indent=2) if args.json else result)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
