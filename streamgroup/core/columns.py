@@ -54,3 +54,15 @@ def uniq(x: np.ndarray) -> np.ndarray:
         return np.asarray(x, dtype=np.int64)
     y = np.sort(x)
     return y[np.r_[True, y[1:] != y[:-1]]]
+
+
+def union_sorted(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Union of two sorted arrays of distinct values, in time linear in ``len(a)`` plus
+    ``len(b) log len(a)`` (one insert instead of sorting both again)."""
+    if len(b) == 0:
+        return np.asarray(a, dtype=np.int64)
+    if len(a) == 0:
+        return np.asarray(b, dtype=np.int64)
+    pos = np.searchsorted(a, b)
+    known = a[np.minimum(pos, len(a) - 1)] == b
+    return np.insert(a, pos[~known], b[~known]).astype(np.int64, copy=False)

@@ -6,7 +6,7 @@ import numpy as np
 
 from . import planner
 from .codes import ASKING, CHECK, PLACE, Q_EXPIRED, Q_OPEN, UNRESOLVED, WAITING, WHY_NAMES
-from .columns import uniq
+from .columns import union_sorted, uniq
 from .ledger import UNPLACED
 from .sprt import weight
 from .types import Question, QuestionColumns
@@ -55,10 +55,25 @@ class QuestionsMixin:
         if room <= 0 or len(self.pool) == 0:
             return QuestionColumns.empty()
         cfg = self.config
-        parts = [self.carry, *self.nudged]
+        fresh = uniq(np.concatenate(self.nudged)) if self.nudged else self.carry[:0]
         self.nudged = []
-        cand = uniq(np.concatenate(parts)) if parts else np.zeros(0, dtype=np.int64)
-        targets, self.carry = self._serve(cand, room)
+        # The carry (sorted, distinct) can hold every waiting item while the outstanding
+        # cap binds; it is served a prefix at a time, so a round costs time in proportion
+        # to its room and its nudges, not to the carry (the same targets as serving it whole).
+        cand = union_sorted(self.carry, fresh)
+        served: list[np.ndarray] = []
+        got, pos = 0, 0
+        self.carry = cand[:0]
+        while pos < len(cand):
+            chunk = cand[pos:pos + max(4 * (room - got), 1024)]
+            pos += len(chunk)
+            t, rest = self._serve(chunk, room - got)
+            served.append(t)
+            got += len(t)
+            if got >= room:
+                self.carry = np.concatenate([rest, cand[pos:]])
+                break
+        targets = np.concatenate(served) if served else cand[:0]
         n = len(self.keys)
         while len(targets) < room and self.cursor < n:
             end = min(n, self.cursor + max(4 * (room - len(targets)), 1024))
