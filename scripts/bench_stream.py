@@ -26,7 +26,8 @@ port, persistence off), with the same batch size everywhere:
 
 The machine is shared (2 cores for Redis, the worker, the adapter and the lookup process,
 and whatever else runs there), so the rates move with the load: ``worker_cpu_share_*``
-says how much of a core the worker got, and ``*_per_cpu_s`` divides by it (the rate a
+says how much of a core the worker got (``redis_cpu_share_*`` and ``adapter_cpu_share_*``
+what Redis and the crowd adapter took), and ``*_per_cpu_s`` divides by it (the rate a
 dedicated core would give, if the worker is the bottleneck). ``exec_ms_*`` is the mean
 time Redis spends inside one batch transaction (lookups wait behind it), and
 ``lookup_idle_p99_ms`` is the lookup latency of this machine with no worker running.
@@ -266,17 +267,26 @@ def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
             [sys.executable, os.path.abspath(__file__), "--lookup-child", url, ns, str(n),
              str(seconds), "500"], stdout=subprocess.PIPE)
     r.config_resetstat()
+
+    def redis_cpu() -> float:
+        info = r.info("cpu")
+        return float(info["used_cpu_user"]) + float(info["used_cpu_sys"])
+
+    r0, f0 = redis_cpu(), time.process_time()
     e0, a0, c0, t0 = consumed(), applied(), cpu_seconds(proc.pid), time.monotonic()
     q0 = feeder.questions
     t_end = t0 + seconds
     while time.monotonic() < t_end:
         feeder.step()
     e1, a1, c1, t1 = consumed(), applied(), cpu_seconds(proc.pid), time.monotonic()
+    r1, f1 = redis_cpu(), time.process_time()
     stats = r.info("commandstats")
     out: dict[str, Any] = {
         "entries_per_s": (e1 - e0) / (t1 - t0) if not pack else None,
         "answers_per_s": (a1 - a0) / (t1 - t0),
         "worker_cpu_share": (c1 - c0) / (t1 - t0),
+        "redis_cpu_share": (r1 - r0) / (t1 - t0),
+        "adapter_cpu_share": (f1 - f0) / (t1 - t0),
         "answers_in_window": a1 - a0,
         "questions_per_answer": (feeder.questions - q0) / max(1, a1 - a0),
         # mean time Redis spends inside one batch transaction (it serves nothing else then)
@@ -371,6 +381,11 @@ def main(argv: list[str] | None = None) -> int:
         "packed_answers_per_cpu_s": round(packed["answers_per_s"] / packed["worker_cpu_share"]),
         "worker_cpu_share_plain": round(plain["worker_cpu_share"], 2),
         "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
+        # the rest of the two cores: Redis, and the simulated crowd adapter (this process)
+        "redis_cpu_share_plain": round(plain["redis_cpu_share"], 2),
+        "adapter_cpu_share_plain": round(plain["adapter_cpu_share"], 2),
+        "redis_cpu_share_packed": round(packed["redis_cpu_share"], 2),
+        "adapter_cpu_share_packed": round(packed["adapter_cpu_share"], 2),
         "items": mem["items"],
         "worker_bytes_per_item": round(mem["worker_bytes_per_item"], 1),
         "redis_bytes_per_item": round(mem["redis_bytes_per_item"], 1),

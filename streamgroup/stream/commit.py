@@ -255,19 +255,21 @@ def build_commit(
     return CommitPlan(cmds)
 
 
-def send(client: redis.Redis, plan: CommitPlan) -> None:
+def send(client: redis.Redis, plan: CommitPlan, then: Command | None = None) -> None:
     """Write the plan as one MULTI/EXEC without waiting for the reply (see :func:`receive`).
 
-    Packed and sent in one write; replies are read straight from the connection, since
-    redis-py's pipeline costs several microseconds per command. Nothing else may use the
-    connection until :func:`receive` has run.
+    Packed and sent in one write (with ``then`` behind it, if given: its reply follows the
+    transaction's, and the caller reads it after :func:`receive`); replies are read straight
+    from the connection, since redis-py's pipeline costs several microseconds per command.
+    Nothing else may use the connection until those replies have been read.
     """
     conn = client.connection
     if conn is None:
         raise RuntimeError("the worker's client must be a single-connection client")
     blob = b"".join([hiredis.pack_command(("MULTI",)),
                      *(hiredis.pack_command(c) for c in plan.commands),
-                     hiredis.pack_command(("EXEC",))])
+                     hiredis.pack_command(("EXEC",)),
+                     *((hiredis.pack_command(then),) if then is not None else ())])
     conn.send_packed_command([blob], check_health=False)
 
 

@@ -65,26 +65,35 @@ def _answers_in(entry: Any) -> int:
     return 1  # not an array: the codec will reject it
 
 
-def read_streams(client: redis.Redis, consumer: str, streams: tuple[str, ...], ids: str,
-                 count: int, block: int | None) -> list[Any]:
-    """One XREADGROUP with the reply left raw: ``[(stream, [[id, [f, v, ...]], ...]), ...]``.
+def read_command(consumer: str, streams: tuple[str, ...], ids: str, count: int,
+                 block: int | None) -> tuple[Any, ...]:
+    """The XREADGROUP of one batch over ``streams``."""
+    args: list[Any] = ["XREADGROUP", "GROUP", GROUP, consumer, "COUNT", count]
+    if block is not None:
+        args += ["BLOCK", block]
+    return (*args, "STREAMS", *streams, *([ids] * len(streams)))
+
+
+def read_reply(reply: Any) -> list[Any]:
+    """A raw XREADGROUP reply as ``[(stream, [[id, [f, v, ...]], ...]), ...]``.
 
     redis-py would turn every entry into a tuple and a dict; the codec reads the flat field
     lists directly (the usual field order by position), which is most of the saving.
     (RESP3 replies are a map of stream to entries, RESP2 ones a list of pairs.)
     """
-    args: list[Any] = ["XREADGROUP", "GROUP", GROUP, consumer, "COUNT", count]
-    if block is not None:
-        args += ["BLOCK", block]
-    args += ["STREAMS", *streams, *([ids] * len(streams))]
-    conn = client.connection  # the worker's client holds one connection (see commit.send)
-    if conn is None:
-        raise RuntimeError("the worker's client must be a single-connection client")
-    conn.send_command(*args, check_health=False)
-    reply = conn.read_response()
     if not reply:
         return []
     return list(reply.items()) if isinstance(reply, dict) else reply
+
+
+def read_streams(client: redis.Redis, command: tuple[Any, ...]) -> list[Any]:
+    """Send one XREADGROUP on the worker's connection and return its raw reply."""
+    conn = client.connection  # the worker's client holds one connection (see commit.send)
+    if conn is None:
+        raise RuntimeError("the worker's client must be a single-connection client")
+    conn.send_command(*command, check_health=False)
+    return read_reply(conn.read_response())
+
 
 _CONN_ERRORS = (redis.ConnectionError, redis.TimeoutError, ConnectionError, TimeoutError)
 
@@ -117,6 +126,7 @@ class Worker:
         self._stop = False
         self._held: _Held | None = None
         self._backlog: list[Any] = []  # answer entries read but not yet processed
+        self._ahead: list[Any] | None = None  # the next batch, read ahead with a commit
         self._max_answers = max(settings.batch, BATCH_ANSWERS)
         self._pending_first = True
         self._next_claim = 0.0
@@ -147,6 +157,8 @@ class Worker:
             http = self._start_http()
             self.start()
             while not self._stop:
+                self.step()
+            while self._ahead is not None:  # read ahead before the stop: in hand, so apply it
                 self.step()
             self._final_snapshot()
             self._log.info("worker stopped", reason="stop requested", batches=self.batches)
@@ -203,6 +215,7 @@ class Worker:
         self.client = client
         self._held = None
         self._backlog = []
+        self._ahead = None
         self._pending_first = True
         self._next_claim = 0.0
         now = self.clock()
@@ -268,6 +281,7 @@ class Worker:
             if self.metrics is not None:
                 self.metrics.redis_retries.inc()
             self._held = None  # its outcome is unknown: the reload decides
+            self._ahead = None
             self._log.warning("connection lost; reloading state" if isinstance(
                 exc, _CONN_ERRORS) else "redis refused a write; reloading state", error=str(exc))
             if self.health is not None:
@@ -294,17 +308,24 @@ class Worker:
 
         A built commit is sent only after the next read (which never blocks while a commit
         is held), and its reply is read after the next batch has been processed: Redis and
-        Python work at the same time. If the reply is an error or never comes, the batch
+        Python work at the same time. The XREADGROUP of the batch after that goes out in
+        the same write, behind the commit, and its reply is read (and kept) at the end of
+        the turn, so the next turn starts without a round trip; the connection holds no
+        unread reply between turns. If a reply is an error or never comes, the batch
         processed meanwhile is thrown away with the rest of the in-memory state, so the
-        order "commit k before k+1" and the exactly-once effect are unchanged.
+        order "commit k before k+1" and the exactly-once effect are unchanged (entries read
+        ahead and not processed stay pending and are read again with id 0).
         """
         assert self.client is not None and self.state is not None
         client, keys, s = self.client, self.keys, self.settings
+        streams = (keys.items, keys.answers)
         now = self.clock()
-        if self._held is None and not self._pending_first and now >= self._next_claim:
-            self._claim(now)
+        if not self._pending_first and now >= self._next_claim:
+            self._flush()  # claims use the connection: nothing of ours may be in flight
+            self._claim(now)  # (a batch read ahead is in our pending list: not lost)
         if self._pending_first:
             self._flush()  # read id 0 only once nothing of ours is in flight
+            self._ahead = None  # still pending: the id-0 reads return it
             ids, block = "0", None
         else:
             ids = ">"
@@ -315,9 +336,12 @@ class Worker:
         if self._backlog:  # big packs read earlier: finish them before reading more
             answers = self._take_backlog()
         else:
-            reply = read_streams(client, s.consumer_name, (keys.items, keys.answers), ids,
-                                 s.batch, block)
-            for name, entries in reply or ():
+            if self._ahead is not None:
+                reply, self._ahead = self._ahead, None
+            else:
+                reply = read_streams(client, read_command(s.consumer_name, streams, ids,
+                                                          s.batch, block))
+            for name, entries in reply:
                 if name == keys.items.encode():
                     items = entries
                 else:
@@ -327,8 +351,11 @@ class Worker:
                 answers = self._take_backlog()
         n = len(items) + len(answers)
         held, self._held = self._held, None
+        ahead = (held is not None and n > 0 and not self._pending_first and not self._stop
+                 and not self._backlog)
         if held is not None:
-            send(client, held.plan)
+            send(client, held.plan, read_command(s.consumer_name, streams, ">", s.batch,
+                                                 None) if ahead else None)
         built = None
         if n == 0 and self._pending_first:
             self._pending_first = False
@@ -339,6 +366,9 @@ class Worker:
             built = self._build(out, items, answers, now, t0)
         if held is not None:
             receive(client, held.plan)
+            if ahead:
+                assert client.connection is not None
+                self._ahead = read_reply(client.connection.read_response()) or None
             self._done(held)
         if built is not None:
             self._held = built
@@ -438,6 +468,7 @@ class Worker:
             self._log.info("claimed idle entries of other consumers", entries=claimed)
             self._pending_first = True
             self._backlog = []  # still pending: the id-0 reads return them again
+            self._ahead = None
 
 @dataclass
 class _Held:
