@@ -237,6 +237,28 @@ def test_idle_entries_of_a_dead_consumer_are_claimed(redis_url: str) -> None:
     w.close()
 
 
+def test_idle_entries_are_claimed_while_the_worker_is_busy(redis_url: str) -> None:
+    """Claims run on schedule under a steady load too, not only once the input runs dry."""
+    r = redis.Redis.from_url(redis_url)
+    total = 20_000
+    push_items(r, [f"shard-{i:06d}" for i in range(total)])
+    w = Worker(settings(redis_url, consumer="w1", claim_idle=0.05, batch=50))
+    assert w.run_until(lambda wk: int(meta(r).get("items_applied", 0)) >= 500, 30)
+    grabbed = r.xreadgroup(GROUP, "ghost", {K.items: ">"}, count=5)  # then it dies
+    keys = [f[b"key"].decode() for _, f in grabbed[0][1]]
+    assert len(keys) == 5
+
+    def ghosts_placed(wk: Worker) -> bool:
+        return wk.state is not None and all(wk.state.engine.record(k) is not None
+                                            for k in keys)
+
+    assert w.run_until(ghosts_placed, 30)
+    assert int(meta(r)["items_applied"]) < total  # long before the stream ran dry
+    assert w.run_until(lambda wk: int(meta(r)["items_applied"]) == total, 60)
+    assert r.xpending(K.items, GROUP)["pending"] == 0
+    w.close()
+
+
 def test_lost_connection_loses_nothing(redis_url: str) -> None:
     """Killing the worker's connection mid-run: it reconnects, reloads and counts all once."""
     r = redis.Redis.from_url(redis_url)
