@@ -150,7 +150,7 @@ def bench_raw(url: str, batch: int, entries: int) -> float:
 class Feeder:
     """A fast simulated crowd adapter: reads questions, writes one answer per question."""
 
-    def __init__(self, url: str, ns: str, crowd: Crowd, pack: bool) -> None:
+    def __init__(self, url: str, ns: str, crowd: Crowd, pack: bool, batch: int) -> None:
         self.r = redis.Redis.from_url(url, single_connection_client=True)
         self.k = Keys(ns)
         self.crowd = crowd
@@ -158,9 +158,10 @@ class Feeder:
         self.r.xgroup_create(self.k.questions, "crowd", id="0", mkstream=True)
         self.names = np.array(crowd.source_names, dtype=object)
         self.questions = 0  # questions read (and answered) so far
-        # entries per read: packed ones hold many questions; plain reads stay the size of a
-        # worker batch so that no single command of the adapter holds Redis up for long
-        self.count = 100 if pack else 1000
+        # entries per read: packed ones hold many questions; plain reads are the size of a
+        # worker batch, so that no command of the adapter holds Redis up longer than the
+        # worker's own
+        self.count = 100 if pack else batch
 
     def step(self) -> int:
         reply = self.r.xreadgroup("crowd", "c", {self.k.questions: ">"}, count=self.count,
@@ -250,7 +251,7 @@ def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
     # every item registered before the crowd starts: the window then holds answers only
     wait_until(lambda: int(r.hget(k.meta, "items_applied") or 0) >= n, 600,
                "the worker to register the items")
-    feeder = Feeder(url, ns, crowd, pack)
+    feeder = Feeder(url, ns, crowd, pack, batch)
 
     def consumed() -> int:
         return int(r.hget(k.meta, "entries:answers") or 0)
