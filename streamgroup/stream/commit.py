@@ -56,12 +56,22 @@ def assign_value(r: Record) -> bytes:
 
 
 # assign_values builds the same maps for a whole batch with numpy: a prefix per (side,
-# status) pair (map header, "side", "status", the "llr" key and the float64 marker), then a
-# fixed 38-byte tail: llr as big-endian float64, "answers" and "rev" as uint32 (marker
-# 0xce: valid msgpack for any reader, just not always the shortest form), "pinned".
-_TAIL = np.zeros(38, dtype=np.uint8)
-for _at, _raw in ((8, b"\xa7answers\xce"), (21, b"\xa3rev\xce"), (30, b"\xa6pinned")):
-    _TAIL[_at:_at + len(_raw)] = np.frombuffer(_raw, dtype=np.uint8)
+# status) pair (map header, "side", "status", the "llr" key and the float64 marker), then
+# llr as big-endian float64, then "answers", "rev" and "pinned". Each integer column takes
+# the shortest form that holds the batch's largest value (a positive fixint when all are
+# below 128, as msgpack itself would write them; else uint16 or uint32: valid msgpack for
+# any reader, just not always the shortest).
+_KEYS = {name: _packb(name) for name in ("answers", "rev", "pinned")}
+
+
+def _uint_column(values: np.ndarray) -> tuple[bytes, int, str]:
+    """(marker, width, numpy dtype) for a column of non-negative integers."""
+    top = int(values.max()) if len(values) else 0
+    if top < 128:
+        return b"", 1, ">u1"
+    if top < 1 << 16:
+        return b"\xcd", 2, ">u2"
+    return b"\xce", 4, ">u4"
 
 
 def _prefix(side: str | None, status: str) -> bytes:
@@ -77,14 +87,29 @@ def assign_values(rc: RecordColumns) -> list[bytes]:
     names = (None, *rc.labels)  # slot -1, 0, 1
     prefixes = [_prefix(side, status) for side in names for status in rc.status_names]
     code = (rc.side.astype(np.int64) + 1) * len(rc.status_names) + rc.status
-    tail = np.tile(_TAIL, (n, 1))
-    tail[:, 0:8] = rc.llr.astype(">f8").view(np.uint8).reshape(n, 8)
-    tail[:, 17:21] = rc.answers.astype(">u4").view(np.uint8).reshape(n, 4)
-    tail[:, 26:30] = rc.rev.astype(">u4").view(np.uint8).reshape(n, 4)
-    tail[:, 37] = np.where(rc.pinned, 0xC3, 0xC2)
+    parts: list[tuple[bytes, np.ndarray | None, str]] = [(b"", rc.llr, ">f8")]
+    for key, col in (("answers", rc.answers), ("rev", rc.rev)):
+        marker, _, dtype = _uint_column(col)
+        parts.append((_KEYS[key] + marker, col, dtype))
+    parts.append((_KEYS["pinned"], None, ""))
+    width = sum(len(c) + (np.dtype(dt).itemsize if col is not None else 1)
+                for c, col, dt in parts)
+    tail = np.empty((n, width), dtype=np.uint8)
+    at = 0
+    for const, col, dtype in parts:
+        if const:
+            tail[:, at:at + len(const)] = np.frombuffer(const, dtype=np.uint8)
+            at += len(const)
+        if col is None:
+            tail[:, at] = np.where(rc.pinned, 0xC3, 0xC2)
+            at += 1
+        else:
+            size = np.dtype(dtype).itemsize
+            tail[:, at:at + size] = col.astype(dtype).view(np.uint8).reshape(n, size)
+            at += size
     blob = tail.tobytes()
-    return [prefixes[c] + blob[k:k + 38] for c, k in zip(code.tolist(), range(0, 38 * n, 38),
-                                                           strict=True)]
+    return [prefixes[c] + blob[k:k + width]
+            for c, k in zip(code.tolist(), range(0, width * n, width), strict=True)]
 
 
 QUESTION_FIELDS = ("qid", "a", "b", "why", "ts")
