@@ -108,9 +108,14 @@ class Keys:
         """Stream: periodic progress samples used by the report."""
         return self._k("history")
 
+    @property
+    def lease(self) -> str:
+        """String: which worker process holds the namespace (expires unless renewed)."""
+        return self._k("lease")
+
     def all(self) -> list[str]:
         return [
             self.items, self.answers, self.questions, self.decisions, self.assign,
             self.dead, self.epoch, self.snapshot, self.journal, self.meta, self.noise,
-            self.history,
+            self.history, self.lease,
         ]

@@ -52,6 +52,7 @@ class Settings:
     decisions_maxlen: int = 100_000
     dead_maxlen: int = 100_000
     history_every: float = 5.0  # seconds between progress samples in {NS}:history
+    lease_ttl: float = 15.0  # seconds a worker's hold on the namespace lasts unless renewed
 
     def __post_init__(self) -> None:
         def bad(name: str, why: str) -> ConfigError:
@@ -87,6 +88,9 @@ class Settings:
                 raise bad(name, "must be a positive number of seconds")
         if self.block_ms < 0:
             raise bad("block_ms", "must be >= 0")
+        if not (self.lease_ttl >= 2 * self.block_ms / 1000 and self.lease_ttl >= 0.1
+                ) or math.isinf(self.lease_ttl):
+            raise bad("lease_ttl", "must be at least 0.1 seconds and twice block_ms")
         if self.log_level.lower() not in ("debug", "info", "warning", "error"):
             raise bad("log_level", "must be debug, info, warning or error")
         if self.log_format not in ("auto", "json", "console"):

@@ -37,7 +37,10 @@ from tests.test_crash import consumed, final_view, recorded_input, write_input
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 FLAGS: dict[str, Any] = {"batch": 5, "block_ms": 50, "snapshot_every": 0.2, "consumer": "w1",
                          "metrics_addr": "", "seed": 1, "history_every": 3600,
-                         "log_format": "json"}
+                         "log_format": "json",
+                         # a killed worker's lease blocks a successor under another
+                         # consumer name until it expires: keep that wait short here
+                         "lease_ttl": 0.5}
 AOF = ("--appendonly", "yes", "--appendfsync", "always")
 DEBUG = ("--enable-debug-command", "yes")
 PARTS = ("assign", "meta", "stats", "decisions", "questions", "dead")

@@ -44,6 +44,8 @@ SETTING_HELP: dict[str, str] = {
     "consumer": "consumer name in the group (default: hostname-pid); keep it stable "
                 "across restarts so the worker rereads its own pending entries",
     "claim_idle": "seconds before entries pending at another (dead) consumer are claimed",
+    "lease_ttl": "seconds a worker's hold on the namespace lasts unless renewed (a second "
+                 "worker waits for it)",
     "pack_questions": "write questions as packed entries (field pack) for fast adapters",
     "snapshot_every": "seconds between engine snapshots in Redis",
     "metrics_addr": "HOST:PORT of /metrics, /healthz and /readyz; empty disables it",

@@ -3,7 +3,8 @@
 Exit codes: 0 after a requested stop; 2 a user mistake found before the worker starts
 (bad setting, unreachable Redis, metrics address taken); 3 the state in Redis is
 inconsistent (for example the namespace's data vanished): the worker refuses to start
-over silently; 1 an unexpected error (logged with its traceback).
+over silently; 4 another worker took the namespace's lease; 1 an unexpected error
+(logged with its traceback).
 
 Signals: the first SIGTERM or SIGINT asks the worker to stop (it commits the batch in hand
 within the grace period and exits 0); a second one exits at once. A hard exit is safe by

@@ -9,7 +9,8 @@ Order inside the transaction (MULTI/EXEC: other clients see all of it or none of
 5. the journal entry (``XADD {NS}:journal``) - or, when it is time, ``SET {NS}:snapshot``
    plus ``UNLINK {NS}:journal`` (the snapshot then covers this batch too);
 6. ``HSET {NS}:meta`` with absolute counter values (idempotent);
-7. ``XACK`` of every consumed input entry, then a trim of the input stream (below).
+7. ``XACK`` of every consumed input entry, then a trim of the input stream (below);
+8. the renewal of the worker's lease on the namespace (``stream/lease.py``).
 
 Many entries of one stream (questions, decisions) are appended by one ``EVAL`` of a small
 script (:func:`xadd_script`) queued inside the same MULTI/EXEC: one command instead of
@@ -227,8 +228,10 @@ def build_commit(
     group: str,
     pack_questions: bool,
     epoch: str | None = None,
+    lease: Command | None = None,
 ) -> CommitPlan:
-    """All commands of a batch's MULTI/EXEC, in the documented order."""
+    """All commands of a batch's MULTI/EXEC, in the documented order (``lease``, the
+    renewal of the worker's lease, goes last: its reply is the last of EXEC's)."""
     cmds: list[Command] = []
     if epoch is not None:
         cmds.append(("SET", keys.epoch, epoch))
@@ -277,6 +280,8 @@ def build_commit(
     for stream, ids in acks.items():
         if ids:
             cmds.append(("EVAL", ACK_TRIM, 1, stream, group, *ids))
+    if lease is not None:
+        cmds.append(lease)
     return CommitPlan(cmds)
 
 

@@ -16,11 +16,13 @@ or as soon as the journal has outgrown the last snapshot, the batch's transactio
 fresh snapshot and drops the journal instead.
 
 Exit codes of :meth:`Worker.run`: 0 after a requested stop, 1 after an unexpected error
-(logged with its traceback), 3 when the state in Redis is inconsistent (StateError).
+(logged with its traceback), 3 when the state in Redis is inconsistent (StateError), 4
+when another worker took the namespace's lease (``lease.py``).
 """
 
 from __future__ import annotations
 
+import contextlib
 import random
 import time
 from collections.abc import Callable
@@ -34,13 +36,13 @@ from ..errors import StateError
 from ..keys import GROUP, Keys
 from ..serve.metrics import WorkerMetrics
 from ..settings import Settings
-from . import recovery
+from . import lease, recovery
 from .batch import Outcome, process
 from .commit import Caps, CommitError, CommitPlan, build_commit, execute, receive, send
 from .progress import Progress
 from .state import WorkerState
 
-EXIT_OK, EXIT_ERROR, EXIT_STATE = 0, 1, 3
+EXIT_OK, EXIT_ERROR, EXIT_STATE, EXIT_LEASE = 0, 1, 3, 4
 BACKOFF_BASE = 0.1  # seconds; doubled per failed attempt, jittered, capped
 BACKOFF_CAP = 5.0
 IDLE_PLAN_EVERY = 1.0  # seconds between plan() calls while no entries arrive
@@ -139,6 +141,9 @@ class Worker:
         self._epoch: str | None = None  # the deployment epoch once loaded: reloads need it
         self.health: Any = None
         self.progress = Progress(settings, self.keys, self.caps.history)
+        self.holder = lease.holder_name(settings.consumer_name)  # this process's lease
+        self._lease_ms = int(settings.lease_ttl * 1000)
+        self._next_renew = 0.0
 
     # -- control ------------------------------------------------------------------------
     def request_stop(self) -> None:
@@ -166,6 +171,9 @@ class Worker:
         except StateError as exc:
             self._log.error("worker stopped", reason="inconsistent state", error=str(exc))
             return EXIT_STATE
+        except lease.LeaseLost as exc:
+            self._log.error("worker stopped", reason="lease lost", error=str(exc))
+            return EXIT_LEASE
         except _Stopped:
             self._log.info("worker stopped", reason="stop requested while reconnecting")
             return EXIT_OK
@@ -196,20 +204,33 @@ class Worker:
         self._with_backoff(self._recover)
 
     def close(self) -> None:
+        """Let go of the namespace (the lease, if this worker holds it) and of Redis."""
+        self._release_lease()
+        self._drop_client()
+
+    def _drop_client(self) -> None:
         if self.client is not None:
             self.client.close()
             self.client = None
 
     def _recover(self) -> None:
-        self.close()
+        self._drop_client()
         self.state = None
         client = recovery.connect(self.settings)
         client.ping()
         recovery.tune_socket(client)
-        t0 = time.monotonic()
-        # state first: after a data loss, refuse before writing anything (groups included)
-        self.state = recovery.load_state(client, self.keys, self.settings, self.clock,
-                                         expect_epoch=self._epoch)
+        try:
+            self._take_lease(client)
+            t0 = time.monotonic()
+            # state next: after a data loss, refuse before writing anything else (groups
+            # included), and leave nothing behind: the lease goes too
+            self.state = recovery.load_state(client, self.keys, self.settings, self.clock,
+                                             expect_epoch=self._epoch)
+        except BaseException:
+            with contextlib.suppress(Exception):
+                lease.release(client, self.keys, self.holder)
+            client.close()
+            raise
         self._epoch = self.state.epoch
         recovery.ensure_groups(client, self.keys)
         self.client = client
@@ -231,6 +252,40 @@ class Worker:
             self.progress.refresh_gauges(self.state, force=True)
         if self.health is not None:
             self.health.set_ready(True)
+
+    def _take_lease(self, client: redis.Redis) -> None:
+        """Hold the namespace before touching its state; wait while another worker does."""
+        said = 0.0
+        while True:
+            other = lease.take(client, self.keys, self.holder, self._lease_ms, same_name=True)
+            if other is None:
+                self._next_renew = time.monotonic() + self.settings.lease_ttl / 3
+                return
+            if time.monotonic() >= said:
+                self._log.warning("another worker holds the namespace; waiting for it",
+                                  holder=other, lease_ttl=self.settings.lease_ttl)
+                said = time.monotonic() + 30.0
+            self._sleep(min(1.0, self.settings.lease_ttl / 3))
+
+    def _lease_reply(self, result: list[Any]) -> None:
+        """Check the lease renewal that ends every batch transaction."""
+        other = lease.other_holder(result[-1]) if result else "nobody"
+        if other is not None:
+            raise lease.LeaseLost(f"worker {other!r} holds the namespace {self.settings.ns!r} "
+                                  "now; stopping (this one had stalled longer than "
+                                  "lease_ttl, or a second worker was started)")
+        self._next_renew = time.monotonic() + self.settings.lease_ttl / 3
+
+    def _renew_lease(self) -> None:
+        if self.client is not None and time.monotonic() >= self._next_renew:
+            self._lease_reply([self.client.execute_command(
+                *lease.take_command(self.keys, self.holder, self._lease_ms))])
+
+    def _release_lease(self) -> None:
+        if self.client is None:
+            return
+        with contextlib.suppress(Exception):  # best effort: it expires on its own
+            lease.release(self.client, self.keys, self.holder)
 
     def _with_backoff(self, fn: Callable[[], Any]) -> Any:
         attempt = 0
@@ -365,16 +420,18 @@ class Worker:
                           int(now * 1000))
             built = self._build(out, items, answers, now, t0)
         if held is not None:
-            receive(client, held.plan)
+            result = receive(client, held.plan)
             if ahead:
                 assert client.connection is not None
                 self._ahead = read_reply(client.connection.read_response()) or None
+            self._lease_reply(result)
             self._done(held)
         if built is not None:
             self._held = built
             if self._pending_first or self._stop:
                 self._flush()
         elif held is None:
+            self._renew_lease()
             self.progress.periodic(self.clock(), self.state, self.client)
         return n
 
@@ -400,7 +457,7 @@ class Worker:
         held, self._held = self._held, None
         if held is not None:
             assert self.client is not None
-            execute(self.client, held.plan)
+            self._lease_reply(execute(self.client, held.plan))
             self._done(held)
 
     def _done(self, held: _Held) -> None:
@@ -435,6 +492,7 @@ class Worker:
             snapshot=snapshot, meta=state.meta_fields(),
             acks={keys.items: [e[0] for e in items], keys.answers: [e[0] for e in answers]},
             group=GROUP, pack_questions=self.settings.pack_questions,
+            lease=lease.take_command(keys, self.holder, self._lease_ms),
         )
         return _Held(plan, out, now, t0)
 
@@ -447,8 +505,9 @@ class Worker:
             plan = build_commit(
                 self.keys, self.caps, records=None, decisions=[], questions=None, dead=[],
                 journal=None, snapshot=self.state.snapshot_bytes(int(self.clock() * 1000)),
-                meta=self.state.meta_fields(), acks={}, group=GROUP, pack_questions=False)
-            execute(self.client, plan)
+                meta=self.state.meta_fields(), acks={}, group=GROUP, pack_questions=False,
+                lease=lease.take_command(self.keys, self.holder, self._lease_ms))
+            self._lease_reply(execute(self.client, plan))
         except Exception as exc:  # nothing is lost: the journal still holds it all
             if not _transient(exc):
                 raise
