@@ -83,12 +83,16 @@ def fill_items(r: redis.Redis, stream: str, n: int, chunk: int = 50_000) -> None
         r.eval(FILL_ITEMS, 1, stream, lo, min(n, lo + chunk) - 1, key_format(n))
 
 
+WORKER_ROOT = ROOT  # --worker-root: run the worker from another checkout (before/after)
+
+
 def spawn_worker(url: str, ns: str, **flags: Any) -> subprocess.Popen[bytes]:
     args = [sys.executable, "-m", "streamgroup.stream.worker", "--redis", url, "--ns", ns,
             "--consumer", "bench", "--metrics-addr", "", "--log-level", "warning"]
     for k, v in flags.items():
         args += ["--" + k.replace("_", "-"), str(v)]
-    return subprocess.Popen(args, cwd=ROOT, stdout=subprocess.DEVNULL)
+    env = {**os.environ, "PYTHONPATH": WORKER_ROOT}
+    return subprocess.Popen(args, cwd=WORKER_ROOT, stdout=subprocess.DEVNULL, env=env)
 
 
 def stop_worker(proc: subprocess.Popen[bytes]) -> int:
@@ -344,8 +348,13 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--seconds", type=float, default=10.0, help="measurement window per run")
     p.add_argument("--raw-entries", type=int, default=200_000)
     p.add_argument("--json", action="store_true")
+    p.add_argument("--worker-root", default=ROOT,
+                   help="checkout whose worker to run (default: this one); the rest of the "
+                        "benchmark stays the same, for before/after comparisons")
     p.add_argument("--lookup-child", nargs=5, help=argparse.SUPPRESS)
     args = p.parse_args(argv)
+    global WORKER_ROOT
+    WORKER_ROOT = os.path.abspath(args.worker_root)
     if args.lookup_child:
         url, ns, n, secs, rate = args.lookup_child
         lookup_child(url, ns, int(n), float(secs), float(rate))
@@ -364,6 +373,7 @@ def main(argv: list[str] | None = None) -> int:
     raw_rate = (raw + raw2) / 2
     result = {
         "batch": args.batch,
+        "worker_root": WORKER_ROOT,
         "raw_entries_per_s": round(raw_rate),
         "raw_runs": [round(raw), round(raw2)],
         "worker_entries_per_s": round(plain["entries_per_s"]),
