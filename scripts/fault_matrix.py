@@ -40,6 +40,7 @@ SCENARIOS: dict[str, Callable[[], faultkit.Result]] = {
     "redis_data_lost": faultkit.redis_data_lost,
     "namespace_flushed": faultkit.namespace_flushed,
     "client_kill": faultkit.client_kill,
+    "second_worker": faultkit.second_worker,
     "redis_paused": faultkit.redis_paused,
     "redis_paused_past_timeout": faultkit.redis_paused_past_timeout,
     "redis_maxmemory": faultkit.redis_maxmemory,

@@ -334,6 +334,40 @@ def redis_data_lost() -> Result:
     return res
 
 
+def second_worker() -> Result:
+    """A second worker (another consumer name) started on the namespace mid-run: it waits
+    while the first holds the lease, takes over after the first stops, and the end state
+    equals that of one uninterrupted run."""
+    res = Result("a second worker started on the same namespace mid-run")
+    with server() as srv, tempfile.TemporaryDirectory() as tmp:
+        _, _, want = reference(srv, n=600)  # enough input to be left over at the handover
+        r = probe(srv)
+        crowd, entries = recorded_input(n=600)
+        write_input(r, "two", crowd, entries)
+        first = WorkerProc(srv.url, "two", tmp)
+        advance(r, "two", first, 20)
+        second = WorkerProc(srv.url, "two", tmp, consumer="w2")
+        wait_for(lambda: "another worker holds the namespace" in second.log()
+                 or not second.alive(), 30, "the second worker to wait")
+        advance(r, "two", first, 5)  # the first one goes on alone meanwhile
+        stayed_out = "state loaded" not in second.log() and second.alive()
+        code_first = first.stop()
+        handed_over = seq(r, "two")
+        wait_for(lambda: "state loaded" in second.log() or not second.alive(), 30,
+                 "the second worker to take over")
+        code = finish(second, r, "two")
+        equal_run(res, want, r, srv.url, "two", code)
+        res.details.update(first_exit=code_first, waited_without_loading=stayed_out,
+                           batches_by_second=seq(r, "two") - handed_over)
+        res.passed = (res.passed and code_first == 0 and stayed_out
+                      and res.details["batches_by_second"] > 0)
+        res.outcome = ("the second waited (loaded nothing) until the first stopped, then "
+                       "took over; end state "
+                       + ("equals" if not res.details["differs"] else "DIFFERS from")
+                       + " an uninterrupted run")
+    return res
+
+
 def client_kill(kills: int = 8, seed: int = 2) -> Result:
     """CLIENT KILL TYPE normal at random moments: the worker reconnects, nothing lost."""
     res = Result("connections killed (CLIENT KILL TYPE normal), 8 times mid-run")

@@ -24,6 +24,12 @@ def test_killed_connections_lose_nothing() -> None:
     assert res.passed, res.as_dict()
 
 
+def test_a_second_worker_waits_for_the_lease_and_takes_over_cleanly() -> None:
+    """Two workers on one namespace: the second waits, then continues; end state equal."""
+    res = faultkit.second_worker()
+    assert res.passed, res.as_dict()
+
+
 def test_maxmemory_refuses_whole_batches_and_the_worker_resumes_when_freed() -> None:
     """At maxmemory no batch is half applied; the worker waits (no exit) and then finishes."""
     res = faultkit.redis_maxmemory()

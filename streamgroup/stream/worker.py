@@ -326,7 +326,9 @@ class Worker:
         try:
             return self._turn()
         except Exception as exc:
-            if isinstance(exc, redis.ResponseError) and "NOGROUP" in str(exc):
+            if isinstance(exc, redis.ResponseError) and (
+                    "NOGROUP" in str(exc) or "no longer exists" in str(exc)):
+                # the group, or the stream a blocked read waited on, was deleted
                 raise StateError(f"the consumer group {GROUP} is gone from the input streams "
                                  f"({exc}): Redis lost the namespace's data; refusing to "
                                  f"start over") from None
