@@ -57,7 +57,10 @@ def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     p.add_argument("--items", type=int, default=100_000)
     p.add_argument("--batch", type=int, default=500, help="answer entries per batch (plain)")
-    p.add_argument("--packed", action="store_true", help="packed answers and questions")
+    p.add_argument("--packed", action="store_true",
+                   help="packed answers (column packs) and packed questions")
+    p.add_argument("--row-packs", action="store_true",
+                   help="with --packed: answers as packs of maps instead of column packs")
     p.add_argument("--rounds", type=int, default=400, help="measured batches")
     p.add_argument("--json", action="store_true")
     args = p.parse_args(argv)
@@ -88,11 +91,17 @@ def main(argv: list[str] | None = None) -> int:
         if args.packed:
             entries = []
             for i in range(0, len(qs), 10_000):
-                rows = [{"a": q.a, "b": q.b, "same": s, "source": n, "qid": q.qid} for q, s, n
-                        in zip(qs[i:i + 10_000], same[i:i + 10_000], src[i:i + 10_000],
-                               strict=True)]
+                part = qs[i:i + 10_000]
+                if args.row_packs:
+                    payload: Any = [{"a": q.a, "b": q.b, "same": s, "source": n, "qid": q.qid}
+                                    for q, s, n in zip(part, same[i:i + 10_000],
+                                                       src[i:i + 10_000], strict=True)]
+                else:
+                    payload = {"a": [q.a for q in part], "b": [q.b for q in part],
+                               "same": same[i:i + 10_000], "source": src[i:i + 10_000],
+                               "qid": [q.qid for q in part]}
                 entries.append([f"{next(seq)}-0".encode(),
-                                [b"pack", msgpack.packb(rows, use_bin_type=True)]])
+                                [b"pack", msgpack.packb(payload, use_bin_type=True)]])
         else:
             entries = [[f"{next(seq)}-0".encode(),
                         [b"a", q.a.encode(), b"b", q.b.encode(), b"same", b"1" if s else b"0",
@@ -125,7 +134,8 @@ def main(argv: list[str] | None = None) -> int:
         one_round()
     n = max(1, totals["answers"])
     result = {
-        "mode": "packed" if args.packed else "plain",
+        "mode": ("packed (maps)" if args.row_packs else "packed (columns)") if args.packed
+        else "plain",
         "answers": totals["answers"],
         "us_per_answer": round((totals["process"] + totals["build"] + totals["pack"]) / n * 1e6,
                                2),

@@ -8,7 +8,12 @@ import pytest
 from streamgroup.core.types import Answer
 from streamgroup.keys import MAX_PACK_ANSWERS, MAX_PACK_BYTES
 from streamgroup.stream import codec
-from streamgroup.stream.codec import decode_answers, decode_items, pack_answers
+from streamgroup.stream.codec import (
+    decode_answers,
+    decode_items,
+    pack_answer_columns,
+    pack_answers,
+)
 
 S = "{t}:answers"
 
@@ -187,3 +192,38 @@ def test_raw_replies_decode_like_parsed_ones() -> None:
     raw, parsed = decode_items(S, _raw(items)), decode_items(S, items)
     assert raw.items == parsed.items == [("k1", None), ("k2", "north")]
     assert raw.missing == parsed.missing == 1 and len(raw.dead) == len(parsed.dead) == 1
+
+
+def test_column_packs_decode_like_row_packs() -> None:
+    """A map of answer columns carries the same answers as an array of maps."""
+    answers = [Answer(f"shard-{i}", f"shard-ü{i}", i % 3 == 0, f"s{i % 4}" if i % 2 else "",
+                      str(i) if i % 5 else None) for i in range(300)]
+    aids = [f"p{i}" if i % 7 else None for i in range(300)]
+    rows = decode_answers(S, [(b"3-0", {b"pack": pack_answers(answers, aids)})])
+    cols = decode_answers(S, [(b"3-0", {b"pack": pack_answer_columns(answers, aids)})])
+    assert cols.answers == rows.answers == answers and cols.aids == rows.aids == aids
+    assert cols.origins == rows.origins and not cols.dead
+
+
+def test_bad_values_of_a_column_pack_are_dead_lettered_one_by_one() -> None:
+    """A well-shaped column pack with bad values: each bad answer dead, the rest applied."""
+    pack = msgpack.packb({"a": ["p", "q", "r\x07", "s"], "b": ["x", "q", "y", "z"],
+                          "same": [1, 0, 1, "maybe"], "source": ["s1", None, "s2", "s3"]})
+    d = decode_answers(S, [(b"4-0", {b"pack": pack})])
+    assert d.answers == [Answer("p", "x", True, "s1")]
+    assert [(x.origin, x.kind) for x in d.dead] == [
+        (f"{S} 4-0#1", codec.BAD_VALUE), (f"{S} 4-0#2", codec.BAD_KEY),
+        (f"{S} 4-0#3", codec.BAD_VALUE)]
+
+
+@pytest.mark.parametrize("shape, why", [
+    ({"a": ["p"], "b": ["q"]}, "missing same"),
+    ({"a": ["p", "q"], "b": ["r"], "same": [1, 0]}, "same length"),
+    ({"a": "p", "b": ["q"], "same": [1]}, "must be an array"),
+    ({"a": [], "b": [], "same": []}, "empty column pack"),
+    ({"a": ["p"], "b": ["q"], "same": [1], "qid": "7"}, "must be an array"),
+])
+def test_misshapen_column_packs_are_dead_lettered_whole(shape: dict, why: str) -> None:
+    d = decode_answers(S, [(b"5-0", {b"pack": msgpack.packb(shape)})])
+    assert not d.answers and len(d.dead) == 1 and why in d.dead[0].reason
+    assert d.dead[0].kind == codec.BAD_PACK and d.dead[0].origin == f"{S} 5-0"
