@@ -98,6 +98,17 @@ def test_packed_answers_round_trip(cl: Client) -> None:
     assert [m["same"] for m in unpacked] == [i % 2 == 0 for i in range(30)]
 
 
+def test_column_packed_answers_round_trip(cl: Client) -> None:
+    """columns=True writes one field `pack`: a msgpack map of answer columns."""
+    answers = [(f"k{i}", f"k{i + 1}", i % 2 == 0, "src") for i in range(30)]
+    assert cl.push_answers(answers, packed=True, columns=True) == 30
+    entries = _entries(cl, "{t}:answers")
+    assert len(entries) == 1 and set(entries[0]) == {b"pack"}
+    cols = msgpack.unpackb(entries[0][b"pack"], raw=False)
+    assert cols["a"][:2] == ["k0", "k1"] and cols["source"] == ["src"] * 30
+    assert cols["same"] == [i % 2 == 0 for i in range(30)] and "qid" not in cols
+
+
 def test_packing_respects_count_and_byte_limits(monkeypatch: pytest.MonkeyPatch) -> None:
     """pack_answers splits so no payload exceeds MAX_PACK_ANSWERS or MAX_PACK_BYTES."""
     fields = [{"a": f"key-{i:05d}", "b": f"key-{i + 1:05d}", "same": "1"} for i in range(1000)]
@@ -109,6 +120,29 @@ def test_packing_respects_count_and_byte_limits(monkeypatch: pytest.MonkeyPatch)
     packs = pack_answers(fields)
     assert all(len(p) <= 2000 for p in packs)
     assert sum(len(msgpack.unpackb(p)) for p in packs) == 1000
+
+
+def test_column_packs_respect_count_and_byte_limits_and_decode_alike(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    """Column packs split like packs of maps and carry the same answers to the worker."""
+    from streamgroup.client import pack_answer_columns
+    from streamgroup.stream.codec import decode_answers
+
+    fields = [{"a": f"key-{i:05d}", "b": f"key-{i + 1:05d}", "same": "1" if i % 3 else "0",
+               **({"source": f"s{i % 4}"} if i % 2 else {}), **({"aid": f"p{i}"} if i % 5
+                                                              else {})} for i in range(1000)]
+    monkeypatch.setattr(client_mod, "MAX_PACK_ANSWERS", 64)
+    packs = pack_answer_columns(fields)
+    assert [len(msgpack.unpackb(p)["a"]) for p in packs] == [64] * 15 + [40]
+    monkeypatch.setattr(client_mod, "MAX_PACK_ANSWERS", 10_000)
+    monkeypatch.setattr(client_mod, "MAX_PACK_BYTES", 2000)
+    packs = pack_answer_columns(fields)
+    assert all(len(p) <= 2000 for p in packs) and len(packs) > 1
+    entries = [(f"{i}-0".encode(), {b"pack": p}) for i, p in enumerate(packs, 1)]
+    rows = [(b"0-1", {b"pack": p}) for p in pack_answers(fields)]
+    got, want = decode_answers("S", entries), decode_answers("S", rows)
+    assert got.answers == want.answers and got.aids == want.aids and not got.dead
+    assert len(got.answers) == 1000
 
 
 def _record(**kw) -> bytes:

@@ -422,7 +422,12 @@ class Worker:
                           int(now * 1000))
             built = self._build(out, items, answers, now, t0)
         if held is not None:
-            result = receive(client, held.plan)
+            try:
+                result = receive(client, held.plan)
+            except BaseException:
+                if ahead and client.connection is not None:
+                    client.connection.disconnect()  # the read's reply is unread: drop it
+                raise
             if ahead:
                 assert client.connection is not None
                 self._ahead = read_reply(client.connection.read_response()) or None
