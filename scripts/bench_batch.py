@@ -60,7 +60,8 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--packed", action="store_true",
                    help="packed answers (column packs) and packed questions")
     p.add_argument("--row-packs", action="store_true",
-                   help="with --packed: answers as packs of maps instead of column packs")
+                   help="with --packed: answers and questions as packs of maps instead of "
+                        "column packs")
     p.add_argument("--rounds", type=int, default=400, help="measured batches")
     p.add_argument("--json", action="store_true")
     args = p.parse_args(argv)
@@ -115,7 +116,8 @@ def main(argv: list[str] | None = None) -> int:
             keys, commit_mod.Caps(), records=out.records, decisions=out.decisions,
             questions=out.questions, dead=[], journal=out.batch.journal_bytes(),
             snapshot=None, meta=st.meta_fields(), acks={keys.answers: [e[0] for e in entries]},
-            group=GROUP, pack_questions=args.packed)
+            group=GROUP, pack_questions=args.packed,
+            question_columns=args.packed and not args.row_packs)
         t2 = time.perf_counter()
         b"".join([hiredis.pack_command(c) for c in plan.commands])
         t3 = time.perf_counter()

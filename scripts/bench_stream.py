@@ -15,7 +15,7 @@ port, persistence off), with the same batch size everywhere:
   Measured over a window after a warm-up (past the bootstrap), as answer entries consumed
   per second.
 - ``packed_answers_per_s``: the same loop with packed questions out and packed answers in
-  (column packs)
+  (column packs both ways: ``question_columns`` on the worker)
   (over ``--packed-items`` items, so that the window ends well before the work runs out:
   near the end fewer items are left to ask about, and the loop slows for that reason).
   In both loops every item is registered before the crowd starts.
@@ -180,10 +180,15 @@ class Feeder:
         for _eid, f in entries:
             p = f.get(b"pack")
             if p is not None:
-                rows = msgpack.unpackb(p, raw=False)
-                qid += [m["qid"] for m in rows]
-                a += [m["a"] for m in rows]
-                b += [m["b"] for m in rows]
+                data = msgpack.unpackb(p, raw=False)
+                if isinstance(data, dict):  # a question column pack
+                    qid += data["qid"]
+                    a += data["a"]
+                    b += data["b"]
+                else:
+                    qid += [m["qid"] for m in data]
+                    a += [m["a"] for m in data]
+                    b += [m["b"] for m in data]
             else:
                 qid.append(f[b"qid"].decode())
                 a.append(f[b"a"].decode())
@@ -251,7 +256,8 @@ def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
     crowd = Crowd(n, delta=0.6, sources=[0.6] * 50, seed=1)
     fill_items(r, k.items, n)
     proc = spawn_worker(url, ns, batch=batch, block_ms=100, snapshot_every=30,
-                        pack_questions=pack, max_outstanding=max_outstanding)
+                        pack_questions=pack, max_outstanding=max_outstanding,
+                        **({"question_columns": True} if pack else {}))
     # every item registered before the crowd starts: the window then holds answers only
     wait_until(lambda: int(r.hget(k.meta, "items_applied") or 0) >= n, 600,
                "the worker to register the items")

@@ -28,6 +28,7 @@ from .keys import (
     MAX_SOURCE_BYTES,
     STATUSES,
     Keys,
+    question_pack_rows,
     valid_namespace,
 )
 
@@ -196,7 +197,7 @@ def decode_record(key: str, raw: bytes) -> dict[str, Any]:
 def decode_questions(fields: Mapping[bytes, bytes]) -> list[dict[str, Any]]:
     """One ``{NS}:questions`` entry as a list of question dicts (a packed entry holds many)."""
     if b"pack" in fields:
-        items = msgpack.unpackb(fields[b"pack"], raw=False)
+        items = question_pack_rows(fields[b"pack"])
         return [{k: _text(q.get(k)) for k in ("qid", "a", "b", "why", "ts")} for q in items]
     q = {k: _text(fields.get(k.encode())) for k in ("qid", "a", "b", "why", "ts")}
     return [q]

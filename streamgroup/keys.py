@@ -8,6 +8,9 @@ from __future__ import annotations
 
 import re
 from dataclasses import dataclass
+from typing import Any
+
+import msgpack
 
 DEFAULT_NS = "sg"
 
@@ -119,3 +122,16 @@ class Keys:
             self.dead, self.epoch, self.snapshot, self.journal, self.meta, self.noise,
             self.history, self.lease,
         ]
+
+
+QUESTION_FIELDS = ("qid", "a", "b", "why", "ts")  # the fields of one question
+
+
+def question_pack_rows(payload: bytes) -> list[dict[str, Any]]:
+    """The questions of a packed ``{NS}:questions`` entry, as maps: the ``pack`` value is a
+    msgpack array of maps, or (worker setting ``question_columns``) a map of arrays."""
+    data = msgpack.unpackb(payload, raw=False)
+    if isinstance(data, dict):
+        cols = [data[k] for k in QUESTION_FIELDS]
+        return [dict(zip(QUESTION_FIELDS, row, strict=True)) for row in zip(*cols, strict=True)]
+    return list(data)

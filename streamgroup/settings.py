@@ -42,6 +42,7 @@ class Settings:
     consumer: str = ""  # empty: hostname-pid
     claim_idle: float = 60.0  # seconds before another consumer's pending entry is claimed
     pack_questions: bool = False
+    question_columns: bool = False  # with pack_questions: each pack a map of arrays
     snapshot_every: float = 30.0  # seconds between engine snapshots
     metrics_addr: str = "127.0.0.1:9464"  # "" disables the endpoint
     log_level: str = "info"

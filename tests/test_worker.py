@@ -101,6 +101,26 @@ def test_packed_answers_and_packed_questions_close_the_loop(redis_url: str) -> N
     w.close()
 
 
+def test_question_column_packs_close_the_loop_and_read_like_packs_of_maps(
+        redis_url: str) -> None:
+    """With question_columns each question pack is a map of arrays; readers see the same."""
+    from streamgroup.client import decode_questions
+
+    w, adapter, crowd = closed_loop(redis_url, 200, pack=True, question_columns=True)
+    r = redis.Redis.from_url(redis_url)
+    rec = assign(r)
+    assert len(rec) == 200 and errors_vs_truth(crowd, rec) <= 2
+    qs = r.xrange(K.questions)
+    packs = [msgpack.unpackb(f[b"pack"], raw=False) for _, f in qs]
+    assert packs and all(isinstance(p, dict) and set(p) == {"qid", "a", "b", "why", "ts"}
+                         for p in packs)
+    rows = [q for _, f in qs for q in decode_questions(f)]  # as Client.questions() reads
+    assert len(rows) == sum(len(p["qid"]) for p in packs)
+    assert len(rows) == sum(w.state.engine.stats()["issued"].values())
+    assert rows[0] == {k: packs[0][k][0] for k in ("qid", "a", "b", "why", "ts")}
+    w.close()
+
+
 def test_malformed_entries_go_dead_and_good_ones_apply(redis_url: str) -> None:
     """Bad entries become dead letters with reason and origin; neighbours are applied."""
     r = redis.Redis.from_url(redis_url)

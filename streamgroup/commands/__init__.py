@@ -47,6 +47,8 @@ SETTING_HELP: dict[str, str] = {
     "lease_ttl": "seconds a worker's hold on the namespace lasts unless renewed (a second "
                  "worker waits for it)",
     "pack_questions": "write questions as packed entries (field pack) for fast adapters",
+    "question_columns": "with pack_questions: write each pack as a map of arrays (qid, a, "
+                        "b, why, ts) instead of an array of maps",
     "snapshot_every": "seconds between engine snapshots in Redis",
     "metrics_addr": "HOST:PORT of /metrics, /healthz and /readyz; empty disables it",
     "log_level": "debug, info, warning or error",

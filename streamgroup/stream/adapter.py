@@ -14,7 +14,7 @@ import msgpack
 import redis
 
 from ..core.types import Question
-from ..keys import MAX_PACK_ANSWERS, Keys
+from ..keys import MAX_PACK_ANSWERS, Keys, question_pack_rows
 from ..sim.crowd import Crowd
 
 ADAPTER_GROUP = "sim-crowd"
@@ -60,7 +60,7 @@ class SimAdapter:
                 pack = fields.get(b"pack")
                 if pack is not None:
                     out.extend(Question(str(m["qid"]), m["a"], m["b"], m["why"], int(m["ts"]))
-                               for m in msgpack.unpackb(pack, raw=False))
+                               for m in question_pack_rows(pack))
                 else:
                     out.append(Question(fields[b"qid"].decode(), fields[b"a"].decode(),
                                         fields[b"b"].decode(), fields[b"why"].decode(),

@@ -40,6 +40,7 @@ from ..keys import (
     MAX_PACK_ANSWERS,
     MAX_PACK_BYTES,
     MAX_SOURCE_BYTES,
+    question_pack_rows,
 )
 
 MAX_PACK_FIELDS = 16  # keys in one packed answer map (six are meaningful)
@@ -538,7 +539,7 @@ def decode_questions(entries: Iterable[Entry]) -> list[dict[str, Any]]:
     for _eid, fields in entries:
         pack = fields.get(b"pack")
         if pack is not None:
-            out.extend(msgpack.unpackb(pack, raw=False))
+            out.extend(question_pack_rows(pack))
         else:
             out.append({k.decode(): v.decode() for k, v in fields.items()})
     return out

@@ -499,6 +499,7 @@ class Worker:
             snapshot=snapshot, meta=state.meta_fields(),
             acks={keys.items: [e[0] for e in items], keys.answers: [e[0] for e in answers]},
             group=GROUP, pack_questions=self.settings.pack_questions,
+            question_columns=self.settings.question_columns,
             lease=lease.take_command(keys, self.holder, self._lease_ms),
         )
         return _Held(plan, out, now, t0)
