@@ -144,6 +144,7 @@ class Worker:
         self.holder = lease.holder_name(settings.consumer_name)  # this process's lease
         self._lease_ms = int(settings.lease_ttl * 1000)
         self._next_renew = 0.0
+        self._had_lease = False  # taken once by this process
 
     # -- control ------------------------------------------------------------------------
     def request_stop(self) -> None:
@@ -257,8 +258,12 @@ class Worker:
         """Hold the namespace before touching its state; wait while another worker does."""
         said = 0.0
         while True:
-            other = lease.take(client, self.keys, self.holder, self._lease_ms, same_name=True)
+            # only a process's first take may displace a holder of the same consumer name
+            # (this worker, restarted after a crash); a reconnect must not
+            other = lease.take(client, self.keys, self.holder, self._lease_ms,
+                               same_name=not self._had_lease)
             if other is None:
+                self._had_lease = True
                 self._next_renew = time.monotonic() + self.settings.lease_ttl / 3
                 return
             if time.monotonic() >= said:
