@@ -22,5 +22,5 @@ ANCHOR_FACTOR = 0.01  # an item joins the reference pool when its error is <= al
 BLOCK_START = 16  # first bootstrap block size
 BLOCK_MAX = 800  # the block stops growing here
 MIN_ANCHORS = 8  # reference members needed before placing the other items
-REFIT_GROWTH = 0.20  # re-learn the sources when counted answers grew by this fraction
+REFIT_GROWTH = 0.35  # re-learn the sources when counted answers grew by this fraction
 REFIT_MIN = 200
