@@ -26,6 +26,7 @@ from .keys import (
     MAX_PACK_ANSWERS,
     MAX_PACK_BYTES,
     MAX_SOURCE_BYTES,
+    QUESTION_FIELDS,
     STATUSES,
     Keys,
     question_pack_rows,
@@ -198,8 +199,8 @@ def decode_questions(fields: Mapping[bytes, bytes]) -> list[dict[str, Any]]:
     """One ``{NS}:questions`` entry as a list of question dicts (a packed entry holds many)."""
     if b"pack" in fields:
         items = question_pack_rows(fields[b"pack"])
-        return [{k: _text(q.get(k)) for k in ("qid", "a", "b", "why", "ts")} for q in items]
-    q = {k: _text(fields.get(k.encode())) for k in ("qid", "a", "b", "why", "ts")}
+        return [{k: _text(q.get(k)) for k in QUESTION_FIELDS} for q in items]
+    q = {k: _text(fields.get(k.encode())) for k in QUESTION_FIELDS}
     return [q]
 
 

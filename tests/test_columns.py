@@ -44,7 +44,8 @@ def test_assign_values_decode_like_the_one_record_form(n: int, seed: int) -> Non
     assert [msgpack.unpackb(v) for v in packed] == [msgpack.unpackb(assign_value(r))
                                                     for r in rows]
     assert all(type(msgpack.unpackb(v)["llr"]) is float for v in packed)
-    # counts below 128 (the usual case) take msgpack's own shortest form: the same bytes
+    # counts below 128 (the usual case) take the shortest form: byte for byte what the
+    # reference packer, msgpack-python's packb, writes for the same map
     rc.answers, rc.rev = rc.answers % 128, rc.rev % 128
     assert assign_values(rc) == [assign_value(r) for r in rc.rows()]
 

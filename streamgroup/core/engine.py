@@ -347,7 +347,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
             again = (self.q["state"][qn] == Q_ANSWERED) | ~first
             fresh[with_q[again]] = False
             self._close_questions(qn[~again], Q_ANSWERED)
-        out = fresh.copy()
+        out = fresh
         self.duplicates += int((~fresh).sum())
         if not fresh.any():
             return out

@@ -60,11 +60,10 @@ _CTRL_B = re.compile(rb"[\x00-\x1f\x7f]|\xc2[\x80-\x9f]")
 _CTRL_S = CONTROL_CHARS
 _CTRL_NO_NUL = re.compile("[\x01-\x1f\x7f-\x9f]")  # NUL is the fast path's separator
 
+# An entry as redis-py parses it. The worker reads XREADGROUP replies raw instead (see
+# ``worker.read_streams``): ``[entry_id, [field, value, ...]]``, or ``[entry_id, None]`` for
+# a pending entry whose content was deleted. Every decoder here takes either form.
 Entry = tuple[bytes, dict[bytes, bytes]]
-# The worker reads XREADGROUP replies raw (see ``worker.read_streams``): an entry is then
-# ``[entry_id, [field, value, field, value, ...]]`` (or ``[entry_id, None]`` for a pending
-# entry whose content was deleted). Every decoder here takes either form.
-RawEntry = Any
 Ref = bytes | tuple[bytes, int]
 
 _PLAIN_LAYOUT = [b"a", b"b", b"same", b"source", b"qid"]  # field order of most producers
@@ -328,7 +327,7 @@ def _unpack_pack(pack: bytes) -> list[Any] | ColumnPack:
     except Exception as exc:  # noqa: BLE001 - msgpack raises several unrelated types
         raise _Bad(BAD_PACK, f"pack is not valid msgpack ({type(exc).__name__})") from None
     if isinstance(data, dict):
-        return _column_rows(data)
+        return _column_pack(data)
     if not isinstance(data, list):
         raise _Bad(BAD_PACK, "pack must be a msgpack array of answers or a map of answer "
                              f"columns (got {type(data).__name__})")
@@ -358,7 +357,7 @@ class ColumnPack:
         return out
 
 
-def _column_rows(data: dict[Any, Any]) -> ColumnPack:
+def _column_pack(data: dict[Any, Any]) -> ColumnPack:
     """Check a column pack's shape: arrays ``a``, ``b`` and ``same`` of one length n >= 1,
     and ``source``, ``qid``, ``aid`` of that length if present (other keys are ignored)."""
     cols = {k: data[k] for k in COLUMN_FIELDS if k in data}

@@ -31,6 +31,7 @@ loses the oldest entries (a lost question is simply re-issued after the question
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -65,14 +66,14 @@ def assign_value(r: Record) -> bytes:
 _KEYS = {name: _packb(name) for name in ("answers", "rev", "pinned")}
 
 
-def _uint_column(values: np.ndarray) -> tuple[bytes, int, str]:
-    """(marker, width, numpy dtype) for a column of non-negative integers."""
+def _uint_column(values: np.ndarray) -> tuple[bytes, str]:
+    """(msgpack marker, numpy dtype) for a column of non-negative integers."""
     top = int(values.max()) if len(values) else 0
     if top < 128:
-        return b"", 1, ">u1"
+        return b"", ">u1"
     if top < 1 << 16:
-        return b"\xcd", 2, ">u2"
-    return b"\xce", 4, ">u4"
+        return b"\xcd", ">u2"
+    return b"\xce", ">u4"
 
 
 def _prefix(side: str | None, status: str) -> bytes:
@@ -88,26 +89,21 @@ def assign_values(rc: RecordColumns) -> list[bytes]:
     names = (None, *rc.labels)  # slot -1, 0, 1
     prefixes = [_prefix(side, status) for side in names for status in rc.status_names]
     code = (rc.side.astype(np.int64) + 1) * len(rc.status_names) + rc.status
-    parts: list[tuple[bytes, np.ndarray | None, str]] = [(b"", rc.llr, ">f8")]
+    # (constant bytes, then the column's values in this dtype), in map order
+    parts: list[tuple[bytes, np.ndarray, str]] = [(b"", rc.llr, ">f8")]
     for key, col in (("answers", rc.answers), ("rev", rc.rev)):
-        marker, _, dtype = _uint_column(col)
+        marker, dtype = _uint_column(col)
         parts.append((_KEYS[key] + marker, col, dtype))
-    parts.append((_KEYS["pinned"], None, ""))
-    width = sum(len(c) + (np.dtype(dt).itemsize if col is not None else 1)
-                for c, col, dt in parts)
+    parts.append((_KEYS["pinned"], np.where(rc.pinned, 0xC3, 0xC2), "u1"))  # true / false
+    width = sum(len(c) + np.dtype(dt).itemsize for c, _, dt in parts)
     tail = np.empty((n, width), dtype=np.uint8)
     at = 0
     for const, col, dtype in parts:
-        if const:
-            tail[:, at:at + len(const)] = np.frombuffer(const, dtype=np.uint8)
-            at += len(const)
-        if col is None:
-            tail[:, at] = np.where(rc.pinned, 0xC3, 0xC2)
-            at += 1
-        else:
-            size = np.dtype(dtype).itemsize
-            tail[:, at:at + size] = col.astype(dtype).view(np.uint8).reshape(n, size)
-            at += size
+        tail[:, at:at + len(const)] = np.frombuffer(const, dtype=np.uint8)
+        at += len(const)
+        size = np.dtype(dtype).itemsize
+        tail[:, at:at + size] = col.astype(dtype).view(np.uint8).reshape(n, size)
+        at += size
     blob = tail.tobytes()
     return [prefixes[c] + blob[k:k + width]
             for c, k in zip(code.tolist(), range(0, width * n, width), strict=True)]
@@ -166,7 +162,8 @@ class CommitError(StreamgroupError):
     """Redis refused (part of) a batch's transaction: the state must be reloaded."""
 
 
-def xadd_script(names: Sequence[str]) -> str:
+@functools.cache
+def xadd_script(names: tuple[str, ...]) -> str:
     """A script that appends entries with these fields: KEYS[1] = stream, ARGV[1] = cap
     (approximate MAXLEN, applied once at the end; 0 = none), then the values, row by row.
 
@@ -186,14 +183,8 @@ def xadd_script(names: Sequence[str]) -> str:
             f"return (#ARGV - 1) / {len(names)}\n")
 
 
-_SCRIPTS: dict[tuple[str, ...], str] = {}
-
-
 def _xadd_many(key: str, cap: int, names: Sequence[str], values: list[Any]) -> Command:
-    script = _SCRIPTS.get(tuple(names))
-    if script is None:
-        script = _SCRIPTS[tuple(names)] = xadd_script(names)
-    return ("EVAL", script, 1, key, cap, *values)
+    return ("EVAL", xadd_script(tuple(names)), 1, key, cap, *values)
 
 
 def _xadd(key: str, cap: int, fields: Iterable[Any]) -> Command:
