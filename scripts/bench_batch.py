@@ -63,6 +63,9 @@ def main(argv: list[str] | None = None) -> int:
                    help="with --packed: answers and questions as packs of maps instead of "
                         "column packs")
     p.add_argument("--rounds", type=int, default=400, help="measured batches")
+    p.add_argument("--max-outstanding", type=int, default=0,
+                   help="questions in flight at most (default: 20 batches, at least 10,000); "
+                        "bench_stream's drain runs hold half the items in flight")
     p.add_argument("--json", action="store_true")
     args = p.parse_args(argv)
     for owner, name in ((batch_mod, "decode_answers"), (state_mod.WorkerState,
@@ -74,7 +77,7 @@ def main(argv: list[str] | None = None) -> int:
     keys = Keys("bench")
     crowd = Crowd(args.items, delta=0.6, sources=[0.6] * 50, seed=1)
     per_batch = 20_000 if args.packed else args.batch
-    cfg = EngineConfig(max_outstanding=max(20 * per_batch, 10_000))
+    cfg = EngineConfig(max_outstanding=args.max_outstanding or max(20 * per_batch, 10_000))
     st = state_mod.WorkerState.fresh(cfg, "bench", 100_000)
     seq = iter(range(1, 1 << 62))
     now = 1_000_000

@@ -8,35 +8,49 @@ port, persistence off), with the same batch size everywhere:
 
 - ``raw_entries_per_s``: a bare XREADGROUP + XACK loop (redis-py, same client options as
   the worker) over pre-filled one-answer entries; it writes nothing else.
-- ``worker_entries_per_s``: the worker (a separate process, as deployed) in a closed loop
-  with a simulated crowd adapter in this process: each answer entry it reads answers one of
-  its questions, and it writes about one question entry per answer, plus the assignment
-  records, the journal and the acknowledgements, all in one MULTI/EXEC per batch.
-  Measured over a window after a warm-up (past the bootstrap), as answer entries consumed
-  per second.
-- ``packed_answers_per_s``: the same loop with packed questions out and packed answers in
-  (column packs both ways: ``question_columns`` on the worker)
-  (over ``--packed-items`` items, so that the window ends well before the work runs out:
-  near the end fewer items are left to ask about, and the loop slows for that reason).
-  In both loops every item is registered before the crowd starts.
+- ``worker_entries_per_s``: the worker (a separate process, as deployed) alone, as the bare
+  loop is alone: it drains a backlog of one-answer entries, each the answer to one of its
+  own questions, and writes about one new question entry per answer, plus the assignment
+  records, the journal and the acknowledgements, all in one MULTI/EXEC per batch. The
+  backlog is made in cycles: after a closed-loop warm-up (past the bootstrap), the worker
+  is paused (SIGSTOP) while a simulated crowd adapter answers every question it has in
+  flight (half the items: ``--drain-items`` / 2), then let go (SIGCONT) and timed until it
+  has consumed them; ``--cycles`` windows, summed. The adapter is idle in the windows, so
+  it takes neither cores nor Redis time from the worker; ``ratio`` is this over raw.
+- ``packed_answers_per_s``: the same with column packs both ways (packed answers in,
+  ``question_columns`` packs out), over ``--packed-items`` items.
 - ``lookup_p99_ms``: HGET of random keys of ``{NS}:assign`` from another process, about
-  500 per second, during the plain-entry window (the worker ingesting at full speed).
+  500 per second, kept when they start inside the plain drain windows (the worker
+  ingesting at full speed).
+- ``loop_*``: the closed loop, for comparison: the adapter runs beside the worker on the
+  same two cores and the same Redis, answering each question as it appears, and the rate
+  is answer entries consumed per second over ``--seconds`` after the warm-up
+  (``loop_packed_answers_per_s`` over ``--packed-items`` items as well, so that the window
+  ends well before the work runs out).
+  In every run every item is registered before the crowd starts.
 - ``worker_bytes_per_item``: growth of the worker's resident memory while it registers
   ``--items`` items (after start-up), per item; ``redis_bytes_per_item``: growth of Redis's
   ``used_memory`` for the namespace after those items are in and a snapshot is written.
 
 The machine is shared (2 cores for Redis, the worker, the adapter and the lookup process,
 and whatever else runs there), so the rates move with the load: ``worker_cpu_share_*``
-says how much of a core the worker got (``redis_cpu_share_*`` and ``adapter_cpu_share_*``
-what Redis and the crowd adapter took), and ``*_per_cpu_s`` divides by it (the rate a
-dedicated core would give, if the worker is the bottleneck). ``exec_ms_*`` is the mean
-time Redis spends inside one batch transaction (lookups wait behind it), and
-``lookup_idle_p99_ms`` is the lookup latency of this machine with no worker running.
+says how much of a core the worker got (``redis_cpu_share_*`` what Redis took), and
+``*_per_cpu_s`` divides by it (the rate a dedicated core would give, if the worker is the
+bottleneck). ``redis_us_per_answer_*`` splits Redis's time by command (from INFO
+commandstats; ``exec`` includes the commands inside it, ``eval`` the appends its scripts
+make), ``loop_exec_ms_*`` is the mean time Redis spends inside one batch transaction
+(lookups wait behind it), and ``lookup_idle_p99_ms`` is the lookup latency of this
+machine with no worker running.
+
+``BENCH_PYSPY=PATH`` records a py-spy profile (raw format) of the worker over the drain
+cycles, to ``PATH`` and ``PATH-packed`` (py-spy is a tool to install by hand, not a
+dependency).
 """
 
 from __future__ import annotations
 
 import argparse
+import collections
 import json
 import os
 import random
@@ -117,6 +131,11 @@ def rss_bytes(pid: int) -> int:
             if line.startswith("VmRSS:"):
                 return int(line.split()[1]) * 1024
     raise RuntimeError("no VmRSS")
+
+
+def redis_cpu(r: redis.Redis) -> float:
+    info = r.info("cpu")
+    return float(info["used_cpu_user"]) + float(info["used_cpu_sys"])
 
 
 def wait_until(cond: Any, timeout: float, what: str) -> None:
@@ -216,23 +235,45 @@ class Feeder:
 
 
 def lookup_child(url: str, ns: str, n: int, seconds: float, rate: float) -> None:
-    """Run in a separate process: HGET random assignment keys; print latency percentiles."""
+    """Run in a separate process: HGET random assignment keys; print each lookup's start
+    (CLOCK_MONOTONIC, shared by every process here) and latency, so that the caller can keep
+    the lookups that fall inside its measurement windows."""
     r = redis.Redis.from_url(url, single_connection_client=True)
     k = Keys(ns)
     fmt = key_format(n)
     rng = random.Random(1)
+    start: list[float] = []
     lat: list[float] = []
     end = time.monotonic() + seconds
     gap = 1.0 / rate
-    while time.monotonic() < end:
+    stop = []
+    signal.signal(signal.SIGTERM, lambda *_: stop.append(1))  # ends the run early
+    while time.monotonic() < end and not stop:
         key = fmt % rng.randrange(n)
+        s0 = time.monotonic()
         t0 = time.perf_counter()
         r.hget(k.assign, key)
         lat.append(time.perf_counter() - t0)
+        start.append(s0)
         time.sleep(gap)
-    a = np.array(lat) * 1000
-    print(json.dumps({"lookups": len(a), "p50_ms": float(np.percentile(a, 50)),
-                      "p99_ms": float(np.percentile(a, 99)), "max_ms": float(a.max())}))
+    print(json.dumps({"start": start, "ms": [x * 1000 for x in lat]}))
+
+
+def latency_summary(start: list[float], ms: list[float],
+                    windows: list[tuple[float, float]] | None = None) -> dict[str, Any]:
+    """Percentiles of the lookups that started inside the windows (all when none given)."""
+    a = np.array(ms)
+    if windows is not None:
+        t = np.array(start)
+        keep = np.zeros(len(a), dtype=bool)
+        for lo, hi in windows:
+            keep |= (t >= lo) & (t < hi)
+        a = a[keep]
+    if len(a) == 0:
+        return {"lookups": 0, "p50_ms": float("nan"), "p99_ms": float("nan"),
+                "max_ms": float("nan")}
+    return {"lookups": int(len(a)), "p50_ms": float(np.percentile(a, 50)),
+            "p99_ms": float(np.percentile(a, 99)), "max_ms": float(a.max())}
 
 
 def idle_lookups(url: str, seconds: float) -> dict[str, Any]:
@@ -246,7 +287,8 @@ def idle_lookups(url: str, seconds: float) -> dict[str, Any]:
          str(min(seconds, 5.0)), "500"], stdout=subprocess.PIPE)
     line = child.communicate(timeout=seconds + 60)[0].decode().strip().splitlines()[-1]
     r.delete(k.assign)
-    return json.loads(line)
+    got = json.loads(line)
+    return latency_summary(got["start"], got["ms"])
 
 
 def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
@@ -279,18 +321,14 @@ def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
              str(seconds), "500"], stdout=subprocess.PIPE)
     r.config_resetstat()
 
-    def redis_cpu() -> float:
-        info = r.info("cpu")
-        return float(info["used_cpu_user"]) + float(info["used_cpu_sys"])
-
-    r0, f0 = redis_cpu(), time.process_time()
+    r0, f0 = redis_cpu(r), time.process_time()
     e0, a0, c0, t0 = consumed(), applied(), cpu_seconds(proc.pid), time.monotonic()
     q0 = feeder.questions
     t_end = t0 + seconds
     while time.monotonic() < t_end:
         feeder.step()
     e1, a1, c1, t1 = consumed(), applied(), cpu_seconds(proc.pid), time.monotonic()
-    r1, f1 = redis_cpu(), time.process_time()
+    r1, f1 = redis_cpu(r), time.process_time()
     stats = r.info("commandstats")
     out: dict[str, Any] = {
         "entries_per_s": (e1 - e0) / (t1 - t0) if not pack else None,
@@ -302,10 +340,116 @@ def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
         "questions_per_answer": (feeder.questions - q0) / max(1, a1 - a0),
         # mean time Redis spends inside one batch transaction (it serves nothing else then)
         "exec_ms": stats.get("cmdstat_exec", {}).get("usec_per_call", 0.0) / 1000,
+        # where Redis's time goes, in microseconds per answer consumed, by command
+        "redis_us_per_answer": {
+            name.removeprefix("cmdstat_"): round(v["usec"] / max(1, a1 - a0), 3)
+            for name, v in sorted(stats.items(), key=lambda kv: -kv[1]["usec"])[:8]},
     }
     if child is not None:
         line = child.communicate(timeout=seconds + 60)[0].decode().strip().splitlines()[-1]
-        out["lookup"] = json.loads(line)
+        got = json.loads(line)
+        out["lookup"] = latency_summary(got["start"], got["ms"])
+    out["exit"] = stop_worker(proc)
+    return out
+
+
+def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
+                cycles: int, lookups: bool, max_outstanding: int) -> dict[str, Any]:
+    """The worker alone, as the bare loop is alone: it drains a backlog of answers to its
+    own questions while no adapter runs.
+
+    After a closed-loop warm-up, each cycle stops the worker (SIGSTOP), lets the adapter
+    answer every question in the stream (about ``max_outstanding``: one per item in flight),
+    then lets the worker go (SIGCONT) and times it until it has consumed that backlog. The
+    worker does everything it does in service: it reads the answers in batches, applies
+    them, plans and writes about one new question per answer, writes the assignment records,
+    the journal and the acknowledgements in one MULTI/EXEC per batch. Only the adapter is
+    idle during the windows, so it takes neither cores nor Redis time from the worker.
+    """
+    r = redis.Redis.from_url(url)
+    k = Keys(ns)
+    crowd = Crowd(n, delta=0.6, sources=[0.6] * 50, seed=1)
+    fill_items(r, k.items, n)
+    proc = spawn_worker(url, ns, batch=batch, block_ms=100, snapshot_every=30,
+                        pack_questions=pack, max_outstanding=max_outstanding,
+                        **({"question_columns": True} if pack else {}))
+    wait_until(lambda: int(r.hget(k.meta, "items_applied") or 0) >= n, 600,
+               "the worker to register the items")
+    feeder = Feeder(url, ns, crowd, pack, batch)
+
+    def consumed() -> int:
+        return int(r.hget(k.meta, "entries:answers" if not pack else "applied") or 0)
+
+    t_end = time.monotonic() + warmup
+    while time.monotonic() < t_end:
+        feeder.step()
+    child = None
+    if lookups:
+        child = subprocess.Popen(
+            [sys.executable, os.path.abspath(__file__), "--lookup-child", url, ns, str(n),
+             "3600", "500"], stdout=subprocess.PIPE)
+    spy = None
+    if os.environ.get("BENCH_PYSPY"):  # a profile of the worker over the cycles (a tool)
+        spy = subprocess.Popen(["py-spy", "record", "--pid", str(proc.pid), "--format", "raw",
+                                "-o", os.environ["BENCH_PYSPY"] + ("-packed" if pack else ""),
+                                "--rate", "200", "--nonblocking"],
+                               stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        time.sleep(1.0)
+    windows: list[tuple[float, float]] = []
+    backlogs: list[int] = []
+    cpu = r_cpu = 0.0
+    usec: collections.Counter[str] = collections.Counter()
+    def caught_up() -> bool:  # every answer in the stream read and committed
+        last = r.xinfo_stream(k.answers)["last-generated-id"]
+        group = next(g for g in r.xinfo_groups(k.answers) if g["name"] == GROUP.encode())
+        return group["pending"] == 0 and group["last-delivered-id"] == last
+
+    for _ in range(cycles):
+        wait_until(caught_up, 120, "the worker to catch up")
+        time.sleep(0.05)  # the questions of its last commit are in the stream by now
+        proc.send_signal(signal.SIGSTOP)
+        time.sleep(0.05)  # let a reply in flight land in the socket
+        backlog = 0
+        while got := feeder.step():  # answer every question the stopped worker wrote
+            backlog += got
+        backlogs.append(backlog)
+        target = consumed() + backlog
+        r.config_resetstat()
+        rc0 = redis_cpu(r)
+        c0, t0 = cpu_seconds(proc.pid), time.monotonic()
+        proc.send_signal(signal.SIGCONT)
+        while consumed() < target:
+            time.sleep(0.002)
+        t1 = time.monotonic()
+        cpu += cpu_seconds(proc.pid) - c0
+        r_cpu += redis_cpu(r) - rc0
+        for name, v in r.info("commandstats").items():
+            usec[name.removeprefix("cmdstat_")] += v["usec"]
+        windows.append((t0, t1))
+    if spy is not None:
+        spy.send_signal(signal.SIGINT)
+        spy.wait(60)
+    last = 0
+    while got := feeder.step():  # the questions the last window wrote
+        last += got
+    done = sum(backlogs)
+    busy = sum(hi - lo for lo, hi in windows)
+    out: dict[str, Any] = {
+        "rate": done / busy,
+        "answers_in_windows": done,
+        "windows": len(windows),
+        "window_s": round(busy / len(windows), 3),
+        # questions written in the windows (answered in the next fill) per answer consumed
+        "questions_per_answer": (sum(backlogs[1:]) + last) / done,
+        "worker_cpu_share": cpu / busy,
+        "redis_cpu_share": r_cpu / busy,
+        "redis_us_per_answer": {name: round(us / done, 3)
+                                for name, us in usec.most_common(8)},
+    }
+    if child is not None:
+        child.send_signal(signal.SIGTERM)
+        got = json.loads(child.communicate(timeout=60)[0].decode().strip().splitlines()[-1])
+        out["lookup"] = latency_summary(got["start"], got["ms"], windows)
     out["exit"] = stop_worker(proc)
     return out
 
@@ -349,6 +493,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--packed-items", type=int, default=300_000,
                    help="items in the packed closed-loop run (more, so that the run never "
                         "reaches the end of the work, where fewer questions are in flight)")
+    p.add_argument("--drain-items", type=int, default=200_000,
+                   help="items in the plain drain run (half of them in flight: the backlog)")
+    p.add_argument("--cycles", type=int, default=4, help="drain windows per run")
     p.add_argument("--batch", type=int, default=500)
     p.add_argument("--warmup", type=float, default=6.0)
     p.add_argument("--seconds", type=float, default=10.0, help="measurement window per run")
@@ -367,14 +514,21 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     with EmbeddedRedis("redis-server") as srv:
         url = srv.url
+        flush = redis.Redis.from_url(url).flushall
         raw = bench_raw(url, args.batch, args.raw_entries)
         idle = idle_lookups(url, args.seconds)
-        plain = bench_loop(url, "bw", args.loop_items, args.batch, False, args.warmup,
-                           args.seconds, True, 20 * args.batch)
+        plain = bench_drain(url, "dw", args.drain_items, args.batch, False, args.warmup,
+                            args.cycles, True, args.drain_items // 2)
+        flush()
+        loop = bench_loop(url, "bw", args.loop_items, args.batch, False, args.warmup,
+                          args.seconds, True, 20 * args.batch)
         raw2 = bench_raw(url, args.batch, args.raw_entries)  # the load may drift: bracket
-        redis.Redis.from_url(url).flushall()
-        packed = bench_loop(url, "bp", args.packed_items, args.batch, True, args.warmup,
-                            args.seconds, False, 50_000)
+        flush()
+        packed = bench_drain(url, "dp", args.packed_items, args.batch, True, args.warmup,
+                             args.cycles, False, args.packed_items // 2)
+        flush()
+        loop_packed = bench_loop(url, "bp", args.packed_items, args.batch, True, args.warmup,
+                                 args.seconds, False, 50_000)
         mem = bench_memory(url, "bm", args.items, args.batch)
     raw_rate = (raw + raw2) / 2
     result = {
@@ -382,34 +536,50 @@ def main(argv: list[str] | None = None) -> int:
         "worker_root": WORKER_ROOT,
         "raw_entries_per_s": round(raw_rate),
         "raw_runs": [round(raw), round(raw2)],
-        "worker_entries_per_s": round(plain["entries_per_s"]),
+        # the worker alone, draining a backlog of answers to its own questions
+        "worker_entries_per_s": round(plain["rate"]),
+        "ratio": round(plain["rate"] / raw_rate, 3),
         "questions_per_answer_plain": round(plain["questions_per_answer"], 3),
-        "ratio": round(plain["entries_per_s"] / raw_rate, 3),
-        "packed_answers_per_s": round(packed["answers_per_s"]),
-        "packed_over_plain": round(packed["answers_per_s"] / plain["entries_per_s"], 2),
+        "packed_answers_per_s": round(packed["rate"]),
+        "packed_over_plain": round(packed["rate"] / plain["rate"], 2),
+        "questions_per_answer_packed": round(packed["questions_per_answer"], 3),
         "lookup_p99_ms": round(plain["lookup"]["p99_ms"], 3),
         "lookup_p50_ms": round(plain["lookup"]["p50_ms"], 3),
         "lookups": plain["lookup"]["lookups"],
         "lookup_idle_p99_ms": round(idle["p99_ms"], 3),
-        "exec_ms_plain": round(plain["exec_ms"], 3),
-        "exec_ms_packed": round(packed["exec_ms"], 3),
-        # per second of the worker's own CPU time: what a dedicated core would give
-        "worker_entries_per_cpu_s": round(plain["entries_per_s"] / plain["worker_cpu_share"]),
-        "packed_answers_per_cpu_s": round(packed["answers_per_s"] / packed["worker_cpu_share"]),
+        "drain_windows": [plain["windows"], packed["windows"]],
+        "drain_window_s": [plain["window_s"], packed["window_s"]],
         "worker_cpu_share_plain": round(plain["worker_cpu_share"], 2),
-        "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
-        # the rest of the two cores: Redis, and the simulated crowd adapter (this process)
         "redis_cpu_share_plain": round(plain["redis_cpu_share"], 2),
-        "adapter_cpu_share_plain": round(plain["adapter_cpu_share"], 2),
+        "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
         "redis_cpu_share_packed": round(packed["redis_cpu_share"], 2),
-        "adapter_cpu_share_packed": round(packed["adapter_cpu_share"], 2),
+        # per second of the worker's own CPU time: what a dedicated core would give
+        "worker_entries_per_cpu_s": round(plain["rate"] / plain["worker_cpu_share"]),
+        "packed_answers_per_cpu_s": round(packed["rate"] / packed["worker_cpu_share"]),
+        "redis_us_per_answer_plain": plain["redis_us_per_answer"],
+        "redis_us_per_answer_packed": packed["redis_us_per_answer"],
+        # the closed loop: the simulated crowd adapter runs beside the worker, on the same
+        # two cores and the same Redis, answering each question as it appears
+        "loop_entries_per_s": round(loop["entries_per_s"]),
+        "loop_ratio": round(loop["entries_per_s"] / raw_rate, 3),
+        "loop_packed_answers_per_s": round(loop_packed["answers_per_s"]),
+        "loop_lookup_p99_ms": round(loop["lookup"]["p99_ms"], 3),
+        "loop_exec_ms_plain": round(loop["exec_ms"], 3),
+        "loop_exec_ms_packed": round(loop_packed["exec_ms"], 3),
+        "loop_cpu_shares_plain": {"worker": round(loop["worker_cpu_share"], 2),
+                                  "redis": round(loop["redis_cpu_share"], 2),
+                                  "adapter": round(loop["adapter_cpu_share"], 2)},
+        "loop_cpu_shares_packed": {"worker": round(loop_packed["worker_cpu_share"], 2),
+                                   "redis": round(loop_packed["redis_cpu_share"], 2),
+                                   "adapter": round(loop_packed["adapter_cpu_share"], 2)},
         "items": mem["items"],
         "worker_bytes_per_item": round(mem["worker_bytes_per_item"], 1),
         "redis_bytes_per_item": round(mem["redis_bytes_per_item"], 1),
         "assign_bytes_per_item": round(mem["assign_bytes_per_item"], 1),
         "snapshot_bytes_per_item": round(mem["snapshot_bytes_per_item"], 1),
         "items_ingest_per_s": round(mem["items_ingest_per_s"]),
-        "worker_exit_codes": [plain["exit"], packed["exit"], mem["exit"]],
+        "worker_exit_codes": [plain["exit"], loop["exit"], packed["exit"], loop_packed["exit"],
+                              mem["exit"]],
     }
     if args.json:
         print(json.dumps(result, indent=2))

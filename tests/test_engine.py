@@ -8,6 +8,7 @@ from scipy.stats import beta as beta_dist
 from scipy.stats import binom
 
 from streamgroup.core import sprt
+from streamgroup.core.codes import Q_EXPIRED, Q_OPEN
 from streamgroup.core.engine import Engine
 from streamgroup.core.types import Answer, EngineConfig
 from streamgroup.errors import EngineInputError
@@ -234,6 +235,33 @@ def test_timeouts_reissue_questions() -> None:
     again = eng.plan(6000)
     assert {frozenset((q.a, q.b)) for q in again} == {frozenset((q.a, q.b)) for q in first}
     assert eng.stats()["outstanding"] == len(again)
+
+
+def test_expiry_closes_exactly_the_questions_past_their_timeout() -> None:
+    """Every open question older than the timeout expires, none younger, whatever was
+    answered in between (checked question by question against the definition; the engine
+    finds them by bisection over issue order)."""
+    crowd = Crowd(400, delta=0.6, seed=4)
+    timeout = 5000
+    eng = Engine(EngineConfig(question_timeout_ms=timeout, max_outstanding=150, inflight=2))
+    eng.add_items((k, None) for k in crowd.keys)
+    rng = np.random.default_rng(4)
+    now = 0
+    for _ in range(60):
+        qs = eng.plan(now)
+        keep = [q for q in qs if rng.random() < 0.6]  # the rest go unanswered
+        eng.add_answers(crowd.answer_now(keep), now)
+        now += 500 * int(rng.integers(1, 4))  # whole steps: some land exactly on the timeout
+        before = eng.q["state"][: eng.q.n].copy()
+        eng.plan(now)
+        state, ts = eng.q["state"][: eng.q.n], eng.q["ts"][: eng.q.n]
+        was_open = np.zeros(len(state), dtype=bool)
+        was_open[: len(before)] = before == Q_OPEN
+        late = ts + timeout <= now
+        assert (state[was_open & late] == Q_EXPIRED).all()
+        assert (state[was_open & ~late] == Q_OPEN).all()
+        open_now = np.flatnonzero(state == Q_OPEN)
+        assert eng.q_low == (open_now[0] if len(open_now) else len(state))
 
 
 def test_check_questions_follow_their_rate_and_pair_confident_items() -> None:

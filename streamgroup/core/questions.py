@@ -190,13 +190,33 @@ class QuestionsMixin:
                                [now_ms] * count)
 
     def _expire(self, now_ms: int) -> None:
+        """Close the open questions older than the timeout.
+
+        Questions are numbered in the order they were issued and stamped with the engine's
+        clock, which never goes back: the expired ones are a prefix of the numbers from
+        ``q_low`` (the oldest open question) on, found by bisection. The cost is in
+        proportion to the questions that expire or closed since the last call, not to the
+        questions in flight.
+        """
         q = self.q
         lo, n = self.q_low, q.n
         if lo >= n:
             return
-        state = q["state"][lo:n]
-        late = np.nonzero((state == Q_OPEN)
-                          & (q["ts"][lo:n] + self.config.question_timeout_ms <= now_ms))[0]
-        self._close_questions(lo + late, Q_EXPIRED)
-        open_ = np.nonzero(q["state"][lo:n] == Q_OPEN)[0]
-        self.q_low = lo + (int(open_[0]) if len(open_) else n - lo)
+        cut = lo + int(np.searchsorted(q["ts"][lo:n], now_ms - self.config.question_timeout_ms,
+                                       side="right"))
+        if cut > lo:
+            late = np.nonzero(q["state"][lo:cut] == Q_OPEN)[0]
+            self._close_questions(lo + late, Q_EXPIRED)
+        # move q_low past the questions closed since (a chunk at a time: the scan stops at
+        # the first open one)
+        state = q["state"]
+        step = 256
+        while lo < n:
+            hi = min(n, lo + step)
+            open_ = np.flatnonzero(state[lo:hi] == Q_OPEN)
+            if len(open_):
+                lo += int(open_[0])
+                break
+            lo = hi
+            step *= 2
+        self.q_low = lo
