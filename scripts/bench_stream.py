@@ -238,6 +238,8 @@ def lookup_child(url: str, ns: str, n: int, seconds: float, rate: float) -> None
     """Run in a separate process: HGET random assignment keys; print each lookup's start
     (CLOCK_MONOTONIC, shared by every process here) and latency, so that the caller can keep
     the lookups that fall inside its measurement windows."""
+    if os.environ.get("BENCH_LOOKUP_NICE"):
+        os.nice(int(os.environ["BENCH_LOOKUP_NICE"]))
     r = redis.Redis.from_url(url, single_connection_client=True)
     k = Keys(ns)
     fmt = key_format(n)

@@ -331,3 +331,32 @@ def test_randomised_boundary_commits_with_the_chance_that_makes_the_error_alpha(
     assert not eng._may_commit(idx, np.full(n, 1.04 * alpha), np.zeros(n),
                                np.ones(n, dtype=bool)).any()
     assert eng._may_commit(idx, np.full(n, alpha), np.zeros(n), np.ones(n, dtype=bool)).all()
+
+
+def test_published_records_follow_every_change() -> None:
+    """A reader that applies each batch's changed records holds every item's current
+    record: side, status, answers counted and revisions, after every round (so no change
+    goes unpublished), while an answer against a placed partner rewrites only the item it
+    counts for."""
+    crowd = Crowd(600, delta=0.6, seed=21)
+    eng = Engine(EngineConfig(max_outstanding=200))
+    eng.add_items((k, None) for k in crowd.keys)
+    shown: dict[str, tuple] = {}
+    now, written, answered = 0, 0, 0
+    while not eng.done():
+        qs = eng.plan(now)
+        got = crowd.answer_now(qs)
+        eng.add_answers(got, now)
+        answered += len(got)
+        changed = eng.take_changes()
+        written += len(changed)
+        for r in changed:
+            shown[r.key] = (r.side, r.status, r.answers, r.rev)
+        now += 1000
+        for i in range(0, 600, 37):  # a spread of items, every round
+            r = eng.record(crowd.keys[i])
+            assert shown[r.key] == (r.side, r.status, r.answers, r.rev)
+    for k in crowd.keys:
+        r = eng.record(k)
+        assert shown[k] == (r.side, r.status, r.answers, r.rev)
+    assert written < 1.3 * answered  # about one record per answer, not one per side

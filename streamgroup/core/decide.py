@@ -66,6 +66,7 @@ class DecideMixin:
             elif len(newly):
                 released = self.ledger.release_pending()
                 todo = self.ledger.count(released, self.delta, self.se)
+                self.items["dirty"][todo] = True  # held answers now count: new evidence
                 todo = uniq(todo)
             else:
                 return

@@ -360,6 +360,9 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
             self._mark_block_answers(a, b)
         idx = self.ledger.append_answers(a, b, src, same)
         targets = self.ledger.count(idx, self.delta, self.se)
+        # only the items whose evidence moved have a new record (not a placed partner,
+        # nor the two sides of an answer held until one of them is placed)
+        self.items["dirty"][targets] = True
         if self.phase == "run":
             if self._counted() >= max(REFIT_MIN, self.counted_at_fit * (1 + REFIT_GROWTH)):
                 self._refit()
@@ -372,10 +375,11 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         return self.ledger.n_answers
 
     def _touch(self, idx: np.ndarray) -> None:
+        """Waiting items that are asked about, or answered, are asking now."""
         st = self.items["status"]
         waiting = idx[st[idx] == WAITING]
         st[waiting] = ASKING
-        self.items["dirty"][idx] = True
+        self.items["dirty"][waiting] = True
 
     def _close_questions(self, qn: np.ndarray, state: int) -> None:
         q = self.q
