@@ -2,6 +2,7 @@
 
     python scripts/bench_stream.py --json                 # 1,000,000 items for the memory part
     python scripts/bench_stream.py --items 200000 --json  # a quicker run
+    python scripts/bench_stream.py --drain-only --batch 200 --json  # rate and lookups only
 
 All figures come from one run on one private ``redis-server`` (started here on a free
 port, persistence off), with the same batch size everywhere:
@@ -15,8 +16,9 @@ port, persistence off), with the same batch size everywhere:
   backlog is made in cycles: after a closed-loop warm-up (past the bootstrap), the worker
   is paused (SIGSTOP) while a simulated crowd adapter answers every question it has in
   flight (half the items: ``--drain-items`` / 2), then let go (SIGCONT) and timed until it
-  has consumed them; ``--cycles`` windows, summed. The adapter is idle in the windows, so
-  it takes neither cores nor Redis time from the worker; ``ratio`` is this over raw.
+  has consumed them; ``--cycles`` windows, summed (after one that fills the cap). The
+  adapter is idle in the windows, so it takes neither cores nor Redis time from the
+  worker; ``ratio`` is this over raw.
 - ``packed_answers_per_s``: the same with column packs both ways (packed answers in,
   ``question_columns`` packs out), over ``--packed-items`` items.
 - ``lookup_p99_ms``: HGET of random keys of ``{NS}:assign`` from another process, about
@@ -44,7 +46,9 @@ machine with no worker running.
 
 ``BENCH_PYSPY=PATH`` records a py-spy profile (raw format) of the worker over the drain
 cycles, to ``PATH`` and ``PATH-packed`` (py-spy is a tool to install by hand, not a
-dependency).
+dependency). ``BENCH_LOOKUP_NICE=N`` runs the lookup process at nice ``N`` (negative:
+ahead of the worker), to tell time spent waiting for a core from time spent waiting for
+Redis.
 """
 
 from __future__ import annotations
@@ -362,7 +366,9 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
 
     After a closed-loop warm-up, each cycle stops the worker (SIGSTOP), lets the adapter
     answer every question in the stream (about ``max_outstanding``: one per item in flight),
-    then lets the worker go (SIGCONT) and times it until it has consumed that backlog. The
+    then lets the worker go (SIGCONT) and times it until it has consumed that backlog. A
+    first cycle, not measured, lets the worker fill the outstanding cap, so that in the
+    measured ones it writes about one question per answer. The
     worker does everything it does in service: it reads the answers in batches, applies
     them, plans and writes about one new question per answer, writes the assignment records,
     the journal and the acknowledgements in one MULTI/EXEC per batch. Only the adapter is
@@ -406,7 +412,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         group = next(g for g in r.xinfo_groups(k.answers) if g["name"] == GROUP.encode())
         return group["pending"] == 0 and group["last-delivered-id"] == last
 
-    for _ in range(cycles):
+    for cycle in range(cycles + 1):  # the first one only fills the cap: not measured
         wait_until(caught_up, 120, "the worker to catch up")
         time.sleep(0.05)  # the questions of its last commit are in the stream by now
         proc.send_signal(signal.SIGSTOP)
@@ -414,7 +420,6 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         backlog = 0
         while got := feeder.step():  # answer every question the stopped worker wrote
             backlog += got
-        backlogs.append(backlog)
         target = consumed() + backlog
         r.config_resetstat()
         rc0 = redis_cpu(r)
@@ -423,6 +428,9 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         while consumed() < target:
             time.sleep(0.002)
         t1 = time.monotonic()
+        if cycle == 0:
+            continue
+        backlogs.append(backlog)
         cpu += cpu_seconds(proc.pid) - c0
         r_cpu += redis_cpu(r) - rc0
         for name, v in r.info("commandstats").items():
@@ -431,9 +439,14 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
     if spy is not None:
         spy.send_signal(signal.SIGINT)
         spy.wait(60)
+    wait_until(caught_up, 120, "the worker to catch up")
+    time.sleep(0.05)
+    proc.send_signal(signal.SIGSTOP)  # count the questions the last window wrote
+    time.sleep(0.05)
     last = 0
-    while got := feeder.step():  # the questions the last window wrote
+    while got := feeder.step():
         last += got
+    proc.send_signal(signal.SIGCONT)
     done = sum(backlogs)
     busy = sum(hi - lo for lo, hi in windows)
     out: dict[str, Any] = {
@@ -443,6 +456,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         "window_s": round(busy / len(windows), 3),
         # questions written in the windows (answered in the next fill) per answer consumed
         "questions_per_answer": (sum(backlogs[1:]) + last) / done,
+        "backlogs": [*backlogs, last],
         "worker_cpu_share": cpu / busy,
         "redis_cpu_share": r_cpu / busy,
         "redis_us_per_answer": {name: round(us / done, 3)
@@ -503,6 +517,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--seconds", type=float, default=10.0, help="measurement window per run")
     p.add_argument("--raw-entries", type=int, default=200_000)
     p.add_argument("--json", action="store_true")
+    p.add_argument("--drain-only", action="store_true",
+                   help="only the bare loop and the plain drain with lookups (a quicker run, "
+                        "for comparing batch sizes)")
     p.add_argument("--worker-root", default=ROOT,
                    help="checkout whose worker to run (default: this one); the rest of the "
                         "benchmark stays the same, for before/after comparisons")
@@ -513,6 +530,28 @@ def main(argv: list[str] | None = None) -> int:
     if args.lookup_child:
         url, ns, n, secs, rate = args.lookup_child
         lookup_child(url, ns, int(n), float(secs), float(rate))
+        return 0
+    if args.drain_only:
+        with EmbeddedRedis("redis-server") as srv:
+            raw = bench_raw(srv.url, args.batch, args.raw_entries)
+            plain = bench_drain(srv.url, "dw", args.drain_items, args.batch, False,
+                                args.warmup, args.cycles, True, args.drain_items // 2)
+            raw2 = bench_raw(srv.url, args.batch, args.raw_entries)
+        raw_rate = (raw + raw2) / 2
+        quick = {
+            "batch": args.batch,
+            "raw_entries_per_s": round(raw_rate),
+            "worker_entries_per_s": round(plain["rate"]),
+            "ratio": round(plain["rate"] / raw_rate, 3),
+            "questions_per_answer_plain": round(plain["questions_per_answer"], 3),
+            "lookup_p99_ms": round(plain["lookup"]["p99_ms"], 3),
+            "lookup_p50_ms": round(plain["lookup"]["p50_ms"], 3),
+            "lookups": plain["lookup"]["lookups"],
+            "worker_cpu_share_plain": round(plain["worker_cpu_share"], 2),
+            "redis_cpu_share_plain": round(plain["redis_cpu_share"], 2),
+            "worker_exit_codes": [plain["exit"]],
+        }
+        print(json.dumps(quick, indent=2) if args.json else quick)
         return 0
     with EmbeddedRedis("redis-server") as srv:
         url = srv.url
