@@ -297,8 +297,10 @@ def idle_lookups(url: str, seconds: float) -> dict[str, Any]:
     return latency_summary(got["start"], got["ms"])
 
 
-def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
-               seconds: float, lookups: bool, max_outstanding: int) -> dict[str, Any]:
+def start_crowd_run(url: str, ns: str, n: int, batch: int, pack: bool, max_outstanding: int
+                    ) -> tuple[redis.Redis, Keys, subprocess.Popen[bytes], Feeder]:
+    """Fill ``n`` items, start the worker and wait until it has registered every one (so
+    that what follows holds answers only), and make the simulated crowd adapter."""
     r = redis.Redis.from_url(url)
     k = Keys(ns)
     crowd = Crowd(n, delta=0.6, sources=[0.6] * 50, seed=1)
@@ -306,10 +308,33 @@ def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
     proc = spawn_worker(url, ns, batch=batch, block_ms=100, snapshot_every=30,
                         pack_questions=pack, max_outstanding=max_outstanding,
                         **({"question_columns": True} if pack else {}))
-    # every item registered before the crowd starts: the window then holds answers only
     wait_until(lambda: int(r.hget(k.meta, "items_applied") or 0) >= n, 600,
                "the worker to register the items")
-    feeder = Feeder(url, ns, crowd, pack, batch)
+    return r, k, proc, Feeder(url, ns, crowd, pack, batch)
+
+
+def warm_up(feeder: Feeder, seconds: float) -> None:
+    """The closed loop for a while: past the bootstrap, into the steady state."""
+    t_end = time.monotonic() + seconds
+    while time.monotonic() < t_end:
+        feeder.step()
+
+
+def us_per_answer(usec: dict[str, float], answers: int) -> dict[str, float]:
+    """Redis's time by command (INFO commandstats) per answer consumed: the top eight."""
+    top = sorted(usec.items(), key=lambda kv: -kv[1])[:8]
+    return {name: round(us / max(1, answers), 3) for name, us in top}
+
+
+def start_lookups(url: str, ns: str, n: int, seconds: float) -> subprocess.Popen[bytes]:
+    return subprocess.Popen(
+        [sys.executable, os.path.abspath(__file__), "--lookup-child", url, ns, str(n),
+         str(seconds), "500"], stdout=subprocess.PIPE)
+
+
+def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
+               seconds: float, lookups: bool, max_outstanding: int) -> dict[str, Any]:
+    r, k, proc, feeder = start_crowd_run(url, ns, n, batch, pack, max_outstanding)
 
     def consumed() -> int:
         return int(r.hget(k.meta, "entries:answers") or 0)
@@ -317,14 +342,8 @@ def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
     def applied() -> int:
         return int(r.hget(k.meta, "applied") or 0)
 
-    t_end = time.monotonic() + warmup
-    while time.monotonic() < t_end:
-        feeder.step()
-    child = None
-    if lookups:
-        child = subprocess.Popen(
-            [sys.executable, os.path.abspath(__file__), "--lookup-child", url, ns, str(n),
-             str(seconds), "500"], stdout=subprocess.PIPE)
+    warm_up(feeder, warmup)
+    child = start_lookups(url, ns, n, seconds) if lookups else None
     r.config_resetstat()
 
     r0, f0 = redis_cpu(r), time.process_time()
@@ -347,9 +366,8 @@ def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
         # mean time Redis spends inside one batch transaction (it serves nothing else then)
         "exec_ms": stats.get("cmdstat_exec", {}).get("usec_per_call", 0.0) / 1000,
         # where Redis's time goes, in microseconds per answer consumed, by command
-        "redis_us_per_answer": {
-            name.removeprefix("cmdstat_"): round(v["usec"] / max(1, a1 - a0), 3)
-            for name, v in sorted(stats.items(), key=lambda kv: -kv[1]["usec"])[:8]},
+        "redis_us_per_answer": us_per_answer(
+            {name.removeprefix("cmdstat_"): v["usec"] for name, v in stats.items()}, a1 - a0),
     }
     if child is not None:
         line = child.communicate(timeout=seconds + 60)[0].decode().strip().splitlines()[-1]
@@ -368,34 +386,19 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
     answer every question in the stream (about ``max_outstanding``: one per item in flight),
     then lets the worker go (SIGCONT) and times it until it has consumed that backlog. A
     first cycle, not measured, lets the worker fill the outstanding cap, so that in the
-    measured ones it writes about one question per answer. The
-    worker does everything it does in service: it reads the answers in batches, applies
-    them, plans and writes about one new question per answer, writes the assignment records,
-    the journal and the acknowledgements in one MULTI/EXEC per batch. Only the adapter is
-    idle during the windows, so it takes neither cores nor Redis time from the worker.
+    measured ones it writes about one question per answer. The worker does everything it
+    does in service: it reads the answers in batches, applies them, plans and writes the
+    new questions, the assignment records, the journal and the acknowledgements in one
+    MULTI/EXEC per batch. Only the adapter is idle during the windows, so it takes neither
+    cores nor Redis time from the worker.
     """
-    r = redis.Redis.from_url(url)
-    k = Keys(ns)
-    crowd = Crowd(n, delta=0.6, sources=[0.6] * 50, seed=1)
-    fill_items(r, k.items, n)
-    proc = spawn_worker(url, ns, batch=batch, block_ms=100, snapshot_every=30,
-                        pack_questions=pack, max_outstanding=max_outstanding,
-                        **({"question_columns": True} if pack else {}))
-    wait_until(lambda: int(r.hget(k.meta, "items_applied") or 0) >= n, 600,
-               "the worker to register the items")
-    feeder = Feeder(url, ns, crowd, pack, batch)
+    r, k, proc, feeder = start_crowd_run(url, ns, n, batch, pack, max_outstanding)
 
     def consumed() -> int:
         return int(r.hget(k.meta, "entries:answers" if not pack else "applied") or 0)
 
-    t_end = time.monotonic() + warmup
-    while time.monotonic() < t_end:
-        feeder.step()
-    child = None
-    if lookups:
-        child = subprocess.Popen(
-            [sys.executable, os.path.abspath(__file__), "--lookup-child", url, ns, str(n),
-             "3600", "500"], stdout=subprocess.PIPE)
+    warm_up(feeder, warmup)
+    child = start_lookups(url, ns, n, 3600) if lookups else None  # ended by SIGTERM
     spy = None
     if os.environ.get("BENCH_PYSPY"):  # a profile of the worker over the cycles (a tool)
         spy = subprocess.Popen(["py-spy", "record", "--pid", str(proc.pid), "--format", "raw",
@@ -407,19 +410,25 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
     backlogs: list[int] = []
     cpu = r_cpu = 0.0
     usec: collections.Counter[str] = collections.Counter()
+
     def caught_up() -> bool:  # every answer in the stream read and committed
         last = r.xinfo_stream(k.answers)["last-generated-id"]
         group = next(g for g in r.xinfo_groups(k.answers) if g["name"] == GROUP.encode())
         return group["pending"] == 0 and group["last-delivered-id"] == last
 
-    for cycle in range(cycles + 1):  # the first one only fills the cap: not measured
+    def pause_and_answer() -> int:
+        """Stop the caught-up worker and answer every question it wrote; how many."""
         wait_until(caught_up, 120, "the worker to catch up")
         time.sleep(0.05)  # the questions of its last commit are in the stream by now
         proc.send_signal(signal.SIGSTOP)
         time.sleep(0.05)  # let a reply in flight land in the socket
-        backlog = 0
-        while got := feeder.step():  # answer every question the stopped worker wrote
-            backlog += got
+        answered = 0
+        while got := feeder.step():
+            answered += got
+        return answered
+
+    for cycle in range(cycles + 1):  # the first one only fills the cap: not measured
+        backlog = pause_and_answer()
         target = consumed() + backlog
         r.config_resetstat()
         rc0 = redis_cpu(r)
@@ -439,13 +448,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
     if spy is not None:
         spy.send_signal(signal.SIGINT)
         spy.wait(60)
-    wait_until(caught_up, 120, "the worker to catch up")
-    time.sleep(0.05)
-    proc.send_signal(signal.SIGSTOP)  # count the questions the last window wrote
-    time.sleep(0.05)
-    last = 0
-    while got := feeder.step():
-        last += got
+    last = pause_and_answer()  # the questions the last window wrote
     proc.send_signal(signal.SIGCONT)
     done = sum(backlogs)
     busy = sum(hi - lo for lo, hi in windows)
@@ -459,8 +462,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         "backlogs": [*backlogs, last],
         "worker_cpu_share": cpu / busy,
         "redis_cpu_share": r_cpu / busy,
-        "redis_us_per_answer": {name: round(us / done, 3)
-                                for name, us in usec.most_common(8)},
+        "redis_us_per_answer": us_per_answer(usec, done),
     }
     if child is not None:
         child.send_signal(signal.SIGTERM)

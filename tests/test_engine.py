@@ -359,4 +359,26 @@ def test_published_records_follow_every_change() -> None:
     for k in crowd.keys:
         r = eng.record(k)
         assert shown[k] == (r.side, r.status, r.answers, r.rev)
-    assert written < 1.3 * answered  # about one record per answer, not one per side
+    assert written < 1.3 * answered  # about one record per answer
+
+
+def test_an_answer_against_a_placed_partner_rewrites_only_the_item_it_counts_for() -> None:
+    """The placed partner's record (side, status, answers) does not change, so it is not
+    written again."""
+    crowd = Crowd(300, delta=0.6, seed=22)
+    eng = Engine(EngineConfig(max_outstanding=100))
+    eng.add_items((k, None) for k in crowd.keys)
+    now = 0
+    while eng.stats()["items"]["placed"] < 20 or eng.stats()["items"]["asking"] < 5:
+        qs = eng.plan(now)
+        eng.add_answers(crowd.answer_now(qs), now)
+        now += 1000
+    records = {k: eng.record(k) for k in crowd.keys}
+    placed = [k for k, r in records.items() if r.status == "placed"]
+    asking = [k for k, r in records.items() if r.status == "asking"]
+    eng.take_changes()
+    for u, p in zip(asking[:5], placed[:5], strict=True):
+        eng.add_answers([Answer(u, p, True, "late-src")], now)
+        changed = {r.key for r in eng.take_changes()}
+        assert p not in changed
+        assert u in changed
