@@ -551,6 +551,7 @@ def main(argv: list[str] | None = None) -> int:
             "lookups": plain["lookup"]["lookups"],
             "worker_cpu_share_plain": round(plain["worker_cpu_share"], 2),
             "redis_cpu_share_plain": round(plain["redis_cpu_share"], 2),
+            "redis_us_per_answer_plain": plain["redis_us_per_answer"],
             "worker_exit_codes": [plain["exit"]],
         }
         print(json.dumps(quick, indent=2) if args.json else quick)
