@@ -23,7 +23,6 @@ import time
 from collections.abc import Callable
 from typing import Any
 
-import hiredis
 import msgpack
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -122,7 +121,7 @@ def main(argv: list[str] | None = None) -> int:
             group=GROUP, pack_questions=args.packed,
             question_columns=args.packed and not args.row_packs)
         t2 = time.perf_counter()
-        b"".join([hiredis.pack_command(c) for c in plan.commands])
+        plan.packed()
         t3 = time.perf_counter()
         totals["answers"] += len(qs)
         totals["process"] += t1 - t0

@@ -5,7 +5,7 @@
     python scripts/flood_heavy.py --plain --answers 1000000
 
 Same checks as tests/test_flood.py (tests/floodkit.py): every answer counted once, reads
-bounded to two batches, question caps held, lag back to 0, input streams trimmed; prints
+bounded to three batches, question caps held, lag back to 0, input streams trimmed; prints
 the figures (memory growth of the worker and of Redis, rates, drain time). The worker
 keeps every counted answer in its ledger (about 200 bytes each), so size --answers to
 the machine: 5,000,000 needs about 1.5 GB for the worker and 0.5 GB for the burst.

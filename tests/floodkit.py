@@ -8,6 +8,8 @@ the group's lag and pending count, and the worker's own metrics (questions outst
 
 from __future__ import annotations
 
+import os
+import signal
 import tempfile
 import time
 import urllib.request
@@ -97,11 +99,17 @@ def flood(n_answers: int = 1_000_000, n_items: int = 5_000, max_outstanding: int
                 for p in payloads[lo:lo + 20]:
                     pipe.xadd(K.answers, p)
                 pipe.execute()
-        else:  # a server-side loop: a producer far faster than any one-entry reader
+        else:  # a server-side loop, with the worker paused while it runs: a one-entry
+            # producer is only ~2x faster than the worker, too close to rely on when the
+            # machine is loaded, so the backlog is made certain rather than hoped for
             names = ("a", "b", "same", "source")
-            for lo in range(0, len(payloads), 5000):
-                vals = [row[n] for row in payloads[lo:lo + 5000] for n in names]
-                r.eval(xadd_script(names), 1, K.answers, 0, *vals)
+            os.kill(w.proc.pid, signal.SIGSTOP)
+            try:
+                for lo in range(0, len(payloads), 5000):
+                    vals = [row[n] for row in payloads[lo:lo + 5000] for n in names]
+                    r.eval(xadd_script(names), 1, K.answers, 0, *vals)
+            finally:
+                os.kill(w.proc.pid, signal.SIGCONT)
         write_s = time.monotonic() - t0
         peak = {"rss": 0, "redis": 0, "pending": 0, "lag": 0, "outstanding": float(first_out)}
         lag_at_end_of_burst = _lag(r) + int(r.xpending(K.answers, GROUP)["pending"])
@@ -155,8 +163,9 @@ def flood(n_answers: int = 1_000_000, n_items: int = 5_000, max_outstanding: int
             "producer far ahead (backlog after burst)":
                 lag_at_end_of_burst >= len(payloads) // 2,
             "lag recovered (stream and gauge)": lag_gauge == 0,
-            # the worker holds at most what it read: two batches of entries (one committing)
-            "reads bounded (pending <= 2 batches)": peak["pending"] <= 2 * batch,
+            # the worker holds at most three batches of entries: one committing, one in
+            # process and the next, read just before the commit's XACK
+            "reads bounded (pending <= 3 batches)": peak["pending"] <= 3 * batch,
             "worker memory per answer bounded": peak["rss"] - base_rss < 400 * n_answers,
             "input trimmed once consumed": left == 0,
             "budget respected": issued <= budget and q_len <= budget,

@@ -1,44 +1,71 @@
-"""The batch transaction's question appends, against a real redis-server."""
+"""The batch transaction as sent and read back, against a real redis-server: questions
+formatted ahead as plain XADDs, a read sent before MULTI, replies read straight from the
+connection (hiredis and pure-Python parsers)."""
 
 from __future__ import annotations
 
 import pytest
 import redis
+from redis._parsers import _HiredisParser, _RESP2Parser
 
 from streamgroup.core.types import QuestionColumns
 from streamgroup.keys import QUESTION_FIELDS, Keys
-from streamgroup.stream.commit import QUESTION_RUNS, _question_entries, _xadd_many
+from streamgroup.stream.commit import (
+    CommitError,
+    CommitPlan,
+    Prepacked,
+    _question_entries,
+    _xadd_many,
+    receive,
+    send,
+)
 
 pytestmark = pytest.mark.redis
 K = Keys("tc")
+PARSERS = [pytest.param(_HiredisParser, id="hiredis"), pytest.param(_RESP2Parser, id="python")]
+
+
+def _client(url: str, parser: type = _HiredisParser) -> redis.Redis:
+    pool = redis.ConnectionPool.from_url(url, parser_class=parser)
+    return redis.Redis(connection_pool=pool, single_connection_client=True)
 
 
 def _entries(r: redis.Redis, stream: str) -> list[dict[str, str]]:
     return [{k.decode(): v.decode() for k, v in f.items()} for _, f in r.xrange(stream)]
 
 
-def _columns(qids: list[str], whys: list[str], ts: list[int]) -> QuestionColumns:
+def _columns(qids: list[str], whys: list[str], ts: list[int], b: str = "shard-{}",
+             ) -> QuestionColumns:
     n = len(qids)
     return QuestionColumns(qids, [f"kiln-{i:04d}" for i in range(n)],
-                           [f"shard-é{i}" for i in range(n)], whys, ts)
+                           [b.format(i) for i in range(n)], whys, ts)
 
 
-@pytest.mark.parametrize("qids, whys, ts", [
-    ([str(q) for q in range(1200, 1207)], ["seed"] * 2 + ["place"] * 4 + ["check"], [77] * 7),
-    ([str(q) for q in range(9_007_199_254_740_980, 9_007_199_254_740_983)], ["place"] * 3,
-     [5] * 3),
-    (["0"], ["place"], [1]),
-    (["4", "6", "7"], ["place"] * 3, [9] * 3),  # a gap: the general script
-    (["1", "2"], ["place"] * 2, [3, 4]),  # two clock readings: the general script
+def _commit(r: redis.Redis, commands: list) -> list:
+    plan = CommitPlan(commands)
+    send(r, plan)
+    return receive(r, plan)
+
+
+@pytest.mark.parametrize("parser", PARSERS)
+@pytest.mark.parametrize("qids, whys, ts, b", [
+    ([str(q) for q in range(1200, 1207)], ["seed"] * 2 + ["place"] * 4 + ["check"], [77] * 7,
+     "shard-{}"),
+    (["4", "6", "7"], ["place", "check", "place"], [9, 10, 9], "shard-{}"),
+    (["1", "2"], ["place"] * 2, [3, 4], "shard-é{}"),  # non-ASCII keys: byte lengths
+    (["0"], ["plaçe"], [1], "shard-{}"),  # a non-ASCII why
 ])
-def test_question_runs_write_what_the_field_by_field_script_writes(
-        redis_url: str, qids: list[str], whys: list[str], ts: list[int]) -> None:
-    """Questions appended from runs (first qid, one ts, why counts) read back field for
-    field as the general per-field script writes them, qids included."""
-    r = redis.Redis.from_url(redis_url)
-    qc = _columns(qids, whys, ts)
-    cmd = _question_entries("{tc}:q1", 0, qc)
-    r.execute_command(*cmd)
+def test_prepacked_questions_write_what_the_field_by_field_script_writes(
+        redis_url: str, parser: type, qids: list[str], whys: list[str], ts: list[int],
+        b: str) -> None:
+    """Questions formatted ahead as plain XADDs read back field for field as the general
+    per-field script writes them, one EXEC reply (an entry id) per question."""
+    r = _client(redis_url, parser)
+    qc = _columns(qids, whys, ts, b)
+    entries = _question_entries("{tc}:q1", 0, qc)
+    assert isinstance(entries[0], Prepacked) and len(entries) == 1  # no cap: no trim
+    result = _commit(r, entries)
+    assert len(result) == len(qids) and all(b"-" in x for x in result)
     vals: list[object] = []
     for row in zip(qc.qid, qc.a, qc.b, qc.why, qc.ts_ms, strict=True):
         vals += row
@@ -46,13 +73,48 @@ def test_question_runs_write_what_the_field_by_field_script_writes(
     got, want = _entries(r, "{tc}:q1"), _entries(r, "{tc}:q2")
     assert got == want
     assert [e["qid"] for e in got] == qids
-    assert (cmd[1] == QUESTION_RUNS) == (qids[0] != "4" and len(set(ts)) == 1)
 
 
-def test_question_runs_cap_the_stream(redis_url: str) -> None:
-    """The cap argument trims the questions stream (approximately) as before."""
-    r = redis.Redis.from_url(redis_url)
+def test_prepacked_questions_cap_the_stream(redis_url: str) -> None:
+    """The cap adds an approximate trim after the appends."""
+    r = _client(redis_url)
     n = 3000
     qc = _columns([str(q) for q in range(n)], ["place"] * n, [1] * n)
-    r.execute_command(*_question_entries(K.questions, 100, qc))
+    entries = _question_entries(K.questions, 100, qc)
+    assert [c.name if isinstance(c, Prepacked) else c[0] for c in entries] == ["XADD", "XTRIM"]
+    result = _commit(r, entries)
+    assert len(result) == n + 1
     assert r.xlen(K.questions) < n
+
+
+@pytest.mark.parametrize("parser", PARSERS)
+def test_a_command_sent_first_replies_before_the_transaction(redis_url: str,
+                                                             parser: type) -> None:
+    """``first`` goes out before MULTI: its reply is read first and EXEC's come after,
+    matched to the plan's commands in order."""
+    r = _client(redis_url, parser)
+    r.set("{tc}:seen", b"before")
+    plan = CommitPlan([("SET", "{tc}:seen", b"after"), ("INCRBY", "{tc}:n", 5)])
+    send(r, plan, first=("GET", "{tc}:seen"))
+    assert r.connection is not None
+    assert r.connection.read_response() == b"before"
+    assert receive(r, plan) == [b"OK", 5]  # raw replies, no response callbacks
+    assert plan.names() == ["SET", "INCRBY"]
+
+
+@pytest.mark.parametrize("parser", PARSERS)
+def test_a_failing_command_is_named_and_the_connection_stays_in_step(
+        redis_url: str, parser: type) -> None:
+    """A command that fails inside EXEC is reported by name (a prepacked XADD counts once
+    per question), and every reply of the transaction has been read: the next command on
+    the connection gets its own reply."""
+    r = _client(redis_url, parser)
+    r.set("{tc}:q", b"not a stream")
+    qc = _columns(["1", "2"], ["place"] * 2, [1, 1])
+    plan = CommitPlan([("INCR", "{tc}:n"), *_question_entries("{tc}:q", 0, qc)])
+    assert plan.names() == ["INCR", "XADD", "XADD"]
+    send(r, plan)
+    with pytest.raises(CommitError, match="XADD: WRONGTYPE"):
+        receive(r, plan)
+    assert r.get("{tc}:n") == b"1"  # MULTI/EXEC does not roll back: the caller reloads
+    assert r.ping() is True

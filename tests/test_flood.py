@@ -20,8 +20,8 @@ def test_a_burst_of_a_million_packed_answers() -> None:
 
 
 def test_one_answer_entries_faster_than_the_worker_reads_them() -> None:
-    """200,000 plain entries written faster than read: reads stay within two batches."""
+    """200,000 plain entries written while the worker is paused, then read: nearly all of
+    them wait as a backlog, and reads stay within three batches."""
     res = floodkit.flood(200_000, n_items=2_000, per_entry=1)
     assert res.passed, res.as_dict()
-    d = res.details
-    assert d["producer_answers_per_s"] > 2 * d["worker_answers_per_s"]
+    assert res.details["lag_entries_at_end_of_burst"] >= 190_000

@@ -371,9 +371,11 @@ class Worker:
         A built commit is sent only after the next read (which never blocks while a commit
         is held), and its reply is read after the next batch has been processed: Redis and
         Python work at the same time. The XREADGROUP of the batch after that goes out in
-        the same write, behind the commit, and its reply is read (and kept) at the end of
-        the turn, so the next turn starts without a round trip; the connection holds no
-        unread reply between turns. If a reply is an error or never comes, the batch
+        the same write, just before the commit's MULTI (so a lookup waits behind one of the
+        two, not both run back to back), and its reply is read (and kept) at the end of the
+        turn, so the next turn starts without a round trip; the connection holds no unread
+        reply between turns. Up to three batches are then in our pending list: committing,
+        in process, read ahead. If a reply is an error or never comes, the batch
         processed meanwhile is thrown away with the rest of the in-memory state, so the
         order "commit k before k+1" and the exactly-once effect are unchanged (entries read
         ahead and not processed stay pending and are read again with id 0).
@@ -416,8 +418,8 @@ class Worker:
         ahead = (held is not None and n > 0 and not self._pending_first and not self._stop
                  and not self._backlog)
         if held is not None:
-            send(client, held.plan, read_command(s.consumer_name, streams, ">", s.batch,
-                                                 None) if ahead else None)
+            send(client, held.plan, first=read_command(s.consumer_name, streams, ">", s.batch,
+                                                       None) if ahead else None)
         built = None
         if n == 0 and self._pending_first:
             self._pending_first = False
@@ -428,14 +430,14 @@ class Worker:
             built = self._build(out, items, answers, now, t0)
         if held is not None:
             try:
+                if ahead:  # the read went out before the transaction: its reply comes first
+                    assert client.connection is not None
+                    self._ahead = read_reply(client.connection.read_response()) or None
                 result = receive(client, held.plan)
             except BaseException:
-                if ahead and client.connection is not None:
-                    client.connection.disconnect()  # the read's reply is unread: drop it
+                if client.connection is not None:
+                    client.connection.disconnect()  # replies are left unread: drop them
                 raise
-            if ahead:
-                assert client.connection is not None
-                self._ahead = read_reply(client.connection.read_response()) or None
             self._lease_reply(result)
             self._done(held)
         if built is not None:
