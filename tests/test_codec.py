@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
+import unicodedata
+
 import msgpack
 import pytest
+from hypothesis import example, given
+from hypothesis import strategies as st
 
 from streamgroup.core.types import Answer
-from streamgroup.keys import MAX_PACK_ANSWERS, MAX_PACK_BYTES
+from streamgroup.keys import MAX_PACK_ANSWERS, MAX_PACK_BYTES, has_control
 from streamgroup.stream import codec
 from streamgroup.stream.codec import (
     decode_answers,
@@ -138,9 +142,12 @@ def test_dead_letter_never_masks_reason_and_origin() -> None:
     assert out["reason"].startswith("missing field")
 
 
-def test_batch_fast_path_equals_entry_by_entry_path(monkeypatch: pytest.MonkeyPatch) -> None:
-    """The whole-batch check decodes good batches exactly like the per-entry path."""
-    entries = [_e(i, a=f"shard-{i}", b=f"shard-é{i + 1}", same=str(i % 2), source=f"s{i % 4}",
+@pytest.mark.parametrize("b_key", ["shard-é{}", "shard-{}"], ids=["utf8", "ascii"])
+def test_batch_fast_path_equals_entry_by_entry_path(monkeypatch: pytest.MonkeyPatch,
+                                                    b_key: str) -> None:
+    """The whole-batch check decodes good batches exactly like the per-entry path (an ASCII
+    batch is checked by numpy over its bytes, any other by the regex)."""
+    entries = [_e(i, a=f"shard-{i}", b=b_key.format(i + 1), same=str(i % 2), source=f"s{i % 4}",
                   **({"qid": str(i)} if i % 3 else {}), **({"aid": f"p{i}"} if i % 5 else {}))
                for i in range(200)]
     fast = decode_answers(S, entries)
@@ -150,7 +157,8 @@ def test_batch_fast_path_equals_entry_by_entry_path(monkeypatch: pytest.MonkeyPa
     assert fast.origins == slow.origins and not fast.dead
     # one bad byte anywhere sends the batch down the per-entry path, which rejects it alone
     monkeypatch.undo()
-    for poison in (b"shard-\x7f", b"shard-\x00x", b"shard-\xc2\x85", b"\xe9t\xe9"):
+    for poison in (b"shard-\x7f", b"shard-\x00x", b"shard-\x01", b"\x1fshard", b"shard-\xc2\x85",
+                   b"\xe9t\xe9"):
         bad = [*entries[:5], _e(900, a=poison, b="x", same="1"), *entries[5:]]
         d = decode_answers(S, bad)
         assert len(d.answers) == 200 and [x.origin for x in d.dead] == [f"{S} 900-0"]
@@ -227,3 +235,43 @@ def test_misshapen_column_packs_are_dead_lettered_whole(shape: dict, why: str) -
     d = decode_answers(S, [(b"5-0", {b"pack": msgpack.packb(shape)})])
     assert not d.answers and len(d.dead) == 1 and why in d.dead[0].reason
     assert d.dead[0].kind == codec.BAD_PACK and d.dead[0].origin == f"{S} 5-0"
+
+
+_EDGES = "\0\x01\x1f \x7e\x7f\x80\x9f\xa0aé"  # either side of each control range
+
+
+@pytest.mark.parametrize("wrap", [str, lambda t: t.encode("utf-8", "surrogatepass")],
+                         ids=["str", "bytes"])
+@given(text=st.text(alphabet=st.one_of(st.sampled_from(_EDGES), st.characters(
+    max_codepoint=0x2FF, exclude_categories=["Cs"])), max_size=40), nul_ok=st.booleans())
+@example(text="\0", nul_ok=True)
+@example(text="shard\0\x01", nul_ok=True)
+@example(text="shard-\x7f", nul_ok=False)
+@example(text="é\x85", nul_ok=False)
+@example(text="plain ascii key", nul_ok=False)
+def test_control_check_agrees_with_unicode_category_cc(wrap, text: str, nul_ok: bool) -> None:
+    """``has_control`` flags exactly the characters of Unicode category Cc (the reference:
+    Python's ``unicodedata``), NUL aside when allowed, for str and for UTF-8 bytes."""
+    want = any(unicodedata.category(c) == "Cc" and not (nul_ok and c == "\0") for c in text)
+    assert has_control(wrap(text), nul_ok=nul_ok) == want
+
+
+@given(ops=st.lists(st.one_of(st.integers(0, 99).map(lambda i: ("one", i)),
+                              st.integers(1, 5).map(lambda n: ("pack", n))), max_size=25))
+def test_refs_read_back_like_the_list_of_tuples_they_stand_for(ops: list) -> None:
+    """A pack decoded whole is kept as one run; reading it back (iteration, indexing from
+    either end, bounds) gives what a list with a tuple per answer would."""
+    refs, model = codec.Refs(), []
+    for k, (kind, v) in enumerate(ops):
+        eid = f"{k}-0".encode()
+        if kind == "one":
+            refs.append(eid)
+            model.append(eid)
+        else:
+            refs.add_pack(eid, v)
+            model += [(eid, i) for i in range(v)]
+    assert len(refs) == len(model) and list(refs) == model and refs == model
+    assert [refs[i] for i in range(-len(model), len(model))] == model + model
+    for bad in (len(model), -len(model) - 1):
+        with pytest.raises(IndexError):
+            refs[bad]

@@ -58,7 +58,9 @@ def test_a_second_worker_waits_and_takes_over_after_a_clean_stop(redis_url: str,
     first = spawn(redis_url, "two", tmp_path / "a.log", batch=5, consumer="w-a")
     wait_for(lambda: int(r.hget(k.meta, "seq") or 0) >= 5, 30, "the first worker to commit")
     second = spawn(redis_url, "two", tmp_path / "b.log", batch=5, consumer="w-b")
-    time.sleep(0.5)
+    # it says so once it has tried (a loaded machine may take a while to start it)
+    wait_for(lambda: "another worker holds the namespace" in (tmp_path / "b.log").read_text()
+             or second.poll() is not None, 30, "the second worker to find the lease taken")
     assert second.poll() is None  # waiting, not failing
     assert b"w-a" in r.get(k.lease)
     assert not any(c["name"] == b"w-b" for c in r.xinfo_consumers(k.answers, "streamgroup"))
@@ -71,7 +73,6 @@ def test_a_second_worker_waits_and_takes_over_after_a_clean_stop(redis_url: str,
     assert second.wait(15) == 0
     assert int(r.hget(k.meta, "entries:answers")) == total  # each entry read once
     assert not r.exists(k.lease)  # released on the clean stop
-    assert "another worker holds the namespace" in (tmp_path / "b.log").read_text()
 
 
 def test_a_worker_whose_lease_was_taken_stops_with_exit_4(redis_url: str,

@@ -8,6 +8,7 @@ in-memory state away and reloads it from Redis.
 from __future__ import annotations
 
 from collections import Counter
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -61,7 +62,7 @@ def _engine_kind(reason: str) -> str:
 
 
 def _apply_items(state: WorkerState, items: list[tuple[str, str | None]],
-                 origins: list[Ref], stream: str, out: Outcome) -> None:
+                 origins: Sequence[Ref], stream: str, out: Outcome) -> None:
     counts = out.counts
     try:
         results = state.apply_items(items)
@@ -88,7 +89,7 @@ def _apply_items(state: WorkerState, items: list[tuple[str, str | None]],
 
 
 def _apply_answers(state: WorkerState, cols: AnswerColumns, aids: list[str | None],
-                   origins: list[Ref], stream: str, now_ms: int, out: Outcome) -> None:
+                   origins: Sequence[Ref], stream: str, now_ms: int, out: Outcome) -> None:
     counts, batch = out.counts, out.batch
     window = state.aids
     if any(a is not None for a in aids):

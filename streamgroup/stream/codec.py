@@ -24,8 +24,10 @@ well-formed pack with some bad elements has those elements dead-lettered one by 
 
 from __future__ import annotations
 
+import bisect
+import itertools
 import re
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -40,6 +42,7 @@ from ..keys import (
     MAX_PACK_ANSWERS,
     MAX_PACK_BYTES,
     MAX_SOURCE_BYTES,
+    has_control,
     question_pack_rows,
 )
 
@@ -58,7 +61,6 @@ ENGINE = "engine"
 # C0 controls and DEL in bytes, plus the C1 controls U+0080..U+009F as UTF-8 (0xC2 0x80-9F).
 _CTRL_B = re.compile(rb"[\x00-\x1f\x7f]|\xc2[\x80-\x9f]")
 _CTRL_S = CONTROL_CHARS
-_CTRL_NO_NUL = re.compile("[\x01-\x1f\x7f-\x9f]")  # NUL is the fast path's separator
 
 # An entry as redis-py parses it. The worker reads XREADGROUP replies raw instead (see
 # ``worker.read_streams``): ``[entry_id, [field, value, ...]]``, or ``[entry_id, None]`` for
@@ -107,6 +109,77 @@ class Dead:
         return out
 
 
+class Refs(Sequence[Ref]):
+    """Where each decoded answer or item came from (a :data:`Ref` each, in order), held
+    compactly: a pack decoded whole is one run (entry id, count) instead of a tuple per
+    answer; it is expanded only when a dead letter or a filter needs the refs."""
+
+    __slots__ = ("_parts", "_ends")
+
+    def __init__(self, refs: Iterable[Ref] = ()) -> None:
+        self._parts: list[list[Ref] | tuple[bytes, int]] = []
+        self._ends: list[int] = []  # refs up to the end of each part
+        self.extend(refs)
+
+    def append(self, ref: Ref) -> None:
+        if self._parts and type(self._parts[-1]) is list:
+            self._parts[-1].append(ref)  # type: ignore[union-attr]
+            self._ends[-1] += 1
+        else:
+            self._parts.append([ref])
+            self._ends.append(len(self) + 1)
+
+    def extend(self, refs: Iterable[Ref]) -> None:
+        refs = list(refs)
+        if not refs:
+            return
+        if self._parts and type(self._parts[-1]) is list:
+            self._parts[-1].extend(refs)  # type: ignore[union-attr]
+            self._ends[-1] += len(refs)
+        else:
+            self._parts.append(refs)
+            self._ends.append(len(self) + len(refs))
+
+    def __iadd__(self, refs: Iterable[Ref]) -> Refs:
+        self.extend(refs)
+        return self
+
+    def add_pack(self, eid: bytes, count: int) -> None:
+        """Elements 0..count-1 of the pack in entry ``eid``."""
+        self._parts.append((eid, count))
+        self._ends.append(len(self) + count)
+
+    def __len__(self) -> int:
+        return self._ends[-1] if self._ends else 0
+
+    def __iter__(self) -> Iterator[Ref]:
+        for part in self._parts:
+            if type(part) is list:
+                yield from part
+            else:
+                eid, count = part  # type: ignore[misc]
+                yield from zip(itertools.repeat(eid), range(count))
+
+    def __getitem__(self, k: int) -> Ref:  # type: ignore[override]
+        if not -len(self) <= k < len(self):
+            raise IndexError(k)
+        k %= len(self)
+        at = bisect.bisect_right(self._ends, k)
+        first = self._ends[at - 1] if at else 0
+        part = self._parts[at]
+        if type(part) is list:
+            return part[k - first]
+        return (part[0], k - first)  # type: ignore[return-value]
+
+    def __eq__(self, other: object) -> bool:
+        if isinstance(other, (Refs, list)):
+            return list(self) == list(other)
+        return NotImplemented
+
+    def __repr__(self) -> str:
+        return f"Refs({list(self)!r})"
+
+
 @dataclass(slots=True)
 class Decoded:
     """What one batch of entries of a stream turned into."""
@@ -116,7 +189,7 @@ class Decoded:
     aids: list[str | None] = field(default_factory=list)  # parallel to cols
     # parallel to answers / items: the entry id, or (entry id, index) inside a pack; turned
     # into the readable "stream id[#index]" only when a dead letter needs it
-    origins: list[Ref] = field(default_factory=list)
+    origins: Refs = field(default_factory=Refs)
     dead: list[Dead] = field(default_factory=list)
     missing: int = 0  # pending entries whose content was deleted before we read it
 
@@ -239,11 +312,12 @@ def _fast_answers(entries: Sequence[Entry], out: Decoded) -> bool:
             return False
         texts += (ra, rb, src, qid or empty, aid or empty)
         rows.append((eid, rs == b"1", qid is not None, aid is not None))
+    raw = b"\0".join(texts)
     try:
-        text = b"\0".join(texts).decode()
+        text = raw.decode()
     except UnicodeDecodeError:
         return False
-    if _CTRL_NO_NUL.search(text) is not None:
+    if has_control(raw if raw.isascii() else text, nul_ok=True):
         return False
     parts = text.split("\0")
     if len(parts) != len(texts):
@@ -404,8 +478,8 @@ def _fast_columns(a: list[Any], b: list[Any], s: list[Any], optional: list[list[
     where absent). Returns False, having added nothing, if any value needs a closer look."""
     if set(map(type, a)) != {str} or set(map(type, b)) != {str} or any(map(str.__eq__, a, b)):
         return False
-    if not (min(map(len, a)) > 0 and max(map(len, a)) <= _FAST_CHARS
-            and min(map(len, b)) > 0 and max(map(len, b)) <= _FAST_CHARS):
+    if ("" in a or "" in b  # (all str: the fastest test for an empty one)
+            or max(map(len, a)) > _FAST_CHARS or max(map(len, b)) > _FAST_CHARS):
         return False
     if not set(map(type, s)) <= {bool, int} or not set(s) <= {0, 1}:
         return False
@@ -416,10 +490,10 @@ def _fast_columns(a: list[Any], b: list[Any], s: list[Any], optional: list[list[
             return False
         if str in kinds:
             given = [v for v in col if v is not None] if type(None) in kinds else col
-            if not (min(map(len, given)) > 0 and max(map(len, given)) <= _FAST_CHARS):
+            if "" in given or max(map(len, given)) > _FAST_CHARS:
                 return False
             texts += given
-    if _CTRL_S.search(" ".join(texts)) is not None:
+    if has_control(" ".join(texts)):
         return False
     src, qid, aid = optional
     dst = out.cols
@@ -429,7 +503,7 @@ def _fast_columns(a: list[Any], b: list[Any], s: list[Any], optional: list[list[
     dst.source += ["" if v is None else v for v in src] if None in src else src
     dst.qid += qid
     out.aids += aid
-    out.origins += [(eid, i) for i in range(len(a))]
+    out.origins.add_pack(eid, len(a))
     return True
 
 
