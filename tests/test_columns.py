@@ -9,10 +9,10 @@ from hypothesis import strategies as st
 
 from streamgroup.core.codes import STATUS_NAMES
 from streamgroup.core.engine import Engine
-from streamgroup.core.keyindex import KeyIndex
+from streamgroup.core.keyindex import KeyIndex, cache_size_for
 from streamgroup.core.types import Answer, AnswerColumns, EngineConfig, RecordColumns
 from streamgroup.sim.crowd import Crowd
-from streamgroup.stream.commit import assign_value, assign_values
+from streamgroup.stream.commit import assign_value, assign_values, decision_values
 
 KEY = st.text(st.characters(blacklist_categories=("Cc", "Cs")), min_size=1, max_size=40)
 
@@ -27,6 +27,32 @@ def test_keys_of_gathers_the_keys_that_were_added(keys: list[str], data: st.Data
     assert index.keys_of(np.arange(len(keys))) == keys
     index.add(["one more"])  # the blob can still grow after a gather
     assert index.keys_of([len(keys)] * 9) == ["one more"] * 9
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.lists(KEY, min_size=1, max_size=300, unique=True), st.integers(1, 64), st.data())
+def test_lookups_are_right_whatever_the_cache_holds(keys: list[str], cache: int,
+                                                    data: st.DataObject) -> None:
+    """A cache far smaller than the keys is emptied again and again; every lookup still
+    finds the key's index, and an unknown key none."""
+    index = KeyIndex(cache_size=cache)
+    index.add(keys)
+    for _ in range(5):
+        picks = data.draw(st.lists(st.integers(0, len(keys) - 1), max_size=100))
+        assert index.lookup([keys[i] for i in picks]).tolist() == picks
+        assert len(index.cache) <= max(cache, len(keys))  # (one call may overfill it)
+    assert index.lookup(["\u2603 not a key"]).tolist() == [-1]
+
+
+def test_the_key_cache_grows_with_the_outstanding_cap() -> None:
+    """Both items of every question in flight fit in the cache (within its bounds), also
+    in an engine restored from a snapshot."""
+    small, big = Engine(EngineConfig(max_outstanding=1_000)), Engine(EngineConfig(
+        max_outstanding=200_000))
+    assert small.keys.cache_size == KeyIndex.CACHE
+    assert big.keys.cache_size >= 400_000
+    assert Engine.restore(big.snapshot()).keys.cache_size == big.keys.cache_size
+    assert cache_size_for(10**9) == 1 << 20
 
 
 @settings(max_examples=60, deadline=None)
@@ -48,6 +74,14 @@ def test_assign_values_decode_like_the_one_record_form(n: int, seed: int) -> Non
     # reference packer, msgpack-python's packb, writes for the same map
     rc.answers, rc.rev = rc.answers % 128, rc.rev % 128
     assert assign_values(rc) == [assign_value(r) for r in rc.rows()]
+    # the decisions stream's fields, from the columns, as from the records one by one
+    pos = sorted(rng.choice(n, size=int(rng.integers(0, n + 1)), replace=False).tolist())
+    want: list[object] = []
+    for r in rc.rows(pos):
+        want += (r.key, "" if r.side is None else r.side, r.status, repr(float(r.llr)),
+                 int(r.answers), int(r.rev))
+    got = decision_values(rc, pos)
+    assert got == want and [type(v) for v in got] == [type(v) for v in want]
 
 
 def test_engine_column_calls_equal_row_calls() -> None:

@@ -52,7 +52,7 @@ from .codes import (
 from .columns import Columns
 from .decide import DecideMixin
 from .intake import IntakeMixin
-from .keyindex import KeyIndex
+from .keyindex import KeyIndex, cache_size_for
 from .ledger import UNPLACED, Ledger
 from .pairset import MAX_ITEMS, PairSet, pair_keys
 from .questions import QuestionsMixin
@@ -116,7 +116,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         self.items = Columns(_ITEM_FIELDS)
         self.q = Columns(_Q_FIELDS, 64)
         self.q_low = 0  # every qid below this is answered or expired
-        self.keys = KeyIndex()
+        self.keys = KeyIndex(cache_size_for(self.config.max_outstanding))
         self.source_names: list[str] = []
         self.source_index: dict[str, int] = {}
         self.delta = np.zeros(0)

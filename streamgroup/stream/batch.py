@@ -18,7 +18,6 @@ from ..core.types import (
     Answer,
     AnswerColumns,
     QuestionColumns,
-    Record,
     RecordColumns,
 )
 from ..errors import EngineInputError
@@ -51,7 +50,7 @@ class Outcome:
 
     batch: Batch
     records: RecordColumns | None = None  # every record that changed
-    decisions: list[Record] = field(default_factory=list)  # those whose side/status moved
+    decisions: list[int] = field(default_factory=list)  # positions in records: side/status moved
     questions: QuestionColumns = field(default_factory=QuestionColumns.empty)
     dead: list[tuple[str, Dead]] = field(default_factory=list)  # (input stream, letter)
     counts: Counter[str] = field(default_factory=Counter)
@@ -203,5 +202,6 @@ def process(state: WorkerState, items_stream: str, items: list[Entry],
     for k in [k for k, v in counts.items() if not v]:
         del counts[k]
     out.batch.counts = counts
-    out.decisions = state.finish(out.batch, out.records.rows(moved))
+    state.finish(out.batch)
+    out.decisions = moved
     return out

@@ -119,6 +119,22 @@ def assign_values(rc: RecordColumns) -> list[bytes]:
 DECISION_FIELDS = ("key", "side", "status", "llr", "answers", "rev")
 
 
+def decision_values(rc: RecordColumns, positions: Sequence[int]) -> list[Any]:
+    """The fields ``DECISION_FIELDS`` of the records at ``positions``, flat, row after row
+    (key, side or "", status, llr as ``repr`` of a float, answers, rev)."""
+    idx = np.asarray(positions, dtype=np.int64)
+    names = (*rc.labels, "")
+    n = len(idx)
+    vals: list[Any] = [None] * (6 * n)
+    vals[0::6] = [rc.keys[k] for k in idx.tolist()]
+    vals[1::6] = [names[s] for s in rc.side[idx].tolist()]
+    vals[2::6] = [rc.status_names[s] for s in rc.status[idx].tolist()]
+    vals[3::6] = list(map(repr, rc.llr[idx].astype(np.float64).tolist()))
+    vals[4::6] = rc.answers[idx].astype(np.int64).tolist()
+    vals[5::6] = rc.rev[idx].astype(np.int64).tolist()
+    return vals
+
+
 @dataclass(frozen=True)
 class Caps:
     """Approximate MAXLEN caps of the output streams (0 = uncapped)."""
@@ -279,7 +295,7 @@ def build_commit(
     caps: Caps,
     *,
     records: RecordColumns | None,
-    decisions: Sequence[Record],
+    decisions: Sequence[int],
     questions: QuestionColumns | None,
     dead: Sequence[Dead],
     journal: bytes | None,
@@ -303,11 +319,9 @@ def build_commit(
         flat[1::2] = assign_values(records)
         cmds.append(("HSET", keys.assign, *flat))
     if decisions:
-        vals: list[Any] = []
-        for r in decisions:
-            vals += (r.key, "" if r.side is None else r.side, r.status, repr(float(r.llr)),
-                     int(r.answers), int(r.rev))
-        cmds.append(_xadd_many(keys.decisions, caps.decisions, DECISION_FIELDS, vals))
+        assert records is not None
+        cmds.append(_xadd_many(keys.decisions, caps.decisions, DECISION_FIELDS,
+                               decision_values(records, decisions)))
     if questions is not None and len(questions):
         qc = questions
         if pack_questions:

@@ -22,7 +22,7 @@ from typing import Any
 import msgpack
 
 from ..core.engine import Engine
-from ..core.types import Answer, AnswerColumns, EngineConfig, Record
+from ..core.types import Answer, AnswerColumns, EngineConfig
 from ..errors import StateError
 
 SNAPSHOT_VERSION = 1
@@ -139,15 +139,13 @@ class WorkerState:
                 raise StateError(f"journal entry {batch.seq} has an unknown op {op!r}")
         self.engine.plan_columns(batch.now_ms)
         self.engine.take_update_columns()
-        self.finish(batch, [])
+        self.finish(batch)
 
-    def finish(self, batch: Batch, decisions: list[Record]) -> list[Record]:
-        """Fold a committed (or replayed) batch into the worker's memory; pass through the
-        records whose side or status changed (the decisions to publish)."""
+    def finish(self, batch: Batch) -> None:
+        """Fold a committed (or replayed) batch into the worker's memory."""
         self.seq = batch.seq
         self.aids.extend(batch.aids)
         self.counters.update(batch.counts)
-        return decisions
 
     # -- snapshots ----------------------------------------------------------------------
     def snapshot_bytes(self, now_ms: int) -> bytes:
