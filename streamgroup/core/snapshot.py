@@ -10,7 +10,7 @@ import numpy as np
 
 from ..errors import EngineInputError
 from .columns import uniq
-from .keyindex import KeyIndex, cache_size_for
+from .keyindex import KeyIndex
 from .ledger import Ledger
 from .pairset import PairSet
 from .types import EngineConfig
@@ -63,7 +63,7 @@ def load(cls: type[Engine], data: bytes) -> Engine:
         if st.get("v") != SNAPSHOT_VERSION:
             raise EngineInputError(f"snapshot version {st.get('v')!r} is not supported")
         eng = cls(EngineConfig(*st["config"]))
-        eng.keys = KeyIndex.from_state(st["keys"], cache_size_for(eng.config.max_outstanding))
+        eng.keys = KeyIndex.from_state(st["keys"], eng.keys.cache_size)  # (from the config)
         eng.source_names = list(st["sources"])
         eng.source_index = {k: i for i, k in enumerate(eng.source_names)}
         eng.delta = np.frombuffer(st["delta"], dtype=np.float64).copy()

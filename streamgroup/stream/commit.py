@@ -34,7 +34,7 @@ loses the oldest entries (a lost question is simply re-issued after the question
 from __future__ import annotations
 
 import functools
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -45,13 +45,14 @@ import redis
 
 from ..core.types import QuestionColumns, Record, RecordColumns
 from ..errors import StreamgroupError
-from ..keys import MAX_PACK_ANSWERS, Keys
+from ..keys import MAX_PACK_ANSWERS, QUESTION_FIELDS, Keys
 from .codec import Dead
 
-try:  # redis-py's "no complete reply yet" marker, for reading its hiredis reader directly
+try:  # redis-py's hiredis parser and its "no complete reply yet" marker, to read directly
     from redis._parsers.hiredis import NOT_ENOUGH_DATA as _NOT_ENOUGH_DATA
+    from redis._parsers.hiredis import _HiredisParser
 except ImportError:  # pragma: no cover - another redis-py layout: replies one by one
-    _NOT_ENOUGH_DATA = None
+    _NOT_ENOUGH_DATA = _HiredisParser = None
 
 Command = tuple[Any, ...]
 
@@ -217,8 +218,9 @@ class Prepacked:
     count: int
 
 
+# one question's XADD after the stream key and "* qid": qid, a, b, then why and ts (shared)
 _QUESTION_ROW = "$%d\r\n%s\r\n$1\r\na\r\n$%d\r\n%s\r\n$1\r\nb\r\n$%d\r\n%s\r\n%s"
-_QUESTION_ROW_B = _QUESTION_ROW.encode()
+assert QUESTION_FIELDS == ("qid", "a", "b", "why", "ts"), "_QUESTION_ROW spells these out"
 
 
 def _question_entries(key: str, cap: int, qc: QuestionColumns) -> list[Command | Prepacked]:
@@ -235,28 +237,28 @@ def _question_entries(key: str, cap: int, qc: QuestionColumns) -> list[Command |
     tails: dict[tuple[str, int], str] = {}
     for why, ts in set(zip(qc.why, qc.ts_ms, strict=True)):
         tails[why, ts] = "$3\r\nwhy\r\n" + _bulk(why) + "$2\r\nts\r\n" + _bulk(str(ts))
-    rows = zip(qc.qid, qc.a, qc.b, qc.why, qc.ts_ms, strict=True)
-    text = head + head.join([_QUESTION_ROW % (len(q), q, len(a), a, len(b), b, tails[w, t])
-                             for q, a, b, w, t in rows])
-    if text.isascii():  # lengths in characters are lengths in bytes
-        blob = text.encode()
-    else:
-        hb = head.encode()
-        blob = hb + hb.join([_QUESTION_ROW_B % (len(q), q, len(a), a, len(b), b,
-                                                 tails[w, t].encode())
-                             for q, a, b, w, t in (
-                                 (q.encode(), a.encode(), b.encode(), w, t)
-                                 for q, a, b, w, t in zip(qc.qid, qc.a, qc.b, qc.why,
-                                                          qc.ts_ms, strict=True))])
-    out: list[Command | Prepacked] = [Prepacked("XADD", blob, len(qc))]
+
+    def formatted(size: Callable[[str], int]) -> str:
+        rows = zip(qc.qid, qc.a, qc.b, qc.why, qc.ts_ms, strict=True)
+        return head + head.join([_QUESTION_ROW % (size(q), q, size(a), a, size(b), b,
+                                                  tails[w, t]) for q, a, b, w, t in rows])
+
+    text = formatted(len)  # lengths in characters are lengths in bytes while it is ASCII
+    if not text.isascii():
+        text = formatted(_utf8_len)
+    out: list[Command | Prepacked] = [Prepacked("XADD", text.encode(), len(qc))]
     if cap:
         out.append(("XTRIM", key, "MAXLEN", "~", cap))
     return out
 
 
+def _utf8_len(text: str) -> int:
+    return len(text.encode())
+
+
 def _bulk(text: str) -> str:
     """One RESP bulk string (its length in bytes, as Redis counts)."""
-    return f"${len(text.encode())}\r\n{text}\r\n"
+    return f"${_utf8_len(text)}\r\n{text}\r\n"
 
 
 def _xadd(key: str, cap: int, fields: Iterable[Any]) -> Command:
@@ -396,8 +398,7 @@ def _replies(conn: Any, count: int) -> list[Any]:
     """
     parser = getattr(conn, "_parser", None)
     reader = getattr(parser, "_reader", None)
-    if (reader is None or _NOT_ENOUGH_DATA is None
-            or type(parser).__name__ != "_HiredisParser"):
+    if _HiredisParser is None or type(parser) is not _HiredisParser or reader is None:
         out: list[Any] = []
         for _ in range(count):
             try:
