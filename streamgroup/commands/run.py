@@ -82,9 +82,10 @@ def run(args: argparse.Namespace) -> int:
         client.redis.ping()
     check_metrics_addr(settings.metrics_addr)
     from ..logs import configure_logging
-    from ..stream.worker import Worker
+    from ..stream.worker import Worker, tune_gc
 
     configure_logging(settings.log_level, settings.log_format, sys.stderr)
     worker = Worker(settings)
     install_signal_handlers(worker.request_stop)
+    tune_gc()
     return int(worker.run())
