@@ -4,10 +4,11 @@ from __future__ import annotations
 
 import msgpack
 import numpy as np
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from streamgroup.core.codes import STATUS_NAMES
+from streamgroup.core.columns import SortedQueue
 from streamgroup.core.engine import Engine
 from streamgroup.core.keyindex import KeyIndex, cache_size_for
 from streamgroup.core.types import Answer, AnswerColumns, EngineConfig, RecordColumns
@@ -53,6 +54,33 @@ def test_the_key_cache_grows_with_the_outstanding_cap() -> None:
     assert big.keys.cache_size >= 400_000
     assert Engine.restore(big.snapshot()).keys.cache_size == big.keys.cache_size
     assert cache_size_for(10**9) == 1 << 20
+
+
+OPS = st.lists(st.one_of(
+    st.tuples(st.just("add"), st.lists(st.integers(0, 3000), max_size=200)),
+    st.tuples(st.just("take"), st.integers(0, 120))), max_size=40)
+
+
+@settings(max_examples=150, deadline=None)
+@given(st.lists(st.integers(0, 3000), max_size=600), OPS, st.integers(1, 300))
+@example([5, 6], [("add", [2, 1]), ("take", 2)], 300)  # the small run ahead of the big one
+def test_sorted_queue_gives_the_smallest_members_of_a_set(start: list[int], ops: list[tuple],
+                                                          floor: int) -> None:
+    """Against a Python set (the model): take(k) returns its k smallest members, once
+    each, in order, whatever the additions (repeated, unsorted, already present) and
+    however the queue splits them between its runs (a low merge floor forces merges)."""
+    queue, model = SortedQueue(np.array(start, dtype=np.int64)), set(start)
+    queue.MERGE_FLOOR = floor
+    for op, arg in ops:
+        if op == "add":
+            queue.add(np.array(arg, dtype=np.int64))
+            model |= set(arg)
+        else:
+            want = sorted(model)[:arg]
+            assert queue.take(arg).tolist() == want
+            model -= set(want)
+        assert queue.values().tolist() == sorted(model)
+        assert bool(queue) == bool(model)
 
 
 @settings(max_examples=60, deadline=None)

@@ -66,3 +66,45 @@ def union_sorted(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     pos = np.searchsorted(a, b)
     known = a[np.minimum(pos, len(a) - 1)] == b
     return np.insert(a, pos[~known], b[~known]).astype(np.int64, copy=False)
+
+
+class SortedQueue:
+    """A set of non-negative integers taken out smallest first, a prefix at a time.
+
+    Held as two sorted runs of distinct values that may share members: a large one read from
+    an offset (taking a prefix is a slice: nothing is copied) and a small one that takes the
+    additions. The small run is merged into the large one once it outgrows a quarter of it,
+    so adding k values costs about k log k plus amortised O(k), and taking k values costs
+    O(k) plus the small run, not the size of the set. What comes out depends only on the
+    set, never on how it is split between the runs.
+    """
+
+    MERGE_FLOOR = 4096  # the small run may hold this many values before any merge
+
+    def __init__(self, values: np.ndarray | None = None) -> None:
+        self.big = uniq(values) if values is not None else np.zeros(0, dtype=np.int64)
+        self.small = np.zeros(0, dtype=np.int64)
+
+    def __bool__(self) -> bool:
+        return bool(len(self.big) or len(self.small))
+
+    def add(self, values: np.ndarray) -> None:
+        if len(values) == 0:
+            return
+        self.small = union_sorted(self.small, uniq(values))
+        if len(self.small) > max(self.MERGE_FLOOR, len(self.big) // 4):
+            self.big, self.small = union_sorted(self.big, self.small), self.small[:0]
+
+    def take(self, k: int) -> np.ndarray:
+        """Remove and return the ``k`` smallest values (fewer if the set is smaller)."""
+        a, b = self.big[:k], self.small[:k]
+        out = union_sorted(a, b)[:k]
+        if len(out):
+            last = out[-1]
+            self.big = self.big[int(np.searchsorted(a, last, side="right")):]
+            self.small = self.small[int(np.searchsorted(b, last, side="right")):]
+        return out
+
+    def values(self) -> np.ndarray:
+        """Every value, sorted and distinct (for snapshots)."""
+        return union_sorted(self.big, self.small)

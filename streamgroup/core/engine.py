@@ -49,7 +49,7 @@ from .codes import (
     WAITING,
     WHY_NAMES,
 )
-from .columns import Columns
+from .columns import Columns, SortedQueue
 from .decide import DecideMixin
 from .intake import IntakeMixin
 from .keyindex import KeyIndex, cache_size_for
@@ -131,7 +131,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         self.shared = 1.0  # chance two answers share a source (Herfindahl index of volume)
         # planning work lists: items to look at in the next round
         self.nudged: list[np.ndarray] = []
-        self.carry = np.zeros(0, dtype=np.int64)
+        self.carry = SortedQueue()  # items with room left when a round's room ran out
         self.cursor = 0  # items from here on have never been looked at by the planner
         self.phase = "boot"
         self.block = np.zeros(0, dtype=np.int64)

@@ -6,7 +6,6 @@ import numpy as np
 
 from . import planner
 from .codes import ASKING, CHECK, PLACE, Q_EXPIRED, Q_OPEN, UNRESOLVED, WAITING, WHY_NAMES
-from .columns import union_sorted, uniq
 from .ledger import UNPLACED
 from .sprt import weight
 from .types import Question, QuestionColumns
@@ -55,32 +54,30 @@ class QuestionsMixin:
         if room <= 0 or len(self.pool) == 0:
             return QuestionColumns.empty()
         cfg = self.config
-        fresh = uniq(np.concatenate(self.nudged)) if self.nudged else self.carry[:0]
-        self.nudged = []
-        # The carry (sorted, distinct) can hold every waiting item while the outstanding
-        # cap binds; it is served a prefix at a time, so a round costs time in proportion
-        # to its room and its nudges, not to the carry (the same targets as serving it whole).
-        cand = union_sorted(self.carry, fresh)
+        if self.nudged:
+            self.carry.add(np.concatenate(self.nudged))
+            self.nudged = []
+        # The carry can hold every waiting item while the outstanding cap binds; it is
+        # served a prefix at a time (smallest index first), so a round costs time in
+        # proportion to its room and its nudges, not to the carry.
         served: list[np.ndarray] = []
-        got, pos = 0, 0
-        self.carry = cand[:0]
-        while pos < len(cand):
-            chunk = cand[pos:pos + max(4 * (room - got), 1024)]
-            pos += len(chunk)
+        got = 0
+        while self.carry:
+            chunk = self.carry.take(max(4 * (room - got), 1024))
             t, rest = self._serve(chunk, room - got)
             served.append(t)
             got += len(t)
             if got >= room:
-                self.carry = np.concatenate([rest, cand[pos:]])
+                self.carry.add(rest)
                 break
-        targets = np.concatenate(served) if served else cand[:0]
+        targets = np.concatenate(served) if served else np.zeros(0, dtype=np.int64)
         n = len(self.keys)
         while len(targets) < room and self.cursor < n:
             end = min(n, self.cursor + max(4 * (room - len(targets)), 1024))
             more, rest = self._serve(np.arange(self.cursor, end), room - len(targets))
             self.cursor = end
             targets = np.concatenate([targets, more])
-            self.carry = np.concatenate([self.carry, rest])
+            self.carry.add(rest)
         if len(targets) == 0:
             return QuestionColumns.empty()
         # distinct partners for the slots one item gets in one round

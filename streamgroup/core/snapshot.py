@@ -9,7 +9,7 @@ import msgpack
 import numpy as np
 
 from ..errors import EngineInputError
-from .columns import uniq
+from .columns import SortedQueue
 from .keyindex import KeyIndex
 from .ledger import Ledger
 from .pairset import PairSet
@@ -46,7 +46,7 @@ def dump(self: Engine) -> bytes:
         "ledger": self.ledger.to_state(),
         "items": self.items.to_state(),
         "q": self.q.to_state(),
-        "work": [np.concatenate([self.carry, *self.nudged]).astype(np.int64).tobytes(),
+        "work": [np.concatenate([self.carry.values(), *self.nudged]).astype(np.int64).tobytes(),
                  self.cursor],
     }
     # The arrays are mostly small integers and zeros: zlib at its fastest level makes
@@ -84,7 +84,7 @@ def load(cls: type[Engine], data: bytes) -> Engine:
         eng.items.load_state(st["items"])
         eng.q.load_state(st["q"])
         carry, eng.cursor = st["work"]
-        eng.carry = uniq(np.frombuffer(carry, dtype=np.int64))
+        eng.carry = SortedQueue(np.frombuffer(carry, dtype=np.int64))
     except EngineInputError:
         raise
     except (ValueError, KeyError, TypeError, zlib.error, msgpack.UnpackException) as exc:
