@@ -59,6 +59,7 @@ import json
 import os
 import random
 import signal
+import statistics
 import subprocess
 import sys
 import time
@@ -410,6 +411,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
     backlogs: list[int] = []
     cpu = r_cpu = 0.0
     usec: collections.Counter[str] = collections.Counter()
+    tails: collections.defaultdict[str, list[float]] = collections.defaultdict(list)
 
     def caught_up() -> bool:  # every answer in the stream read and committed
         last = r.xinfo_stream(k.answers)["last-generated-id"]
@@ -444,6 +446,12 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         r_cpu += redis_cpu(r) - rc0
         for name, v in r.info("commandstats").items():
             usec[name.removeprefix("cmdstat_")] += v["usec"]
+        lat = r.info("latencystats")  # Redis's own percentiles of each command, this window
+        for name in ("exec", "xreadgroup"):
+            got = lat.get(f"latency_percentiles_usec_{name}", {})
+            for p in ("p50", "p99"):
+                if p in got:
+                    tails[f"{name}_{p}"].append(got[p] / 1000)
         windows.append((t0, t1))
     if spy is not None:
         spy.send_signal(signal.SIGINT)
@@ -463,6 +471,9 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         "worker_cpu_share": cpu / busy,
         "redis_cpu_share": r_cpu / busy,
         "redis_us_per_answer": us_per_answer(usec, done),
+        # how long Redis itself takes for one batch's read and transaction (it serves no
+        # lookup meanwhile): the median over the windows of each window's percentile
+        "redis_ms": {k: round(statistics.median(v), 3) for k, v in sorted(tails.items())},
     }
     if child is not None:
         child.send_signal(signal.SIGTERM)
@@ -552,6 +563,7 @@ def main(argv: list[str] | None = None) -> int:
             "worker_cpu_share_plain": round(plain["worker_cpu_share"], 2),
             "redis_cpu_share_plain": round(plain["redis_cpu_share"], 2),
             "redis_us_per_answer_plain": plain["redis_us_per_answer"],
+            "redis_ms_plain": plain["redis_ms"],
             "worker_exit_codes": [plain["exit"]],
         }
         print(json.dumps(quick, indent=2) if args.json else quick)
@@ -602,6 +614,7 @@ def main(argv: list[str] | None = None) -> int:
         "packed_answers_per_cpu_s": round(packed["rate"] / packed["worker_cpu_share"]),
         "redis_us_per_answer_plain": plain["redis_us_per_answer"],
         "redis_us_per_answer_packed": packed["redis_us_per_answer"],
+        "redis_ms_plain": plain["redis_ms"],
         # the closed loop: the simulated crowd adapter runs beside the worker, on the same
         # two cores and the same Redis, answering each question as it appears
         "loop_entries_per_s": round(loop["entries_per_s"]),
