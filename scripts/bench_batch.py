@@ -35,6 +35,7 @@ import streamgroup.stream.state as state_mod  # noqa: E402
 from streamgroup.core.types import EngineConfig  # noqa: E402
 from streamgroup.keys import GROUP, Keys  # noqa: E402
 from streamgroup.sim.crowd import Crowd  # noqa: E402
+from streamgroup.stream.worker import tune_gc  # noqa: E402
 
 PHASES = collections.Counter[str]()
 
@@ -65,8 +66,13 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--max-outstanding", type=int, default=0,
                    help="questions in flight at most (default: 20 batches, at least 10,000); "
                         "bench_stream's drain runs hold half the items in flight")
+    p.add_argument("--default-gc", action="store_true",
+                   help="keep CPython's garbage collector thresholds (the worker raises them: "
+                        "streamgroup.stream.worker.tune_gc)")
     p.add_argument("--json", action="store_true")
     args = p.parse_args(argv)
+    if not args.default_gc:
+        tune_gc()
     for owner, name in ((batch_mod, "decode_answers"), (state_mod.WorkerState,
                         "apply_answer_columns"), (engine_mod.Engine, "plan_columns"),
                         (engine_mod.Engine, "take_update_columns"), (engine_mod.Engine,
