@@ -11,13 +11,15 @@ from redis._parsers import _HiredisParser, _RESP2Parser
 from streamgroup.core.types import QuestionColumns
 from streamgroup.keys import QUESTION_FIELDS, Keys
 from streamgroup.stream.commit import (
+    DECISION_FIELDS,
     CommitError,
     CommitPlan,
     Prepacked,
     _question_entries,
-    _xadd_many,
     receive,
     send,
+    xadd_entries,
+    xadd_script,
 )
 
 pytestmark = pytest.mark.redis
@@ -39,6 +41,11 @@ def _columns(qids: list[str], whys: list[str], ts: list[int], b: str = "shard-{}
     n = len(qids)
     return QuestionColumns(qids, [f"kiln-{i:04d}" for i in range(n)],
                            [b.format(i) for i in range(n)], whys, ts)
+
+
+def _by_script(key: str, names: tuple[str, ...], vals: list[object]) -> tuple:
+    """The reference: the general script that XADDs each row field by field."""
+    return ("EVAL", xadd_script(names), 1, key, 0, *vals)
 
 
 def _commit(r: redis.Redis, commands: list) -> list:
@@ -69,10 +76,35 @@ def test_prepacked_questions_write_what_the_field_by_field_script_writes(
     vals: list[object] = []
     for row in zip(qc.qid, qc.a, qc.b, qc.why, qc.ts_ms, strict=True):
         vals += row
-    r.execute_command(*_xadd_many("{tc}:q2", 0, QUESTION_FIELDS, vals))
+    r.execute_command(*_by_script("{tc}:q2", QUESTION_FIELDS, vals))
     got, want = _entries(r, "{tc}:q1"), _entries(r, "{tc}:q2")
     assert got == want
     assert [e["qid"] for e in got] == qids
+
+
+@pytest.mark.parametrize("parser", PARSERS)
+@pytest.mark.parametrize("ns, rows", [
+    ("tc", [("kiln-0001", "north", "placed", repr(3.25), 4, 0),
+            ("kiln-0002", "", "unresolved", repr(-0.5), 30, 2)]),
+    ("t%c", [("kiln-%d", "nörth", "placed", repr(1e-300), 7, 1)]),  # '%' and non-ASCII
+    ("tc", [(f"shard-{i}", "south", "revised", repr(i / 7), i, i % 3) for i in range(300)]),
+])
+def test_decisions_as_plain_xadds_write_what_the_script_writes(
+        redis_url: str, parser: type, ns: str, rows: list[tuple]) -> None:
+    """Rows formatted ahead as plain XADDs read back field for field as the per-field
+    script writes them, whatever the key and values hold, one EXEC reply per row."""
+    r = _client(redis_url, parser)
+    vals = [v for row in rows for v in row]
+    key = Keys(ns).decisions
+    entries = xadd_entries(key, 0, DECISION_FIELDS, vals)
+    assert isinstance(entries[0], Prepacked) and len(entries) == 1
+    result = _commit(r, entries)
+    assert len(result) == len(rows) and all(b"-" in x for x in result)
+    r.execute_command(*_by_script("{tc}:d2", DECISION_FIELDS, vals))
+    got, want = _entries(r, key), _entries(r, "{tc}:d2")
+    assert got == want
+    assert [tuple(e.values()) for e in got] == [tuple(map(str, row)) for row in rows]
+    r.delete(key, "{tc}:d2")
 
 
 def test_prepacked_questions_cap_the_stream(redis_url: str) -> None:
