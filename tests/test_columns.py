@@ -57,7 +57,8 @@ def test_the_key_cache_grows_with_the_outstanding_cap() -> None:
 
 
 OPS = st.lists(st.one_of(
-    st.tuples(st.just("add"), st.lists(st.integers(0, 3000), max_size=200)),
+    st.tuples(st.sampled_from(["add", "add ordered"]), st.lists(st.integers(0, 3000),
+                                                                max_size=200)),
     st.tuples(st.just("take"), st.integers(0, 120))), max_size=40)
 
 
@@ -72,8 +73,11 @@ def test_sorted_queue_gives_the_smallest_members_of_a_set(start: list[int], ops:
     queue, model = SortedQueue(np.array(start, dtype=np.int64)), set(start)
     queue.MERGE_FLOOR = floor
     for op, arg in ops:
-        if op == "add":
-            queue.add(np.array(arg, dtype=np.int64))
+        if op.startswith("add"):
+            if op == "add":
+                queue.add(np.array(arg, dtype=np.int64))
+            else:  # sorted and distinct, as the planner's leftovers are
+                queue.add(np.unique(np.array(arg, dtype=np.int64)), ordered=True)
             model |= set(arg)
         else:
             want = sorted(model)[:arg]

@@ -88,15 +88,19 @@ class SortedQueue:
     def __bool__(self) -> bool:
         return bool(len(self.big) or len(self.small))
 
-    def add(self, values: np.ndarray) -> None:
+    def add(self, values: np.ndarray, ordered: bool = False) -> None:
+        """Add ``values`` (``ordered``: already sorted and distinct, as a taken prefix is)."""
         if len(values) == 0:
             return
-        self.small = union_sorted(self.small, uniq(values))
+        self.small = union_sorted(self.small, values if ordered else uniq(values))
         if len(self.small) > max(self.MERGE_FLOOR, len(self.big) // 4):
             self.big, self.small = union_sorted(self.big, self.small), self.small[:0]
 
     def take(self, k: int) -> np.ndarray:
         """Remove and return the ``k`` smallest values (fewer if the set is smaller)."""
+        if not len(self.small):
+            out, self.big = self.big[:k], self.big[k:]
+            return out
         a, b = self.big[:k], self.small[:k]
         out = union_sorted(a, b)[:k]
         if len(out):

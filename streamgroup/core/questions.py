@@ -68,7 +68,7 @@ class QuestionsMixin:
             served.append(t)
             got += len(t)
             if got >= room:
-                self.carry.add(rest)
+                self.carry.add(rest, ordered=True)
                 break
         targets = np.concatenate(served) if served else np.zeros(0, dtype=np.int64)
         n = len(self.keys)
@@ -77,7 +77,7 @@ class QuestionsMixin:
             more, rest = self._serve(np.arange(self.cursor, end), room - len(targets))
             self.cursor = end
             targets = np.concatenate([targets, more])
-            self.carry.add(rest)
+            self.carry.add(rest, ordered=True)
         if len(targets) == 0:
             return QuestionColumns.empty()
         # distinct partners for the slots one item gets in one round
