@@ -228,7 +228,9 @@ def _question_entries(key: str, cap: int, qc: QuestionColumns) -> list[Command |
     and EXEC then only runs them, about a third less time inside the transaction than a
     script calling XADD (measured: 1.5 against 2.2-2.5 us per question on this machine), and
     the transaction is what a lookup waits behind. They are formatted as RESP here with one
-    string operation per question (~4x cheaper than packing each command on its own).
+    string operation per question (~4x cheaper than packing each command on its own). This
+    is :func:`xadd_entries` specialised: a batch's questions share a few (why, ts) pairs,
+    whose part of each row is formatted once (0.8 against 1.1 us per question).
     """
     head = "*13\r\n$4\r\nXADD\r\n" + _bulk(key) + "$1\r\n*\r\n$3\r\nqid\r\n"
     tails: dict[tuple[str, int], str] = {}
