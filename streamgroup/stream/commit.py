@@ -242,13 +242,7 @@ def _question_entries(key: str, cap: int, qc: QuestionColumns) -> list[Command |
         return head + head.join([_QUESTION_ROW % (size(q), q, size(a), a, size(b), b,
                                                   tails[w, t]) for q, a, b, w, t in rows])
 
-    text = formatted(len)  # lengths in characters are lengths in bytes while it is ASCII
-    if not text.isascii():
-        text = formatted(_utf8_len)
-    out: list[Command | Prepacked] = [Prepacked("XADD", text.encode(), len(qc))]
-    if cap:
-        out.append(("XTRIM", key, "MAXLEN", "~", cap))
-    return out
+    return _prepacked(key, cap, len(qc), formatted)
 
 
 def xadd_entries(key: str, cap: int, names: Sequence[str],
@@ -271,12 +265,23 @@ def xadd_entries(key: str, cap: int, names: Sequence[str],
     texts = list(map(str, values))
     args: list[Any] = [None] * (2 * len(texts))
     args[1::2] = texts
-    args[0::2] = list(map(len, texts))  # characters are bytes while the text is ASCII
-    text = row * rows % tuple(args)
+
+    def formatted(size: Callable[[str], int]) -> str:
+        args[0::2] = list(map(size, texts))
+        return row * rows % tuple(args)
+
+    return _prepacked(key, cap, rows, formatted)
+
+
+def _prepacked(key: str, cap: int, count: int,
+               formatted: Callable[[Callable[[str], int]], str]) -> list[Command | Prepacked]:
+    """The ``count`` XADDs that ``formatted(size)`` writes (``size``: a text's length in
+    bytes, as RESP counts), as one :class:`Prepacked`, then the trim of ``key`` to ``cap``
+    (0 = none)."""
+    text = formatted(len)  # lengths in characters are lengths in bytes while it is ASCII
     if not text.isascii():
-        args[0::2] = list(map(_utf8_len, texts))
-        text = row * rows % tuple(args)
-    out: list[Command | Prepacked] = [Prepacked("XADD", text.encode(), rows)]
+        text = formatted(_utf8_len)
+    out: list[Command | Prepacked] = [Prepacked("XADD", text.encode(), count)]
     if cap:
         out.append(("XTRIM", key, "MAXLEN", "~", cap))
     return out
