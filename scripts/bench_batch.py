@@ -24,6 +24,7 @@ from collections.abc import Callable
 from typing import Any
 
 import msgpack
+import numpy as np
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 sys.path.insert(0, ROOT)
@@ -92,6 +93,7 @@ def main(argv: list[str] | None = None) -> int:
                  for k in crowd.keys[lo:lo + 500]]
         pending += batch_mod.process(st, keys.items, items, keys.answers, [], now).questions.rows()
     totals = {"answers": 0, "process": 0.0, "build": 0.0, "pack": 0.0}
+    round_ms: list[float] = []
 
     def one_round() -> None:
         nonlocal pending, now
@@ -133,6 +135,7 @@ def main(argv: list[str] | None = None) -> int:
         totals["process"] += t1 - t0
         totals["build"] += t2 - t1
         totals["pack"] += t3 - t2
+        round_ms.append((t3 - t0) * 1e3)
         pending += out.questions.rows()
 
     warm = max(20, args.rounds // 2) if not args.packed else 20
@@ -140,6 +143,7 @@ def main(argv: list[str] | None = None) -> int:
         one_round()
     PHASES.clear()
     totals.update(answers=0, process=0.0, build=0.0, pack=0.0)
+    round_ms.clear()
     for _ in range(args.rounds if not args.packed else max(10, args.rounds // 20)):
         one_round()
     n = max(1, totals["answers"])
@@ -152,6 +156,11 @@ def main(argv: list[str] | None = None) -> int:
         "process_us": round(totals["process"] / n * 1e6, 2),
         "build_commit_us": round(totals["build"] / n * 1e6, 2),
         "pack_command_us": round(totals["pack"] / n * 1e6, 2),
+        # a batch's whole in-process time: the median is the steady cost, the mean adds
+        # the rare whole-state passes (refits, recounts after a flip)
+        "batch_ms": {"p50": round(float(np.percentile(round_ms, 50)), 3),
+                     "p99": round(float(np.percentile(round_ms, 99)), 3),
+                     "mean": round(float(np.mean(round_ms)), 3)},
         "phases_us": {k: round(v / n * 1e6, 2) for k, v in PHASES.most_common()},
         "items": st.engine.stats()["items"],
     }

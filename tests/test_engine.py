@@ -214,6 +214,36 @@ def test_snapshot_restore_continues_identically() -> None:
     assert [a.record(k) for k in crowd.keys] == [b.record(k) for k in crowd.keys]
 
 
+def test_snapshot_formats_old_and_damaged() -> None:
+    """A snapshot written before the zstd format (zlib, magic SGZ1) restores to the same
+    engine; a damaged or foreign one is refused with a readable error, not a crash."""
+    import zlib
+
+    import msgpack
+    import zstandard
+
+    crowd = Crowd(200, delta=0.6, seed=3)
+    eng = Engine(EngineConfig(max_outstanding=300))
+    eng.add_items((k, None) for k in crowd.keys)
+    for now in range(0, 20_000, 1000):
+        eng.add_answers(crowd.answer_now(eng.plan(now)), now)
+    new = eng.snapshot()
+    assert new[:4] == b"SGZ2"
+    raw = zstandard.ZstdDecompressor().decompress(new[4:])
+    old = b"SGZ1" + zlib.compress(raw, 1)
+    same = Engine.restore(new)
+    for data in (old, raw):  # zlib-era and uncompressed snapshots
+        back = Engine.restore(data)
+        assert back.snapshot() == same.snapshot()
+        assert [back.record(k) for k in crowd.keys] == [eng.record(k) for k in crowd.keys]
+        assert back.plan(30_000) == Engine.restore(new).plan(30_000)
+    for bad, why in ((new[:4] + new[4:-9], "unreadable"), (b"SGZ1garbage", "unreadable"),
+                     (msgpack.packb([1, 2]), "unreadable"),
+                     (msgpack.packb({"v": 99}), "version 99")):
+        with pytest.raises(EngineInputError, match=why):
+            Engine.restore(bad)
+
+
 def test_ceiling_makes_items_unresolved() -> None:
     """With only random clickers, items reach their ceiling and go to a person."""
     crowd = Crowd(80, sources=[0.0, 0.0], seed=8)
