@@ -2,8 +2,12 @@
 
 from __future__ import annotations
 
+import zlib
+
+import msgpack
 import numpy as np
 import pytest
+import zstandard
 from scipy.stats import beta as beta_dist
 from scipy.stats import binom
 
@@ -217,11 +221,6 @@ def test_snapshot_restore_continues_identically() -> None:
 def test_snapshot_formats_old_and_damaged() -> None:
     """A snapshot written before the zstd format (zlib, magic SGZ1) restores to the same
     engine; a damaged or foreign one is refused with a readable error, not a crash."""
-    import zlib
-
-    import msgpack
-    import zstandard
-
     crowd = Crowd(200, delta=0.6, seed=3)
     eng = Engine(EngineConfig(max_outstanding=300))
     eng.add_items((k, None) for k in crowd.keys)
