@@ -130,6 +130,12 @@ def cpu_seconds(pid: int) -> float:
     return (int(parts[11]) + int(parts[12])) / os.sysconf("SC_CLK_TCK")
 
 
+def process_state(pid: int) -> str:
+    """The state letter of /proc/PID/stat ("T": stopped by a signal)."""
+    with open(f"/proc/{pid}/stat") as fh:
+        return fh.read().rsplit(")", 1)[1].split()[0]
+
+
 def rss_bytes(pid: int) -> int:
     with open(f"/proc/{pid}/status") as fh:
         for line in fh:
@@ -424,9 +430,16 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         time.sleep(0.05)  # the questions of its last commit are in the stream by now
         proc.send_signal(signal.SIGSTOP)
         time.sleep(0.05)  # let a reply in flight land in the socket
+        # The backlog is only a backlog if the worker stands still meanwhile. Started from
+        # a shell job whose shell then exits, the kernel continues the stopped worker
+        # (SIGCONT to an orphaned process group), and the drain below never ends.
+        wait_until(lambda: process_state(proc.pid) == "T", 10, "the worker to stop")
         answered = 0
         while got := feeder.step():
             answered += got
+        if process_state(proc.pid) != "T":
+            raise SystemExit("bench_stream: the worker was continued by someone else while "
+                             "the backlog was made (run the benchmark in the foreground)")
         return answered
 
     for cycle in range(cycles + 1):  # the first one only fills the cap: not measured
@@ -436,7 +449,11 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         rc0 = redis_cpu(r)
         c0, t0 = cpu_seconds(proc.pid), time.monotonic()
         proc.send_signal(signal.SIGCONT)
+        deadline = time.monotonic() + 300
         while consumed() < target:
+            if time.monotonic() > deadline:
+                raise SystemExit(f"bench_stream: the worker consumed {consumed()} of "
+                                 f"{target} answer entries in 300 s")
             time.sleep(0.002)
         t1 = time.monotonic()
         if cycle == 0:
