@@ -38,10 +38,13 @@ def test_maxmemory_refuses_whole_batches_and_the_worker_resumes_when_freed() -> 
 
 @pytest.mark.slow
 def test_power_cut_that_rolls_back_commits_still_ends_equal() -> None:
-    """AOF everysec losing its tail: rolled-back batches are applied again, state equal.
+    """AOF everysec losing its tail, not repaired: rolled-back batches are applied again,
+    every answer counts as often as in an uninterrupted run, the worker finishes.
 
-    The output streams may repeat the rolled-back batch's entries (an open finding, see
-    tests/faultkit.py); the records, counters and engine state must be equal.
+    When the cut falls inside a transaction Redis 7.0 runs the half of it that survived
+    (an open finding, see tests/faultkit.py): the output streams may repeat entries, and
+    the engine may plan a batch twice, so records and counters are not required equal
+    here; the repaired case below requires them equal.
     """
     res = faultkit.redis_power_cut_aof()
     assert res.passed, res.as_dict()
