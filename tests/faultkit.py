@@ -274,10 +274,10 @@ def redis_restart_aof(restarts: int = 3, seed: int = 1, fsync: str = "always",
             # the output streams repeat that batch's decisions and questions, while the
             # records, counters and engine state stay equal. So the state must be equal;
             # the streams are reported apart.
-            # A half transaction that holds the batch's snapshot but not its acknowledgement
-            # leaves a state that already counts the batch while its entries are pending:
-            # they come back as duplicates and the engine plans once more (seen on
-            # 2026-12-03: one bootstrap question more, a slightly different pooled bias).
+            # The half runs later, in front of another batch's commands: an older batch's
+            # records or snapshot can land over newer ones, and the worker goes on from a
+            # slightly different state (seen on 2026-12-03 in about half the runs: one
+            # bootstrap question more, a slightly different pooled bias).
             # What must hold even then: every answer applied exactly as often as in the
             # uninterrupted run, and the worker finishing by itself.
             streams = [p for p in res.details["differs"] if p in ("decisions", "questions")]
