@@ -78,3 +78,45 @@ def test_decision_error_matches_logistic_without_uncertainty() -> None:
     np.testing.assert_allclose(decision_error(llr, np.zeros(3)), 1 / (1 + np.exp(np.abs(llr))))
     far = np.array([-7.0, 3.0])
     assert (decision_error(far, np.full(2, 0.5)) > 1 / (1 + np.exp(np.abs(far)))).all()
+
+
+def test_recount_equals_the_answer_by_answer_sum() -> None:
+    """A full recount (one pass over every answer, each item's discount computed once)
+    and counting the same answers in small batches both give, to rounding, the sum
+    written answer by answer from the formula in core/evidence.py."""
+    rng = np.random.default_rng(5)
+    n_items, n_ans = 40, 400
+    led = Ledger()
+    led.add_items(n_items)
+    led.items["side"][:n_items] = rng.integers(-1, 2, n_items)
+    led.items["pinned"][:n_items] = rng.random(n_items) < 0.2
+    led.items["llr"][:n_items] = rng.normal(0, 4, n_items)
+    a = rng.integers(0, n_items, n_ans)
+    b = (a + rng.integers(1, n_items, n_ans)) % n_items
+    src = rng.integers(0, 3, n_ans)
+    same = rng.random(n_ans) < 0.5
+    idx = led.append_answers(a, b, src, same)
+    llr0 = led.item("llr").copy()  # the partners' evidence both passes discount by
+    led.recompute(DELTA, SE)
+    full = led.item("llr").copy()
+    led.items["llr"][:n_items] = llr0
+    t_small = []
+    for part in np.array_split(idx, 7):
+        target, step, _ = led._contributions(part, DELTA, SE)
+        t_small.append((target, step))
+    side, pinned = led.item("side"), led.item("pinned")
+    want = np.zeros(n_items)
+    for i in range(n_ans):  # the formula, one answer and one counted endpoint at a time
+        for t, p, counted in ((a[i], b[i], side[b[i]] >= 0), (b[i], a[i], side[a[i]] >= 0)):
+            if not counted:
+                continue
+            eps = 0.0 if pinned[p] else 1.0 / (1.0 + np.exp(min(abs(llr0[p]), 700.0)))
+            d = np.clip(DELTA[src[i]] * (1.0 - 2.0 * min(max(eps, 0.0), 0.5)), -0.999999,
+                        0.999999)
+            want[t] += (1 if same[i] else -1) * (2.0 * side[p] - 1.0) * (np.log1p(d)
+                                                                       - np.log1p(-d))
+    got_small = np.bincount(np.concatenate([t for t, _ in t_small]),
+                            weights=np.concatenate([s for _, s in t_small]),
+                            minlength=n_items)
+    np.testing.assert_allclose(full, want, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(got_small, want, rtol=1e-12, atol=1e-12)

@@ -83,7 +83,7 @@ class Ledger:
         return idx
 
     # -- evidence -------------------------------------------------------------
-    def _contributions(self, idx: np.ndarray, delta: np.ndarray, se: np.ndarray,
+    def _contributions(self, idx: np.ndarray | slice, delta: np.ndarray, se: np.ndarray,
                        trust_partners: bool = False
                        ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(target, step, sensitivity) for every (answer, counted endpoint) among ``idx``.
@@ -96,13 +96,27 @@ class Ledger:
         src, same = ans["src"][idx], ans["same"][idx]
         for_a = (d & 1) != 0
         for_b = (d & 2) != 0
-        target = np.concatenate([a[for_a], b[for_b]])
-        partner = np.concatenate([b[for_a], a[for_b]])
-        s = np.concatenate([src[for_a], src[for_b]])
-        x = np.concatenate([same[for_a], same[for_b]]).astype(np.float64)
+        k = int(np.count_nonzero(for_a))
+        m = k + int(np.count_nonzero(for_b))
+
+        def both(first: np.ndarray, second: np.ndarray) -> np.ndarray:
+            """first[for_a] then second[for_b], written straight into one array (about a
+            quarter of the time of two masked copies and a concatenation)."""
+            out = np.empty(m, dtype=first.dtype)
+            np.compress(for_a, first, out=out[:k])
+            np.compress(for_b, second, out=out[k:])
+            return out
+
+        target, partner = both(a, b), both(b, a)
+        s = both(src, src)
+        x = both(same, same).astype(np.float64)
         side = self.items["side"]
         if trust_partners:
             eps = np.zeros(len(partner))
+        elif len(partner) > self.n_items:
+            # a pass over every answer: each item's discount once, then gathered (the
+            # same values, with one exp per item instead of one per answer)
+            eps = reference_eps(self.item("llr"), self.item("pinned"))[partner]
         else:
             eps = reference_eps(self.items["llr"][partner], self.items["pinned"][partner])
         w, spread = answer_weights(delta[s], se[s], eps)
@@ -128,7 +142,7 @@ class Ledger:
         discount, for items placed together whose evidence is not known yet.
         """
         n = self.n_items
-        idx = np.arange(self.n_answers)
+        idx = slice(0, self.n_answers)  # every answer: views, not gathers
         if settle:
             target, step, _ = self._contributions(idx, delta, se, trust_partners=True)
             self.items["llr"][:n] = np.bincount(target, weights=step, minlength=n)[:n]
