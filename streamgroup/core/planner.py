@@ -9,8 +9,21 @@ import numpy as np
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 
 
+_M64 = (1 << 64) - 1
+
+
+def _mix_int(x: int) -> int:
+    """:func:`mix` of one Python int, in Python arithmetic (no numpy call per step)."""
+    z = (x + 0x9E3779B97F4A7C15) & _M64
+    z = ((z ^ (z >> 30)) * 0xBF58476D1CE4E5B9) & _M64
+    z = ((z ^ (z >> 27)) * 0x94D049BB133111EB) & _M64
+    return z ^ (z >> 31)
+
+
 def mix(x: np.ndarray | int) -> np.ndarray:
     """splitmix64: a stateless, well-spread hash; drives every planning 'coin'."""
+    if type(x) is int and 0 <= x <= _M64:  # the salts: several per batch, ~9 us each in numpy
+        return np.uint64(_mix_int(x))  # type: ignore[return-value]
     with np.errstate(over="ignore"):
         z = np.asarray(x, dtype=np.uint64) + _GOLDEN
         z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
