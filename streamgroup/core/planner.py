@@ -6,15 +6,14 @@ import math
 
 import numpy as np
 
-_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
-
-
+_GOLDEN_INT = 0x9E3779B97F4A7C15
+_GOLDEN = np.uint64(_GOLDEN_INT)
 _M64 = (1 << 64) - 1
 
 
 def _mix_int(x: int) -> int:
     """:func:`mix` of one Python int, in Python arithmetic (no numpy call per step)."""
-    z = (x + 0x9E3779B97F4A7C15) & _M64
+    z = (x + _GOLDEN_INT) & _M64
     z = ((z ^ (z >> 30)) * 0xBF58476D1CE4E5B9) & _M64
     z = ((z ^ (z >> 27)) * 0x94D049BB133111EB) & _M64
     return z ^ (z >> 31)
