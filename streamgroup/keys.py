@@ -118,6 +118,12 @@ class Keys:
         return self._k("snapshot")
 
     @property
+    def snapshot_seq(self) -> str:
+        """String: the batch number the stored snapshot covers (guards against an older
+        snapshot landing over a newer one)."""
+        return self._k("snapseq")
+
+    @property
     def journal(self) -> str:
         """Stream: the batches applied since the last snapshot, for replay."""
         return self._k("journal")
@@ -145,8 +151,8 @@ class Keys:
     def all(self) -> list[str]:
         return [
             self.items, self.answers, self.questions, self.decisions, self.assign,
-            self.dead, self.epoch, self.snapshot, self.journal, self.meta, self.noise,
-            self.history, self.lease,
+            self.dead, self.epoch, self.snapshot, self.snapshot_seq, self.journal, self.meta,
+            self.noise, self.history, self.lease,
         ]
 
 

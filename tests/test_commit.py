@@ -4,18 +4,25 @@ connection (hiredis and pure-Python parsers)."""
 
 from __future__ import annotations
 
+import time
+
 import pytest
 import redis
 from redis._parsers import _HiredisParser, _RESP2Parser
 
 from streamgroup.core.types import QuestionColumns
 from streamgroup.keys import QUESTION_FIELDS, Keys
+from streamgroup.settings import Settings
+from streamgroup.stream import recovery
 from streamgroup.stream.commit import (
     DECISION_FIELDS,
+    Caps,
     CommitError,
     CommitPlan,
     Prepacked,
     _question_entries,
+    build_commit,
+    execute,
     receive,
     send,
     xadd_entries,
@@ -150,3 +157,46 @@ def test_a_failing_command_is_named_and_the_connection_stays_in_step(
         receive(r, plan)
     assert r.get("{tc}:n") == b"1"  # MULTI/EXEC does not roll back: the caller reloads
     assert r.ping() is True
+
+
+def test_an_older_snapshot_never_lands_over_a_newer_one(redis_url: str) -> None:
+    """The snapshot write is guarded by the batch number it covers. A cut AOF can make
+    Redis 7.0 run an old transaction's surviving commands later, in front of a newer
+    one; replaying an older (or the same) batch's snapshot command then changes nothing:
+    the newer snapshot, and the journal written since, stay."""
+    r = _client(redis_url)
+    keys = Keys("snapguard")
+
+    def commit(blob: bytes, covers: int, journal: bytes | None = None) -> list:
+        plan = build_commit(keys, Caps(), records=None, decisions=[], questions=None,
+                            dead=[], journal=journal, snapshot=(blob, covers) if blob else None,
+                            meta={"seq": covers}, acks={}, group="g", pack_questions=False)
+        return execute(r, plan)
+
+    assert commit(b"state after batch 7", 7)[0] == 1
+    old = build_commit(keys, Caps(), records=None, decisions=[], questions=None, dead=[],
+                       journal=None, snapshot=(b"state after batch 5", 5), meta={},
+                       acks={}, group="g", pack_questions=False)
+    commit(b"", 8, journal=b"batch 8")
+    assert execute(r, old)[0] == 0  # the stale command, run late
+    assert commit(b"state after batch 7, again", 7)[0] == 0  # a redone batch's twin
+    assert r.get(keys.snapshot) == b"state after batch 7"
+    assert r.xlen(keys.journal) == 1  # batch 8's entry is still there to replay
+    assert r.get(keys.snapshot_seq) == b"7"
+    assert commit(b"state after batch 9", 9)[0] == 1  # a newer one goes in, journal folded
+    assert r.get(keys.snapshot) == b"state after batch 9"
+    assert r.exists(keys.journal) == 0
+
+
+def test_a_new_namespace_drops_a_leftover_snapshot_guard(redis_url: str) -> None:
+    """A namespace created afresh (its keys deleted, but a stale ``snapseq`` left) must
+    not have its snapshots held back by the old batch number."""
+    r = _client(redis_url)
+    keys = Keys("snapfresh")
+    r.set(keys.snapshot_seq, 500)
+    state = recovery.load_state(r, keys, Settings(redis=redis_url, ns="snapfresh"), time.time)
+    assert state.seq == 0 and r.exists(keys.snapshot_seq) == 0
+    plan = build_commit(keys, Caps(), records=None, decisions=[], questions=None, dead=[],
+                        journal=None, snapshot=(state.snapshot_bytes(0), 1), meta={},
+                        acks={}, group="g", pack_questions=False)
+    assert execute(r, plan)[0] == 1

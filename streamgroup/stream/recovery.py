@@ -137,6 +137,8 @@ def _create(client: redis.Redis, keys: Keys, settings: Settings, clock: Any) -> 
     created, _ = pipe.execute()
     if not created:  # another worker created the namespace a moment ago: use its state
         return load_state(client, keys, settings, clock)
+    # a guard left over from an earlier life of the namespace would hold back its snapshots
+    client.delete(keys.snapshot_seq)
     return state
 
 

@@ -513,9 +513,9 @@ class Worker:
         # A journal grown past the snapshot's own size is folded in early: that bounds both
         # the memory it takes in Redis and the replay time of a restart.
         if journal is None or self._journal_bytes > max(JOURNAL_FLOOR, self._snapshot_bytes):
-            snapshot, journal = state.snapshot_bytes(int(now * 1000)), None
+            snapshot, journal = (state.snapshot_bytes(int(now * 1000)), state.seq), None
             self._next_snapshot = now + self.settings.snapshot_every
-            self._journal_bytes, self._snapshot_bytes = 0, len(snapshot)
+            self._journal_bytes, self._snapshot_bytes = 0, len(snapshot[0])
         plan = build_commit(
             keys, self.caps, records=out.records, decisions=out.decisions,
             questions=out.questions, dead=[d for _, d in out.dead], journal=journal,
@@ -535,7 +535,8 @@ class Worker:
             self._flush()  # normally empty: a turn that sees the stop flag commits at once
             plan = build_commit(
                 self.keys, self.caps, records=None, decisions=[], questions=None, dead=[],
-                journal=None, snapshot=self.state.snapshot_bytes(int(self.clock() * 1000)),
+                journal=None, snapshot=(self.state.snapshot_bytes(int(self.clock() * 1000)),
+                                        self.state.seq),
                 meta=self.state.meta_fields(), acks={}, group=GROUP, pack_questions=False,
                 lease=lease.take_command(self.keys, self.holder, self._lease_ms))
             self._lease_reply(execute(self.client, plan))
