@@ -124,6 +124,12 @@ class Keys:
         return self._k("snapseq")
 
     @property
+    def snapshot_next(self) -> str:
+        """String: a snapshot on its way in (renamed to ``snapshot`` by the same
+        transaction, or dropped if an older one)."""
+        return self._k("snapnext")
+
+    @property
     def journal(self) -> str:
         """Stream: the batches applied since the last snapshot, for replay."""
         return self._k("journal")
@@ -151,8 +157,8 @@ class Keys:
     def all(self) -> list[str]:
         return [
             self.items, self.answers, self.questions, self.decisions, self.assign,
-            self.dead, self.epoch, self.snapshot, self.snapshot_seq, self.journal, self.meta,
-            self.noise, self.history, self.lease,
+            self.dead, self.epoch, self.snapshot, self.snapshot_seq, self.snapshot_next,
+            self.journal, self.meta, self.noise, self.history, self.lease,
         ]
 
 

@@ -278,8 +278,8 @@ def redis_restart_aof(restarts: int = 3, seed: int = 1, fsync: str = "always",
             # command is guarded by the batch number (commit.SNAPSHOT_IF_NEWER): without
             # the guard an older snapshot landed over the redone batch's in about half the
             # runs on 2026-12-03 (one bootstrap question more, a slightly different
-            # pooled bias, records differing in their evidence). With it, 12 runs of 13
-            # ended with the state equal; the rare rest showed the same symptom, from a
+            # pooled bias, records differing in their evidence). With it, 15 runs of 17
+            # ended with the state equal; the rest showed the same symptom, from a
             # cause not yet found. So what is required here is what always held: every
             # answer applied as often as in the uninterrupted run, the worker finishing by
             # itself; the state difference is reported (``state_differs``).

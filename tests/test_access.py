@@ -38,7 +38,7 @@ NS = "acl"
 # commands they use are listed too. Producers and readers need far less.
 WORKER_ACL = ("+ping +multi +exec +eval +xadd +xreadgroup +xack +xautoclaim +xgroup|create "
               "+xgroup|delconsumer +xinfo|groups +xinfo|consumers +xpending +xtrim +xrange "
-              "+get +set +exists +unlink +hset")
+              "+get +set +exists +unlink +hset +rename")
 PRODUCER_ACL = "+ping +xadd +hget +hmget +hscan"
 
 

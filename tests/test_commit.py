@@ -173,17 +173,18 @@ def test_an_older_snapshot_never_lands_over_a_newer_one(redis_url: str) -> None:
                             meta={"seq": covers}, acks={}, group="g", pack_questions=False)
         return execute(r, plan)
 
-    assert commit(b"state after batch 7", 7)[0] == 1
+    assert commit(b"state after batch 7", 7)[1] == 1  # (after the SET of the newcomer)
     old = build_commit(keys, Caps(), records=None, decisions=[], questions=None, dead=[],
                        journal=None, snapshot=(b"state after batch 5", 5), meta={},
                        acks={}, group="g", pack_questions=False)
     commit(b"", 8, journal=b"batch 8")
-    assert execute(r, old)[0] == 0  # the stale command, run late
-    assert commit(b"state after batch 7, again", 7)[0] == 0  # a redone batch's twin
+    assert execute(r, old)[1] == 0  # the stale commands, run late
+    assert commit(b"state after batch 7, again", 7)[1] == 0  # a redone batch's twin
     assert r.get(keys.snapshot) == b"state after batch 7"
     assert r.xlen(keys.journal) == 1  # batch 8's entry is still there to replay
     assert r.get(keys.snapshot_seq) == b"7"
-    assert commit(b"state after batch 9", 9)[0] == 1  # a newer one goes in, journal folded
+    assert r.exists(keys.snapshot_next) == 0  # a refused newcomer is not left behind
+    assert commit(b"state after batch 9", 9)[1] == 1  # a newer one goes in, journal folded
     assert r.get(keys.snapshot) == b"state after batch 9"
     assert r.exists(keys.journal) == 0
 
@@ -199,4 +200,4 @@ def test_a_new_namespace_drops_a_leftover_snapshot_guard(redis_url: str) -> None
     plan = build_commit(keys, Caps(), records=None, decisions=[], questions=None, dead=[],
                         journal=None, snapshot=(state.snapshot_bytes(0), 1), meta={},
                         acks={}, group="g", pack_questions=False)
-    assert execute(r, plan)[0] == 1
+    assert execute(r, plan)[1] == 1

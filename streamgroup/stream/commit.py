@@ -6,10 +6,11 @@ Order inside the transaction (MULTI/EXEC: other clients see all of it or none of
 2. ``XADD {NS}:decisions`` for records whose side or status changed (``MAXLEN ~``);
 3. ``XADD {NS}:questions``: one entry per question, or entries with a ``pack`` field;
 4. ``XADD {NS}:dead`` for rejected entries;
-5. the journal entry (``XADD {NS}:journal``) - or, when it is time, the snapshot: one small
-   script (``SNAPSHOT_IF_NEWER``) sets ``{NS}:snapshot``, unlinks ``{NS}:journal`` (the
-   snapshot then covers this batch too) and records the batch number in
-   ``{NS}:snapseq``, unless a snapshot of that batch or a later one is stored already;
+5. the journal entry (``XADD {NS}:journal``) - or, when it is time, the snapshot: ``SET
+   {NS}:snapnext``, then one small script (``SNAPSHOT_IF_NEWER``) renames it to
+   ``{NS}:snapshot``, unlinks ``{NS}:journal`` (the snapshot then covers this batch too)
+   and records the batch number in ``{NS}:snapseq``, unless a snapshot of that batch or a
+   later one is stored already;
 6. ``HSET {NS}:meta`` with absolute counter values (idempotent);
 7. ``XACK`` of every consumed input entry, then a trim of the input stream (below);
 8. the renewal of the worker's lease on the namespace (``stream/lease.py``).
@@ -149,18 +150,25 @@ class Caps:
 
 # KEYS[1] = input stream. Runs after the batch's XACK in the same transaction; it takes no
 # entry ids (passing hundreds of ids through Lua cost about as much server time as the XACK).
-# The snapshot, the drop of the journal it covers, and the batch number it covers, written
-# only if that number is above the stored one. A transaction is all or nothing except
-# after a cut AOF: Redis 7.0 (aof-load-truncated yes) keeps the commands before the cut and
-# runs them at its next restart in front of a later transaction, which could otherwise put
-# an older snapshot over a newer one (or over a redone batch's own) and drop the journal
-# written since. The UNLINK frees the journal in the background: no pause.
+# The snapshot goes in under a key of its own by a plain SET (Redis keeps the argument as
+# it is: no copy), then this script renames it over the stored one, drops the journal it
+# covers and records the batch number it covers - only if that number is above the stored
+# one (otherwise it drops the newcomer). A transaction is all or nothing except after a
+# cut AOF: Redis 7.0 (aof-load-truncated yes) keeps the commands before the cut and runs
+# them at its next restart in front of a later transaction, which could otherwise put an
+# older snapshot over a newer one (or over a redone batch's own) and drop the journal
+# written since. Passing the snapshot itself to a script would copy it twice inside the
+# transaction (measured: 24 ms for 11 MB, against 1 ms for SET). The UNLINK frees the
+# journal in the background: no pause.
 SNAPSHOT_IF_NEWER = """
 local stored = tonumber(redis.call('GET', KEYS[3]) or '-1')
-if tonumber(ARGV[2]) <= stored then return 0 end
-redis.call('SET', KEYS[1], ARGV[1])
+if tonumber(ARGV[1]) <= stored then
+  redis.call('UNLINK', KEYS[4])
+  return 0
+end
+redis.call('RENAME', KEYS[4], KEYS[1])
 redis.call('UNLINK', KEYS[2])
-redis.call('SET', KEYS[3], ARGV[2])
+redis.call('SET', KEYS[3], ARGV[1])
 return 1
 """
 
@@ -401,8 +409,9 @@ def build_commit(
         cmds.append(_xadd(keys.dead, caps.dead, flat))
     if snapshot is not None:
         blob, covers = snapshot
-        cmds.append(("EVAL", SNAPSHOT_IF_NEWER, 3, keys.snapshot, keys.journal,
-                     keys.snapshot_seq, blob, covers))
+        cmds.append(("SET", keys.snapshot_next, blob))
+        cmds.append(("EVAL", SNAPSHOT_IF_NEWER, 4, keys.snapshot, keys.journal,
+                     keys.snapshot_seq, keys.snapshot_next, covers))
     elif journal is not None:
         cmds.append(("XADD", keys.journal, "*", "b", journal))
     if meta:

@@ -138,7 +138,7 @@ def _create(client: redis.Redis, keys: Keys, settings: Settings, clock: Any) -> 
     if not created:  # another worker created the namespace a moment ago: use its state
         return load_state(client, keys, settings, clock)
     # a guard left over from an earlier life of the namespace would hold back its snapshots
-    client.delete(keys.snapshot_seq)
+    client.unlink(keys.snapshot_seq)
     return state
 
 
