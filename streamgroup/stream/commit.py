@@ -148,8 +148,6 @@ class Caps:
     history: int = 10_000
 
 
-# KEYS[1] = input stream. Runs after the batch's XACK in the same transaction; it takes no
-# entry ids (passing hundreds of ids through Lua cost about as much server time as the XACK).
 # The snapshot goes in under a key of its own by a plain SET (Redis keeps the argument as
 # it is: no copy), then this script renames it over the stored one, drops the journal it
 # covers and records the batch number it covers - only if that number is above the stored
@@ -172,6 +170,8 @@ redis.call('SET', KEYS[3], ARGV[1])
 return 1
 """
 
+# KEYS[1] = input stream. Runs after the batch's XACK in the same transaction; it takes no
+# entry ids (passing hundreds of ids through Lua cost about as much server time as the XACK).
 TRIM_INPUT = """
 local function parse(id)
   local ms, seq = string.match(id, '^(%d+)-(%d+)$')
