@@ -279,10 +279,12 @@ def redis_restart_aof(restarts: int = 3, seed: int = 1, fsync: str = "always",
             # the guard an older snapshot landed over the redone batch's in about half the
             # runs on 2026-12-03 (one bootstrap question more, a slightly different
             # pooled bias, records differing in their evidence). With it, 15 runs of 17
-            # ended with the state equal; the rest showed the same symptom, from a
-            # cause not yet found. So what is required here is what always held: every
-            # answer applied as often as in the uninterrupted run, the worker finishing by
-            # itself; the state difference is reported (``state_differs``).
+            # ended with the state equal; the rest showed the same symptom from another
+            # cause (the first differing question is a bootstrap one: the block was built
+            # from other items, likely batches split differently around a restart). So
+            # what is required here is what always held: every answer applied as often as
+            # in the uninterrupted run, the worker finishing by itself; the state
+            # difference is reported (``state_differs``).
             streams = [p for p in res.details["differs"] if p in ("decisions", "questions")]
             res.details["output_streams_differ"] = streams
             res.details["state_differs"] = [p for p in res.details["differs"]
