@@ -274,17 +274,15 @@ def redis_restart_aof(restarts: int = 3, seed: int = 1, fsync: str = "always",
             # the output streams repeat that batch's decisions and questions, while the
             # records, counters and engine state stay equal. So the state must be equal;
             # the streams are reported apart.
-            # The half runs later, in front of another batch's commands. Its snapshot
-            # command is guarded by the batch number (commit.SNAPSHOT_IF_NEWER): without
-            # the guard an older snapshot landed over the redone batch's in about half the
-            # runs on 2026-12-03 (one bootstrap question more, a slightly different
-            # pooled bias, records differing in their evidence). With it, 15 runs of 17
-            # ended with the state equal; the rest showed the same symptom from another
-            # cause (the first differing question is a bootstrap one: the block was built
-            # from other items, likely batches split differently around a restart). So
-            # what is required here is what always held: every answer applied as often as
-            # in the uninterrupted run, the worker finishing by itself; the state
-            # difference is reported (``state_differs``).
+            # The half runs later, in front of another batch's commands (its snapshot
+            # command cannot put an older snapshot over a newer one: commit.
+            # SNAPSHOT_IF_NEWER). The engine state still ends slightly different in about
+            # one run in seven (2026-12-03, with and without that guard): the first
+            # differing question is a bootstrap one, the block built from other items,
+            # likely item entries batched differently around a restart. So what is
+            # required here is what always held: every answer applied as often as in the
+            # uninterrupted run, the worker finishing by itself; the state difference is
+            # reported (``state_differs``).
             streams = [p for p in res.details["differs"] if p in ("decisions", "questions")]
             res.details["output_streams_differ"] = streams
             res.details["state_differs"] = [p for p in res.details["differs"]
