@@ -124,16 +124,20 @@ def stop_worker(proc: subprocess.Popen[bytes]) -> int:
         return proc.wait(10)
 
 
-def cpu_seconds(pid: int) -> float:
+def _proc_stat(pid: int) -> list[str]:
+    """The fields of /proc/PID/stat after the command name (field 3, the state, first)."""
     with open(f"/proc/{pid}/stat") as fh:
-        parts = fh.read().rsplit(")", 1)[1].split()
+        return fh.read().rsplit(")", 1)[1].split()
+
+
+def cpu_seconds(pid: int) -> float:
+    parts = _proc_stat(pid)
     return (int(parts[11]) + int(parts[12])) / os.sysconf("SC_CLK_TCK")
 
 
 def process_state(pid: int) -> str:
-    """The state letter of /proc/PID/stat ("T": stopped by a signal)."""
-    with open(f"/proc/{pid}/stat") as fh:
-        return fh.read().rsplit(")", 1)[1].split()[0]
+    """The state letter ("T": stopped by a signal)."""
+    return _proc_stat(pid)[0]
 
 
 def rss_bytes(pid: int) -> int:

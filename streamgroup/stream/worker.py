@@ -513,7 +513,7 @@ class Worker:
         # A journal grown past the snapshot's own size is folded in early: that bounds both
         # the memory it takes in Redis and the replay time of a restart.
         if journal is None or self._journal_bytes > max(JOURNAL_FLOOR, self._snapshot_bytes):
-            snapshot, journal = (state.snapshot_bytes(int(now * 1000)), state.seq), None
+            snapshot, journal = self._snapshot(now), None
             self._next_snapshot = now + self.settings.snapshot_every
             self._journal_bytes, self._snapshot_bytes = 0, len(snapshot[0])
         plan = build_commit(
@@ -527,6 +527,12 @@ class Worker:
         )
         return _Held(plan, out, now, t0)
 
+    def _snapshot(self, now: float) -> tuple[bytes, int]:
+        """The state's snapshot and the batch number it covers (what the commit's guard
+        compares with the stored snapshot's)."""
+        assert self.state is not None
+        return self.state.snapshot_bytes(int(now * 1000)), self.state.seq
+
     def _final_snapshot(self) -> None:
         """On a clean stop, fold the journal into a snapshot so the next start is quick."""
         if self.client is None or self.state is None:
@@ -535,8 +541,7 @@ class Worker:
             self._flush()  # normally empty: a turn that sees the stop flag commits at once
             plan = build_commit(
                 self.keys, self.caps, records=None, decisions=[], questions=None, dead=[],
-                journal=None, snapshot=(self.state.snapshot_bytes(int(self.clock() * 1000)),
-                                        self.state.seq),
+                journal=None, snapshot=self._snapshot(self.clock()),
                 meta=self.state.meta_fields(), acks={}, group=GROUP, pack_questions=False,
                 lease=lease.take_command(self.keys, self.holder, self._lease_ms))
             self._lease_reply(execute(self.client, plan))
