@@ -38,11 +38,12 @@ The machine is shared (2 cores for Redis, the worker, the adapter and the lookup
 and whatever else runs there), so the rates move with the load: ``worker_cpu_share_*``
 says how much of a core the worker got (``redis_cpu_share_*`` what Redis took), and
 ``*_per_cpu_s`` divides by it (the rate a dedicated core would give, if the worker is the
-bottleneck). ``redis_us_per_answer_*`` splits Redis's time by command (from INFO
-commandstats; ``exec`` includes the commands inside it, ``eval`` the appends its scripts
-make), ``loop_exec_ms_*`` is the mean time Redis spends inside one batch transaction
-(lookups wait behind it), and ``lookup_idle_p99_ms`` is the lookup latency of this
-machine with no worker running.
+bottleneck); ``worker_sys_part_plain`` is the part of the worker's CPU spent in the
+kernel (mostly sending and receiving on the socket). ``redis_us_per_answer_*`` splits
+Redis's time by command (from INFO commandstats; ``exec`` includes the commands inside it,
+``eval`` the appends its scripts make), ``loop_exec_ms_*`` is the mean time Redis spends
+inside one batch transaction (lookups wait behind it), and ``lookup_idle_p99_ms`` is the
+lookup latency of this machine with no worker running.
 
 ``BENCH_PYSPY=PATH`` records a py-spy profile (raw format) of the worker over the drain
 cycles, to ``PATH`` and ``PATH-packed`` (py-spy is a tool to install by hand, not a
@@ -131,8 +132,14 @@ def _proc_stat(pid: int) -> list[str]:
 
 
 def cpu_seconds(pid: int) -> float:
+    return sum(cpu_split(pid))
+
+
+def cpu_split(pid: int) -> tuple[float, float]:
+    """(user, system) CPU seconds of the process so far."""
     parts = _proc_stat(pid)
-    return (int(parts[11]) + int(parts[12])) / os.sysconf("SC_CLK_TCK")
+    tick = os.sysconf("SC_CLK_TCK")
+    return int(parts[11]) / tick, int(parts[12]) / tick
 
 
 def process_state(pid: int) -> str:
@@ -419,7 +426,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         time.sleep(1.0)
     windows: list[tuple[float, float]] = []
     backlogs: list[int] = []
-    cpu = r_cpu = 0.0
+    cpu = r_cpu = sys_cpu = 0.0
     usec: collections.Counter[str] = collections.Counter()
     tails: collections.defaultdict[str, list[float]] = collections.defaultdict(list)
 
@@ -451,7 +458,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         target = consumed() + backlog
         r.config_resetstat()
         rc0 = redis_cpu(r)
-        c0, t0 = cpu_seconds(proc.pid), time.monotonic()
+        (u0, s0), t0 = cpu_split(proc.pid), time.monotonic()
         proc.send_signal(signal.SIGCONT)
         deadline = time.monotonic() + 300
         while consumed() < target:
@@ -463,7 +470,9 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         if cycle == 0:
             continue
         backlogs.append(backlog)
-        cpu += cpu_seconds(proc.pid) - c0
+        u1, s1 = cpu_split(proc.pid)
+        cpu += u1 + s1 - u0 - s0
+        sys_cpu += s1 - s0
         r_cpu += redis_cpu(r) - rc0
         for name, v in r.info("commandstats").items():
             usec[name.removeprefix("cmdstat_")] += v["usec"]
@@ -491,6 +500,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         "backlogs": [*backlogs, last],
         "worker_cpu_share": cpu / busy,
         "redis_cpu_share": r_cpu / busy,
+        "worker_sys_part": sys_cpu / cpu if cpu else 0.0,  # of its CPU, in the kernel
         "redis_us_per_answer": us_per_answer(usec, done),
         # how long Redis itself takes for one batch's read and transaction (it serves no
         # lookup meanwhile): the median over the windows of each window's percentile
@@ -582,6 +592,7 @@ def main(argv: list[str] | None = None) -> int:
             "lookup_p50_ms": round(plain["lookup"]["p50_ms"], 3),
             "lookups": plain["lookup"]["lookups"],
             "worker_cpu_share_plain": round(plain["worker_cpu_share"], 2),
+            "worker_sys_part_plain": round(plain["worker_sys_part"], 2),
             "redis_cpu_share_plain": round(plain["redis_cpu_share"], 2),
             "redis_us_per_answer_plain": plain["redis_us_per_answer"],
             "redis_ms_plain": plain["redis_ms"],
@@ -627,6 +638,7 @@ def main(argv: list[str] | None = None) -> int:
         "drain_windows": [plain["windows"], packed["windows"]],
         "drain_window_s": [plain["window_s"], packed["window_s"]],
         "worker_cpu_share_plain": round(plain["worker_cpu_share"], 2),
+        "worker_sys_part_plain": round(plain["worker_sys_part"], 2),
         "redis_cpu_share_plain": round(plain["redis_cpu_share"], 2),
         "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
         "redis_cpu_share_packed": round(packed["redis_cpu_share"], 2),
