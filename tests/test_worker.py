@@ -404,3 +404,40 @@ def test_an_answer_refused_only_in_company_cannot_jam_a_batch(monkeypatch) -> No
     assert out.counts["applied"] == 2 and out.counts["dead:engine"] == 1
     assert [d.origin for _, d in out.dead] == [f"{K.answers} 1-0"]
     assert [op for op, _ in out.batch.ops] == ["a", "a"]  # replay repeats the same calls
+
+
+def test_replay_keeps_the_later_of_two_journal_entries_for_one_batch(redis_url: str) -> None:
+    """A transaction cut short by a power cut can come back at a later load of Redis's AOF,
+    in front of the worker's redo of the same batch: the journal then holds two entries
+    with one batch number. Replay keeps the later one (the batches after it were built on
+    it), and the state equals the one the worker had."""
+    from streamgroup.stream.state import Batch
+
+    r = redis.Redis.from_url(redis_url)
+    crowd = Crowd(120, delta=0.6, sources=[0.6] * 10, seed=7)
+    push_items(r, crowd.keys)
+    w = Worker(settings(redis_url, batch=20, snapshot_every=3600))
+    adapter = SimAdapter(r, NS, crowd)
+    steps = {"n": 0}
+
+    def some(wk: Worker) -> bool:
+        adapter.step()
+        steps["n"] += 1
+        return steps["n"] > 30
+
+    w.run_until(some, 30)
+    want = w.state.engine.stats(), w.state.seq, dict(w.state.counters)
+    w.close()
+    rows = r.xrange(K.journal)
+    assert len(rows) > 4
+    batches = [Batch.from_journal(f[b"b"]) for _, f in rows]
+    at = len(batches) // 2
+    stale = Batch(batches[at].seq, batches[at].now_ms, [["i", [["stale-item", None]]]])
+    r.delete(K.journal)
+    for b in [*batches[:at], stale, *batches[at:]]:
+        r.xadd(K.journal, {"b": b.journal_bytes()})
+    w2 = Worker(settings(redis_url, batch=20, snapshot_every=3600))
+    w2.start()
+    assert "stale-item" not in w2.state.engine.keys
+    assert (w2.state.engine.stats(), w2.state.seq, dict(w2.state.counters)) == want
+    w2.close()

@@ -154,17 +154,39 @@ def journal_entries(client: redis.Redis, keys: Keys) -> Iterator[Batch]:
 
 
 def replay_journal(client: redis.Redis, keys: Keys, state: WorkerState) -> int:
-    """Re-apply every journaled batch newer than the snapshot; returns how many."""
+    """Re-apply every journaled batch newer than the snapshot; returns how many.
+
+    Two entries in a row for one batch number: the later one is the batch as committed,
+    the earlier one a leftover of a transaction cut short. Redis 7.0 (AOF with
+    ``aof-load-truncated yes``) can keep the first commands of a transaction that a power
+    cut broke off and run them at a later load in front of the next transaction, which
+    after a restart is the worker's redo of that same batch, read again and perhaps split
+    into batches differently. The batches after it were built on the redo, so the redo is
+    what replay applies.
+    """
     n = 0
+    held: Batch | None = None
     for batch in journal_entries(client, keys):
-        if batch.seq <= state.seq:
-            continue
-        if batch.seq != state.seq + 1:
-            raise StateError(f"journal {keys.journal} jumps from batch {state.seq} to "
-                             f"{batch.seq}: entries are missing")
-        state.replay(batch)
-        n += 1
+        if held is not None and batch.seq == held.seq:
+            log.warning("the journal holds two entries for one batch; the later one is "
+                        "kept (a transaction cut short, replayed by Redis)", ns=keys.ns,
+                        batch=batch.seq)
+        elif held is not None:
+            n += _replay_one(keys, state, held)
+        held = batch
+    if held is not None:
+        n += _replay_one(keys, state, held)
     return n
+
+
+def _replay_one(keys: Keys, state: WorkerState, batch: Batch) -> int:
+    if batch.seq <= state.seq:
+        return 0
+    if batch.seq != state.seq + 1:
+        raise StateError(f"journal {keys.journal} jumps from batch {state.seq} to "
+                         f"{batch.seq}: entries are missing")
+    state.replay(batch)
+    return 1
 
 
 def claim_idle(client: redis.Redis, stream: str, consumer: str, idle_ms: int,
