@@ -6,6 +6,10 @@ from typing import Any
 
 import numpy as np
 
+# The operand of ``np.add.at`` / ``np.subtract.at`` on the int32 counters: a Python int
+# there takes numpy's slow casting path (about 70 us per 1,000 indices against 5 us).
+ONE_I32 = np.int32(1)
+
 
 class Columns:
     """Named numpy arrays that grow together, by a quarter at a time."""

@@ -49,7 +49,7 @@ from .codes import (
     WAITING,
     WHY_NAMES,
 )
-from .columns import Columns, SortedQueue
+from .columns import ONE_I32, Columns, SortedQueue
 from .decide import DecideMixin
 from .intake import IntakeMixin
 from .keyindex import KeyIndex, cache_size_for
@@ -366,7 +366,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         if self.phase == "run":
             if self._counted() >= max(REFIT_MIN, self.counted_at_fit * (1 + REFIT_GROWTH)):
                 self._refit()
-                self._decide(np.arange(len(self.keys)))
+                self._decide(np.arange(len(self.keys)), ordered=True)
             else:
                 self._decide(targets)
         return out
@@ -388,7 +388,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         self.outstanding -= len(opened)
         why = q["why"][opened]
         place = opened[why == PLACE]  # only placement questions hold an item's slot
-        np.subtract.at(self.items["inflight"], q["target"][place], 1)
+        np.subtract.at(self.items["inflight"], q["target"][place], ONE_I32)
         self._nudge(q["target"][place].astype(np.int64))
         if state == Q_EXPIRED:
             seed = opened[why == SEED]  # a block pair not answered in time is asked again

@@ -37,8 +37,14 @@ def decision_error(llr: np.ndarray, spread: np.ndarray) -> np.ndarray:
     With exact weights this is 1 / (1 + e^|llr|); the average over L ~ N(|llr|, spread^2)
     is never smaller (the function is convex there), so uncertainty delays commits.
     """
-    mag = np.abs(np.asarray(llr, dtype=float))[..., None] + np.asarray(spread)[..., None] * _GH_Z
-    return (_GH_W / (1.0 + np.exp(np.minimum(mag, 700.0)))).sum(axis=-1)
+    mag = np.abs(np.asarray(llr, dtype=float))
+    spread = np.asarray(spread)
+    # one term per node, added in the order a sum over an (n, 3) array adds them (bit for
+    # bit the same; tests/test_ledger.py compares), without the (n, 3) temporaries and the
+    # slow reduction over a short last axis (~9 ms against ~2 ms over 100,000 items)
+    t0, t1, t2 = (w / (1.0 + np.exp(np.minimum(mag + spread * z, 700.0)))
+                  for w, z in zip(_GH_W, _GH_Z, strict=True))
+    return (t0 + t1) + t2
 
 
 def reference_eps(llr: np.ndarray, pinned: np.ndarray) -> np.ndarray:

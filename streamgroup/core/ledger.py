@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 
-from .columns import Columns
+from .columns import ONE_I32, Columns
 from .evidence import answer_weights, reference_eps
 
 UNPLACED = -1
@@ -131,7 +131,7 @@ class Ledger:
         np.add.at(self.items["llr"], target, step)
         np.add.at(self.items["s1"], target, spread)
         np.add.at(self.items["s2"], target, spread * spread)
-        np.add.at(self.items["count"], target, 1)
+        np.add.at(self.items["count"], target, ONE_I32)
         return target
 
     def recompute(self, delta: np.ndarray, se: np.ndarray, settle: bool = False) -> None:

@@ -6,6 +6,7 @@ import numpy as np
 
 from . import planner
 from .codes import ASKING, CHECK, PLACE, Q_EXPIRED, Q_OPEN, UNRESOLVED, WAITING, WHY_NAMES
+from .columns import ONE_I32
 from .ledger import UNPLACED
 from .sprt import weight
 from .types import Question, QuestionColumns
@@ -173,8 +174,8 @@ class QuestionsMixin:
         self.issued[why] += count
         it = self.items
         if why == PLACE:
-            np.add.at(it["inflight"], targets, 1)
-            np.add.at(it["asked"], targets, 1)
+            np.add.at(it["inflight"], targets, ONE_I32)
+            np.add.at(it["asked"], targets, ONE_I32)
         for side in (targets, partners) if why != CHECK else ():
             fresh = side[it["first_ms"][side] < 0]
             it["first_ms"][fresh] = now_ms
