@@ -1,5 +1,5 @@
-"""The pair set and the sorted insert it shares with the carry queue, against the plain
-computations they replace."""
+"""The pair set, the sorted insert it shares with the carry queue, and first_occurrence,
+against the plain computations they replace."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from streamgroup.core.columns import insert_sorted
+from streamgroup.core.columns import first_occurrence, insert_sorted
 from streamgroup.core.pairset import PairSet
 
 
@@ -43,3 +43,13 @@ def test_insert_sorted_equals_np_insert(base: list[int], extra: list[int]) -> No
     got = insert_sorted(a, pos, values)
     assert got.dtype == a.dtype
     assert got.tolist() == np.insert(a, pos, values).tolist()
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.integers(0, 40), max_size=60), st.booleans())
+def test_first_occurrence_marks_what_np_unique_returns(values: list[int], ascending: bool) -> None:
+    """Both paths (strictly increasing input, and any input) against np.unique's index."""
+    x = np.array(sorted(set(values)) if ascending else values, dtype=np.int64)
+    want = np.zeros(len(x), dtype=bool)
+    want[np.unique(x, return_index=True)[1]] = True
+    assert first_occurrence(x).tolist() == want.tolist()

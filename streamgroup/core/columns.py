@@ -60,6 +60,23 @@ def uniq(x: np.ndarray) -> np.ndarray:
     return y[np.r_[True, y[1:] != y[:-1]]]
 
 
+def first_occurrence(x: np.ndarray) -> np.ndarray:
+    """True where a value appears for the first time in ``x`` (what the index returned by
+    ``np.unique(x, return_index=True)`` marks, in fewer calls). A strictly increasing ``x``,
+    the usual batch of qids, is settled by one comparison."""
+    count = len(x)
+    if count < 2 or bool((x[1:] > x[:-1]).all()):
+        return np.ones(count, dtype=bool)
+    order = np.argsort(x, kind="stable")  # stable: the first of a run is the earliest
+    ordered = x[order]
+    run_start = np.empty(count, dtype=bool)
+    run_start[0] = True
+    np.not_equal(ordered[1:], ordered[:-1], out=run_start[1:])
+    out = np.empty(count, dtype=bool)
+    out[order] = run_start
+    return out
+
+
 def insert_sorted(a: np.ndarray, pos: np.ndarray, values: np.ndarray) -> np.ndarray:
     """``np.insert(a, pos, values)`` for non-decreasing ``pos`` (values go in the order
     given): the same array, without np.insert's argsort of the positions and its checks."""

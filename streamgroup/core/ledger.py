@@ -66,17 +66,19 @@ class Ledger:
     def append_answers(self, a: np.ndarray, b: np.ndarray, src: np.ndarray,
                        same: np.ndarray) -> np.ndarray:
         """Store answers; set their directions from the current placements."""
-        idx = self.answers.grow(len(a))
         ans = self.answers
-        ans["a"][idx] = a
-        ans["b"][idx] = b
-        ans["src"][idx] = src
-        ans["same"][idx] = np.where(same, 1, -1)
+        start = ans.n
+        idx = ans.grow(len(a))
+        rows = slice(start, start + len(a))  # new rows are contiguous: slices, not gathers
+        ans["a"][rows] = a
+        ans["b"][rows] = b
+        ans["src"][rows] = src
+        ans["same"][rows] = np.where(same, 1, -1)
         side = self.items["side"]
         placed_a = side[a] != UNPLACED
         placed_b = side[b] != UNPLACED
         direction = np.where(placed_b, 1, 0) | np.where(placed_a, 2, 0)
-        ans["direction"][idx] = direction
+        ans["direction"][rows] = direction
         waiting = idx[direction == 0]
         if len(waiting):
             self.pending = np.concatenate([self.pending, waiting])
