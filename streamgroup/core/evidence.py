@@ -24,10 +24,25 @@ def answer_weights(
     ``s`` is how far the step could move if the source's bias were one standard error
     off; decisions integrate over it so that a young estimate is used cautiously.
     """
-    shrink = 1.0 - 2.0 * np.clip(partner_eps, 0.0, 0.5)
-    d = np.clip(delta * shrink, -_CLIP, _CLIP)
-    w = np.log1p(d) - np.log1p(-d)
-    s = np.abs(shrink * 2.0 / (1.0 - d * d)) * se
+    # The same operations in the same order as
+    #     shrink = 1 - 2 clip(eps, 0, 0.5);  d = clip(delta shrink, -C, C)
+    #     w = log1p(d) - log1p(-d);  s = |shrink 2 / (1 - d d)| se
+    # written into a few buffers: a recount runs this over every answer, and fresh
+    # temporaries of that size cost more than the arithmetic.
+    shrink = np.clip(partner_eps, 0.0, 0.5)
+    shrink *= 2.0
+    np.subtract(1.0, shrink, out=shrink)
+    d = np.multiply(delta, shrink)
+    np.clip(d, -_CLIP, _CLIP, out=d)
+    w = np.log1p(d)
+    tmp = np.negative(d)
+    w -= np.log1p(tmp, out=tmp)
+    np.multiply(d, d, out=tmp)
+    np.subtract(1.0, tmp, out=tmp)
+    s = np.multiply(shrink, 2.0, out=shrink)
+    s /= tmp
+    np.abs(s, out=s)
+    s *= se
     return w, s
 
 

@@ -122,8 +122,12 @@ class Ledger:
         else:
             eps = reference_eps(self.items["llr"][partner], self.items["pinned"][partner])
         w, spread = answer_weights(delta[s], se[s], eps)
-        sign = x * (2.0 * side[partner] - 1.0)
-        return target, sign * w, sign * spread
+        sign = 2.0 * side[partner]  # x (2 side - 1), then times w and spread, in place
+        sign -= 1.0
+        sign *= x
+        w *= sign
+        spread *= sign
+        return target, w, spread
 
     def count(self, idx: np.ndarray, delta: np.ndarray, se: np.ndarray) -> np.ndarray:
         """Add the evidence of answers ``idx`` (already given directions); return targets."""
