@@ -411,3 +411,31 @@ def test_an_answer_against_a_placed_partner_rewrites_only_the_item_it_counts_for
         changed = {r.key for r in eng.take_changes()}
         assert p not in changed
         assert u in changed
+
+
+def test_remembered_best_step_equals_the_one_computed_afresh() -> None:
+    """_best_step is remembered until the biases are replaced (new source, refit,
+    restore): at every round it must equal the value computed from scratch."""
+
+    def afresh(eng: Engine) -> float:
+        seen = eng.src_answers > 0
+        if not seen.any():
+            return abs(float(sprt.weight(eng.pooled)))
+        return float(np.max(np.abs(sprt.weight(eng.delta[seen]))))
+
+    crowd = Crowd(400, sources=mixed_sources(6), seed=4)
+    eng = Engine(EngineConfig(alpha=1e-3, max_outstanding=200))
+    eng.add_items((k, None) for k in crowd.keys)
+    now, steps = 0, set()
+    for _ in range(400):
+        if eng.done():
+            break
+        qs = eng.plan(now)
+        assert eng._best_step() == afresh(eng)
+        eng.add_answers(crowd.answer_now(qs), now)
+        assert eng._best_step() == afresh(eng)
+        steps.add(eng._best_step())
+        now += 1000
+    again = Engine.restore(eng.snapshot())
+    assert again._best_step() == afresh(again) == eng._best_step()
+    assert len(steps) > 3  # the biases did move

@@ -6,7 +6,7 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from streamgroup.core.evidence import decision_error
+from streamgroup.core.evidence import _GH_W, _GH_Z, answer_weights, decision_error
 from streamgroup.core.ledger import UNPLACED, Ledger
 
 N_REF, N_TGT, N_SRC = 6, 5, 3
@@ -78,6 +78,45 @@ def test_decision_error_matches_logistic_without_uncertainty() -> None:
     np.testing.assert_allclose(decision_error(llr, np.zeros(3)), 1 / (1 + np.exp(np.abs(llr))))
     far = np.array([-7.0, 3.0])
     assert (decision_error(far, np.full(2, 0.5)) > 1 / (1 + np.exp(np.abs(far)))).all()
+
+
+def _decision_error_on_nodes(llr: np.ndarray, spread: np.ndarray) -> np.ndarray:
+    """The straightforward form: an (n, 3) array of node terms summed over the last axis."""
+    mag = np.abs(llr)[..., None] + spread[..., None] * _GH_Z
+    return (_GH_W / (1.0 + np.exp(np.minimum(mag, 700.0)))).sum(axis=-1)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.tuples(st.floats(-1e6, 1e6), st.floats(0, 1e6)), max_size=70),
+       st.sampled_from([1, 1000, 20_000]))
+def test_decision_error_is_bit_for_bit_the_node_sum(rows: list[tuple[float, float]],
+                                                     repeat: int) -> None:
+    """decision_error adds its three node terms by hand; the result must equal the sum over
+    an (n, 3) array to the last bit, at any length (numpy's loops differ by size)."""
+    base = np.array(rows, dtype=float).reshape(-1, 2)
+    rng = np.random.default_rng(len(rows))
+    extra = np.column_stack([rng.normal(0, 8, repeat), rng.exponential(1.0, repeat)])
+    both = np.concatenate([base, extra])
+    llr, spread = both[:, 0], both[:, 1]
+    got, want = decision_error(llr, spread), _decision_error_on_nodes(llr, spread)
+    assert got.tobytes() == want.tobytes()
+    assert decision_error(llr[0], spread[0]).tobytes() == want[0].tobytes()
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.tuples(st.floats(-1.5, 1.5), st.floats(0, 2), st.floats(-0.2, 0.8)),
+                min_size=1, max_size=60))
+def test_answer_weights_are_bit_for_bit_the_formula(rows: list[tuple[float, float, float]]
+                                                    ) -> None:
+    """answer_weights works in a few buffers; it must give exactly the plain expressions."""
+    delta, se, eps = (np.array(c, dtype=float) for c in zip(*rows, strict=True))
+    shrink = 1.0 - 2.0 * np.clip(eps, 0.0, 0.5)
+    d = np.clip(delta * shrink, -0.999999, 0.999999)
+    want_w = np.log1p(d) - np.log1p(-d)
+    want_s = np.abs(shrink * 2.0 / (1.0 - d * d)) * se
+    w, s = answer_weights(delta, se, eps)
+    assert w.tobytes() == want_w.tobytes() and s.tobytes() == want_s.tobytes()
+    assert delta.tolist() == [r[0] for r in rows] and eps.tolist() == [r[2] for r in rows]
 
 
 def test_recount_equals_the_answer_by_answer_sum() -> None:

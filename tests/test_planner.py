@@ -7,6 +7,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from streamgroup.core import planner
+from streamgroup.core.intake import digits_to_int64
 
 
 def test_mix_is_splitmix64() -> None:
@@ -28,3 +29,28 @@ def test_scalar_and_array_paths_agree(xs: list[int]) -> None:
     for x, want in zip(xs, arr.tolist(), strict=True):
         got = planner.mix(x)
         assert isinstance(got, np.uint64) and int(got) == want
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.integers(0, 30), max_size=80))
+def test_slot_ranks_count_the_earlier_entries_of_each_target(targets: list[int]) -> None:
+    """slot_ranks against the plain count, and against the np.r_ / np.repeat form it
+    replaced in the planner."""
+    t = np.array(targets, dtype=np.int64)
+    got = planner.slot_ranks(t)
+    assert got.tolist() == [targets[:k].count(x) for k, x in enumerate(targets)]
+    if len(t):
+        order = np.argsort(t, kind="stable")
+        first = np.r_[0, np.nonzero(np.diff(t[order]))[0] + 1]
+        old = np.empty(len(t), dtype=np.int64)
+        old[order] = np.arange(len(t)) - np.repeat(first, np.diff(np.r_[first, len(t)]))
+        assert got.tolist() == old.tolist()
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.text("0123456789", min_size=1, max_size=18), min_size=1, max_size=40))
+def test_qid_digits_parse_like_int(texts: list[str]) -> None:
+    """The intake parses checked qids (ASCII digits, fewer than 19) with numpy: the same
+    numbers as int(), leading zeros included."""
+    got = digits_to_int64(texts)
+    assert got.dtype == np.int64 and got.tolist() == [int(t) for t in texts]

@@ -122,7 +122,7 @@ class BlockMixin:
             st[(st != PLACED)] = UNRESOLVED
             self.items["dirty"][: len(self.keys)] = True
             return
-        self._decide(np.arange(len(self.keys)))
+        self._decide(np.arange(len(self.keys)), ordered=True)
 
     def _admit(self, members: np.ndarray, pinned: np.ndarray, factor: float = ANCHOR_FACTOR
                ) -> np.ndarray:

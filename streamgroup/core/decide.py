@@ -25,11 +25,15 @@ class DecideMixin:
         share /= max(share.sum(), 1.0)
         self.shared = float((share * share).sum())
 
-    def _decide(self, touched: np.ndarray) -> None:
-        """Commit, revise or give up on the touched items, following every consequence."""
+    def _decide(self, touched: np.ndarray, ordered: bool = False) -> None:
+        """Commit, revise or give up on the touched items, following every consequence.
+
+        ``ordered``: ``touched`` is already sorted and distinct (every item, after a refit),
+        so the sort is skipped (np.sort takes ~5 ms over 100,000 items, sorted or not).
+        """
         led = self.ledger.items
         alpha = self.config.alpha
-        todo = uniq(touched)
+        todo = np.asarray(touched, dtype=np.int64) if ordered else uniq(touched)
         for _ in range(64):
             if len(todo) == 0:
                 return

@@ -49,7 +49,7 @@ from .codes import (
     WAITING,
     WHY_NAMES,
 )
-from .columns import Columns, SortedQueue
+from .columns import ONE_I32, Columns, SortedQueue, first_occurrence
 from .decide import DecideMixin
 from .intake import IntakeMixin
 from .keyindex import KeyIndex, cache_size_for
@@ -307,6 +307,11 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
 
     def _source_ids(self, names: Sequence[str]) -> np.ndarray:
         index = self.source_index
+        try:  # the usual batch: every source known, one pass
+            return np.fromiter(map(index.__getitem__, names), dtype=np.int64,
+                               count=len(names))
+        except KeyError:
+            pass
         for name in dict.fromkeys(names):  # new sources, in order of first appearance
             if name not in index:
                 index[name] = len(self.source_names)
@@ -342,9 +347,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         # by its first answer even when that (pair, source) was heard before.
         with_q, qn = got.with_q, got.qn
         if len(with_q):
-            first = np.zeros(len(qn), dtype=bool)
-            first[np.unique(qn, return_index=True)[1]] = True
-            again = (self.q["state"][qn] == Q_ANSWERED) | ~first
+            again = (self.q["state"][qn] == Q_ANSWERED) | ~first_occurrence(qn)
             fresh[with_q[again]] = False
             self._close_questions(qn[~again], Q_ANSWERED)
         out = fresh
@@ -366,7 +369,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         if self.phase == "run":
             if self._counted() >= max(REFIT_MIN, self.counted_at_fit * (1 + REFIT_GROWTH)):
                 self._refit()
-                self._decide(np.arange(len(self.keys)))
+                self._decide(np.arange(len(self.keys)), ordered=True)
             else:
                 self._decide(targets)
         return out
@@ -388,7 +391,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         self.outstanding -= len(opened)
         why = q["why"][opened]
         place = opened[why == PLACE]  # only placement questions hold an item's slot
-        np.subtract.at(self.items["inflight"], q["target"][place], 1)
+        np.subtract.at(self.items["inflight"], q["target"][place], ONE_I32)
         self._nudge(q["target"][place].astype(np.int64))
         if state == Q_EXPIRED:
             seed = opened[why == SEED]  # a block pair not answered in time is asked again

@@ -24,10 +24,25 @@ def answer_weights(
     ``s`` is how far the step could move if the source's bias were one standard error
     off; decisions integrate over it so that a young estimate is used cautiously.
     """
-    shrink = 1.0 - 2.0 * np.clip(partner_eps, 0.0, 0.5)
-    d = np.clip(delta * shrink, -_CLIP, _CLIP)
-    w = np.log1p(d) - np.log1p(-d)
-    s = np.abs(shrink * 2.0 / (1.0 - d * d)) * se
+    # The same operations in the same order as
+    #     shrink = 1 - 2 clip(eps, 0, 0.5);  d = clip(delta shrink, -C, C)
+    #     w = log1p(d) - log1p(-d);  s = |shrink 2 / (1 - d d)| se
+    # written into a few buffers: a recount runs this over every answer, and fresh
+    # temporaries of that size cost more than the arithmetic.
+    shrink = np.clip(partner_eps, 0.0, 0.5)
+    shrink *= 2.0
+    np.subtract(1.0, shrink, out=shrink)
+    d = np.multiply(delta, shrink)
+    np.clip(d, -_CLIP, _CLIP, out=d)
+    w = np.log1p(d)
+    tmp = np.negative(d)
+    w -= np.log1p(tmp, out=tmp)
+    np.multiply(d, d, out=tmp)
+    np.subtract(1.0, tmp, out=tmp)
+    s = np.multiply(shrink, 2.0, out=shrink)
+    s /= tmp
+    np.abs(s, out=s)
+    s *= se
     return w, s
 
 
@@ -37,8 +52,14 @@ def decision_error(llr: np.ndarray, spread: np.ndarray) -> np.ndarray:
     With exact weights this is 1 / (1 + e^|llr|); the average over L ~ N(|llr|, spread^2)
     is never smaller (the function is convex there), so uncertainty delays commits.
     """
-    mag = np.abs(np.asarray(llr, dtype=float))[..., None] + np.asarray(spread)[..., None] * _GH_Z
-    return (_GH_W / (1.0 + np.exp(np.minimum(mag, 700.0)))).sum(axis=-1)
+    mag = np.abs(np.asarray(llr, dtype=float))
+    spread = np.asarray(spread)
+    # one term per node, added in the order a sum over an (n, 3) array adds them (bit for
+    # bit the same; tests/test_ledger.py compares), without the (n, 3) temporaries and the
+    # slow reduction over a short last axis (~9 ms against ~2 ms over 100,000 items)
+    t0, t1, t2 = (w / (1.0 + np.exp(np.minimum(mag + spread * z, 700.0)))
+                  for w, z in zip(_GH_W, _GH_Z, strict=True))
+    return (t0 + t1) + t2
 
 
 def reference_eps(llr: np.ndarray, pinned: np.ndarray) -> np.ndarray:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -11,6 +12,12 @@ from ..errors import EngineInputError
 from . import validate
 from .pairset import MAX_SOURCES
 from .types import Answer, AnswerColumns
+
+
+def digits_to_int64(texts: Sequence[str]) -> np.ndarray:
+    """The numbers written by non-empty ASCII digit strings of at most 18 digits (numpy
+    parses them itself: about two thirds of the time of ``int`` per string)."""
+    return np.array(texts, dtype=np.int64)
 
 
 @dataclass(slots=True)
@@ -104,14 +111,18 @@ class IntakeMixin:
                         err = f"too many sources (limit {MAX_SOURCES})"
                     if err:
                         bad.setdefault(pos, err)
-        with_q = (list(range(count)) if None not in qids
-                  else [pos for pos, q in enumerate(qids) if q is not None])
+        with_q: Sequence[int]
+        if None not in qids:
+            with_q, wq = range(count), np.arange(count)
+        else:
+            with_q = [pos for pos, q in enumerate(qids) if q is not None]
+            wq = np.asarray(with_q, dtype=np.int64)
         qn = np.full(len(with_q), -1, dtype=np.int64)
         if with_q:
             texts = qids if len(with_q) == count else [qids[pos] for pos in with_q]
             if (set(map(type, texts)) == {str} and all(map(str.isdigit, texts))
                     and all(map(str.isascii, texts)) and max(map(len, texts)) < 19):
-                qn = np.fromiter(map(int, texts), dtype=np.int64, count=len(texts))
+                qn = digits_to_int64(texts)
             else:
                 for k, q in enumerate(texts):
                     err = validate.qid(q)
@@ -120,7 +131,6 @@ class IntakeMixin:
                     elif q.isascii() and len(q) < 19:
                         qn[k] = int(q)
         if with_q:
-            wq = np.asarray(with_q, dtype=np.int64)
             known = qn >= 0
             issued = known & (qn < self.q.n)
             for k in np.nonzero(~issued)[0].tolist():
@@ -137,8 +147,7 @@ class IntakeMixin:
             pos = min(bad)
             raise EngineInputError(f"answer {pos}: {bad[pos]}")
         same = np.array(flags, dtype=bool) if count else np.zeros(0, dtype=bool)
-        return Intake(a_keys, b_keys, ia, ib, names, same, np.asarray(with_q, dtype=np.int64),
-                       qn)
+        return Intake(a_keys, b_keys, ia, ib, names, same, wq, qn)
 
     @staticmethod
     def _slot_for(side: str, labels: list[str | None]) -> int | None:

@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 
-from .columns import Columns
+from .columns import ONE_I32, Columns
 from .evidence import answer_weights, reference_eps
 
 UNPLACED = -1
@@ -66,17 +66,19 @@ class Ledger:
     def append_answers(self, a: np.ndarray, b: np.ndarray, src: np.ndarray,
                        same: np.ndarray) -> np.ndarray:
         """Store answers; set their directions from the current placements."""
-        idx = self.answers.grow(len(a))
         ans = self.answers
-        ans["a"][idx] = a
-        ans["b"][idx] = b
-        ans["src"][idx] = src
-        ans["same"][idx] = np.where(same, 1, -1)
+        start = ans.n
+        idx = ans.grow(len(a))
+        rows = slice(start, start + len(a))  # new rows are contiguous: slices, not gathers
+        ans["a"][rows] = a
+        ans["b"][rows] = b
+        ans["src"][rows] = src
+        ans["same"][rows] = np.where(same, 1, -1)
         side = self.items["side"]
         placed_a = side[a] != UNPLACED
         placed_b = side[b] != UNPLACED
         direction = np.where(placed_b, 1, 0) | np.where(placed_a, 2, 0)
-        ans["direction"][idx] = direction
+        ans["direction"][rows] = direction
         waiting = idx[direction == 0]
         if len(waiting):
             self.pending = np.concatenate([self.pending, waiting])
@@ -120,8 +122,12 @@ class Ledger:
         else:
             eps = reference_eps(self.items["llr"][partner], self.items["pinned"][partner])
         w, spread = answer_weights(delta[s], se[s], eps)
-        sign = x * (2.0 * side[partner] - 1.0)
-        return target, sign * w, sign * spread
+        sign = 2.0 * side[partner]  # x (2 side - 1), then times w and spread, in place
+        sign -= 1.0
+        sign *= x
+        w *= sign
+        spread *= sign
+        return target, w, spread
 
     def count(self, idx: np.ndarray, delta: np.ndarray, se: np.ndarray) -> np.ndarray:
         """Add the evidence of answers ``idx`` (already given directions); return targets."""
@@ -131,7 +137,7 @@ class Ledger:
         np.add.at(self.items["llr"], target, step)
         np.add.at(self.items["s1"], target, spread)
         np.add.at(self.items["s2"], target, spread * spread)
-        np.add.at(self.items["count"], target, 1)
+        np.add.at(self.items["count"], target, ONE_I32)
         return target
 
     def recompute(self, delta: np.ndarray, se: np.ndarray, settle: bool = False) -> None:

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from .columns import insert_sorted
+
 ITEM_BITS = 24  # up to 16,777,216 items per engine
 SOURCE_BITS = 16  # up to 65,536 sources
 MAX_ITEMS = 1 << ITEM_BITS
@@ -41,16 +43,29 @@ class PairSet:
         return self._member(self.sorted, keys) | self._member(self.recent, keys)
 
     def add_new(self, keys: np.ndarray) -> np.ndarray:
-        """Add keys in order; return a mask of those that were new (first of their kind)."""
+        """Add keys in order; return a mask of those that were new (first of their kind).
+
+        The keys are sorted once (stably, so the first of a run of equal keys is the
+        earliest): that one order finds the repeats within the batch, speeds the searches
+        (sorted needles), and gives the fresh keys sorted and their places in the recent run.
+        """
         keys = np.asarray(keys, dtype=np.uint64)
-        new = ~self.contains(keys)
-        cand = np.nonzero(new)[0]
-        if len(cand):
-            _, first = np.unique(keys[cand], return_index=True)
-            new[:] = False
-            new[cand[first]] = True
-            fresh = np.sort(keys[new])
-            self.recent = np.insert(self.recent, np.searchsorted(self.recent, fresh), fresh)
+        count = len(keys)
+        if count == 0:
+            return np.zeros(0, dtype=bool)
+        order = np.argsort(keys, kind="stable")
+        ordered = keys[order]
+        fresh_mask = np.empty(count, dtype=bool)
+        fresh_mask[0] = True
+        np.not_equal(ordered[1:], ordered[:-1], out=fresh_mask[1:])
+        fresh_mask &= ~self._member(self.sorted, ordered)
+        at = np.searchsorted(self.recent, ordered)
+        if len(self.recent):
+            fresh_mask &= self.recent[np.minimum(at, len(self.recent) - 1)] != ordered
+        new = np.empty(count, dtype=bool)
+        new[order] = fresh_mask
+        if fresh_mask.any():
+            self.recent = insert_sorted(self.recent, at[fresh_mask], ordered[fresh_mask])
             # each batch copies the recent run once, and each merge copies everything: a
             # recent run of about sqrt(2000 n) keeps the sum of both small (measured: a
             # third less time per batch of 500 at 1.5M members than a run of n / 4)

@@ -62,6 +62,26 @@ def slots(
     return np.maximum(room, 0)
 
 
+def slot_ranks(targets: np.ndarray) -> np.ndarray:
+    """For each entry, how many earlier entries name the same target (0, 1, 2, ...).
+
+    Its place in the stable order of the targets minus the place where its target's run
+    starts there (no np.r_ / np.repeat: a few calls fewer per round).
+    """
+    count = len(targets)
+    out = np.empty(count, dtype=np.int64)
+    if count == 0:
+        return out
+    order = np.argsort(targets, kind="stable")
+    ordered = targets[order]
+    run_start = np.empty(count, dtype=bool)
+    run_start[0] = True
+    np.not_equal(ordered[1:], ordered[:-1], out=run_start[1:])
+    rank = np.arange(count)
+    out[order] = rank - np.maximum.accumulate(np.where(run_start, rank, 0))
+    return out
+
+
 def check_count(placed_questions: int, rate: float, salt: int) -> int:
     """How many check questions to add beside ``placed_questions`` (deterministic rounding)."""
     if rate <= 0 or placed_questions <= 0:

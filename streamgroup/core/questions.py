@@ -6,6 +6,7 @@ import numpy as np
 
 from . import planner
 from .codes import ASKING, CHECK, PLACE, Q_EXPIRED, Q_OPEN, UNRESOLVED, WAITING, WHY_NAMES
+from .columns import ONE_I32
 from .ledger import UNPLACED
 from .sprt import weight
 from .types import Question, QuestionColumns
@@ -13,6 +14,8 @@ from .types import Question, QuestionColumns
 
 class QuestionsMixin:
     """Planning of questions (part of :class:`~streamgroup.core.engine.Engine`)."""
+
+    _best_step_memo: tuple[np.ndarray, np.ndarray, float, float] | None = None
 
     def plan(self, now_ms: int) -> list[Question]:
         """The questions to send now, within every cap."""
@@ -40,10 +43,23 @@ class QuestionsMixin:
         return out
 
     def _best_step(self) -> float:
+        """The largest step one answer can make, from the fitted biases.
+
+        Asked twice per batch, it changes only when the biases do, which are replaced
+        (refit, new source, restore), never written in place: remembered against the
+        arrays themselves (held, so their ids cannot be reused) and the pooled value.
+        """
+        memo = self._best_step_memo
+        if (memo is not None and memo[0] is self.delta and memo[1] is self.src_answers
+                and memo[2] == self.pooled):
+            return memo[3]
         seen = self.src_answers > 0
         if not seen.any():
-            return abs(float(weight(self.pooled)))
-        return float(np.max(np.abs(weight(self.delta[seen]))))
+            step = abs(float(weight(self.pooled)))
+        else:
+            step = float(np.max(np.abs(weight(self.delta[seen]))))
+        self._best_step_memo = (self.delta, self.src_answers, self.pooled, step)
+        return step
 
     def _plan_place(self, now_ms: int, room: int) -> QuestionColumns:
         """Placement questions for items that were nudged, carried over, or never asked.
@@ -81,12 +97,7 @@ class QuestionsMixin:
         if len(targets) == 0:
             return QuestionColumns.empty()
         # distinct partners for the slots one item gets in one round
-        order = np.argsort(targets, kind="stable")
-        sorted_t = targets[order]
-        first = np.r_[0, np.nonzero(np.diff(sorted_t))[0] + 1]
-        offset = np.empty(len(targets), dtype=np.int64)
-        offset[order] = np.arange(len(targets)) - np.repeat(first, np.diff(np.r_[first,
-                                                                              len(targets)]))
+        offset = planner.slot_ranks(targets)
         k = self.items["asked"][targets].astype(np.uint64) + offset.astype(np.uint64)
         partners = self._partners(targets, k)
         out = self._issue(targets, partners, PLACE, now_ms)
@@ -162,28 +173,32 @@ class QuestionsMixin:
         count = len(targets)
         if count == 0:
             return QuestionColumns.empty()
-        qids = self.q.grow(count)
         q = self.q
-        q["target"][qids] = targets
-        q["partner"][qids] = partners
-        q["ts"][qids] = now_ms
-        q["state"][qids] = Q_OPEN
-        q["why"][qids] = why
+        start = q.n
+        qids = q.grow(count)
+        rows = slice(start, start + count)  # new rows are contiguous: slices, not gathers
+        q["target"][rows] = targets
+        q["partner"][rows] = partners
+        q["ts"][rows] = now_ms
+        q["state"][rows] = Q_OPEN
+        q["why"][rows] = why
         self.outstanding += count
         self.issued[why] += count
         it = self.items
         if why == PLACE:
-            np.add.at(it["inflight"], targets, 1)
-            np.add.at(it["asked"], targets, 1)
-        for side in (targets, partners) if why != CHECK else ():
-            fresh = side[it["first_ms"][side] < 0]
-            it["first_ms"][fresh] = now_ms
+            np.add.at(it["inflight"], targets, ONE_I32)
+            np.add.at(it["asked"], targets, ONE_I32)
+        if why != CHECK:
+            pairs = np.concatenate([targets, partners])
+            first_ms = it["first_ms"]
+            first_ms[pairs[first_ms[pairs] < 0]] = now_ms
         self._touch(np.asarray(targets, dtype=np.int64))
         swap = planner.uniform(qids.astype(np.uint64), 3 + self._salt) < 0.5
         first = np.where(swap, partners, targets)
         second = np.where(swap, targets, partners)
-        return QuestionColumns(list(map(str, qids.tolist())), self.keys.keys_of(first),
-                               self.keys.keys_of(second), [WHY_NAMES[why]] * count,
+        keys = self.keys.keys_of(np.concatenate([first, second]))  # one gather for both
+        return QuestionColumns(list(map(str, range(start, start + count))),
+                               keys[:count], keys[count:], [WHY_NAMES[why]] * count,
                                [now_ms] * count)
 
     def _expire(self, now_ms: int) -> None:

@@ -1,0 +1,55 @@
+"""The pair set, the sorted insert it shares with the carry queue, and first_occurrence,
+against the plain computations they replace."""
+
+from __future__ import annotations
+
+import numpy as np
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from streamgroup.core.columns import first_occurrence, insert_sorted
+from streamgroup.core.pairset import PairSet
+
+
+@settings(max_examples=150, deadline=None)
+@given(st.lists(st.lists(st.integers(0, 60), max_size=40), max_size=12), st.integers(0, 3))
+def test_add_new_marks_the_first_of_each_unseen_key(batches: list[list[int]],
+                                                     merge_every: int) -> None:
+    """Each key is new once, at its first appearance across all batches; merges in
+    between (the settled run) change nothing."""
+    pairs = PairSet()
+    seen: set[int] = set()
+    for k, batch in enumerate(batches):
+        want = []
+        for key in batch:
+            want.append(key not in seen)
+            seen.add(key)
+        got = pairs.add_new(np.array(batch, dtype=np.uint64))
+        assert got.dtype == bool and got.tolist() == want
+        if merge_every and k % merge_every == 0:
+            pairs.merge()
+        members = np.concatenate([pairs.sorted, pairs.recent])
+        assert sorted(members.tolist()) == sorted(seen) and len(pairs) == len(seen)
+        assert pairs.recent.tolist() == sorted(pairs.recent.tolist())
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.integers(0, 10**6), max_size=50, unique=True),
+       st.lists(st.integers(0, 10**6), max_size=50))
+def test_insert_sorted_equals_np_insert(base: list[int], extra: list[int]) -> None:
+    a = np.array(sorted(base), dtype=np.int64)
+    values = np.array(sorted(extra), dtype=np.int64)
+    pos = np.searchsorted(a, values)
+    got = insert_sorted(a, pos, values)
+    assert got.dtype == a.dtype
+    assert got.tolist() == np.insert(a, pos, values).tolist()
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.integers(0, 40), max_size=60), st.booleans())
+def test_first_occurrence_marks_what_np_unique_returns(values: list[int], ascending: bool) -> None:
+    """Both paths (strictly increasing input, and any input) against np.unique's index."""
+    x = np.array(sorted(set(values)) if ascending else values, dtype=np.int64)
+    want = np.zeros(len(x), dtype=bool)
+    want[np.unique(x, return_index=True)[1]] = True
+    assert first_occurrence(x).tolist() == want.tolist()
