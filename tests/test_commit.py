@@ -100,6 +100,7 @@ def test_prepacked_questions_write_what_the_field_by_field_script_writes(
             ("kiln-0002", "", "unresolved", repr(-0.5), 30, 2)]),
     ("t%c", [("kiln-%d", "nörth", "placed", repr(1e-300), 7, 1)]),  # '%' and non-ASCII
     ("tc", [(f"shard-{i}", "south", "revised", repr(i / 7), i, i % 3) for i in range(300)]),
+    ("tc", [("ü" * 200, "north", "placed", repr(0.5), 1, 0)]),  # beyond the length tables
 ])
 def test_decisions_as_plain_xadds_write_what_the_script_writes(
         redis_url: str, parser: type, ns: str, rows: list[tuple]) -> None:

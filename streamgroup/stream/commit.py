@@ -242,6 +242,9 @@ class Prepacked:
     count: int
 
 
+assert QUESTION_FIELDS == ("qid", "a", "b", "why", "ts"), "_question_entries spells these out"
+
+
 def _question_entries(key: str, cap: int, qc: QuestionColumns) -> list[Command | Prepacked]:
     """One plain ``XADD`` per question (fields ``QUESTION_FIELDS``), then one approximate
     trim of the stream to ``cap`` (0 = none).
@@ -249,15 +252,14 @@ def _question_entries(key: str, cap: int, qc: QuestionColumns) -> list[Command |
     Plain commands rather than a script: Redis parses them as they are queued, before EXEC,
     and EXEC then only runs them, about a third less time inside the transaction than a
     script calling XADD (measured: 1.5 against 2.2-2.5 us per question on this machine), and
-    the transaction is what a lookup waits behind. They are formatted as RESP for the whole
-    batch by one join over the columns: seven pieces a question, of which the three that
-    depend on a length come from tables (:func:`_question_heads`) and the (why, ts) part is
-    formatted once per distinct pair. About 0.4 against 0.9 us per question for a ``%``
-    per question.
+    the transaction is what a lookup waits behind. This is :func:`xadd_entries` specialised:
+    a batch's questions share a few (why, ts) pairs, whose part of each row is formatted
+    once per pair (about 0.4 against 0.9 us per question for a ``%`` per question).
     """
-    heads = _question_heads(key)
-    tails = {(why, ts): f"$3\r\nwhy\r\n{_bulk(why)}$2\r\nts\r\n${len(str(ts))}\r\n{ts}"
-             for why, ts in set(zip(qc.why, qc.ts_ms, strict=True))}
+    leads = _field_leads(key, QUESTION_FIELDS)
+    why_lead, ts_lead = leads[3][0], leads[4][0]
+    tails = {(w, t): f"{why_lead}{_utf8_len(w)}\r\n{w}\r\n{ts_lead}{len(str(t))}\r\n{t}"
+             for w, t in set(zip(qc.why, qc.ts_ms, strict=True))}
     pieces: list[Any] = [None] * (7 * len(qc))
     pieces[1::7] = qc.qid
     pieces[3::7] = qc.a
@@ -265,29 +267,11 @@ def _question_entries(key: str, cap: int, qc: QuestionColumns) -> list[Command |
     pieces[6::7] = map(tails.__getitem__, zip(qc.why, qc.ts_ms, strict=True))
 
     def formatted(size: Callable[[str], int]) -> str:
-        for at, col, (lead, table) in zip((0, 2, 4), (qc.qid, qc.a, qc.b), heads, strict=True):
-            try:
-                pieces[at::7] = map(table.__getitem__, map(size, col))
-            except IndexError:  # a value longer than the table (not from the engine's checks)
-                pieces[at::7] = [f"{lead}{size(v)}" for v in col]
+        for at, col, lead in zip((0, 2, 4), (qc.qid, qc.a, qc.b), leads, strict=False):
+            pieces[at::7] = _length_heads(lead, col, size)
         return "\r\n".join(pieces) + "\r\n"
 
     return _prepacked(key, cap, len(qc), formatted)
-
-
-assert QUESTION_FIELDS == ("qid", "a", "b", "why", "ts"), "_question_entries spells these out"
-
-
-@functools.lru_cache(maxsize=16)
-def _question_heads(key: str) -> tuple[tuple[str, list[str]], ...]:
-    """For a question's XADD to ``key``: the RESP before its qid's bytes (the command, the
-    key, ``*``, ``qid`` and the ``$`` of the qid's length), before ``a``'s and before
-    ``b``'s, each with a table of it followed by every length up to 256 (keys and ids are
-    at most 256 bytes)."""
-    top = max(MAX_KEY_BYTES, MAX_ID_BYTES) + 1
-    start = f"*13\r\n$4\r\nXADD\r\n{_bulk(key)}$1\r\n*\r\n$3\r\nqid\r\n$"
-    return tuple((lead, [f"{lead}{n}" for n in range(top)])
-                 for lead in (start, "$1\r\na\r\n$", "$1\r\nb\r\n$"))
 
 
 def xadd_entries(key: str, cap: int, names: Sequence[str],
@@ -300,22 +284,47 @@ def xadd_entries(key: str, cap: int, names: Sequence[str],
     before EXEC, and EXEC then only runs them. Measured on this machine with the slowlog at
     threshold 0: 1.3 against 3.9 us of server time per six-field entry, inside the
     transaction that a lookup waits behind. The whole batch is formatted as RESP by one
-    ``%`` over a template repeated once per row.
+    join: each value, and before it the RESP up to its length, from a table by length
+    (:func:`_field_leads`).
     """
     width = len(names)
     rows = len(values) // width
     assert rows * width == len(values), "values must fill whole rows"
-    fixed = f"*{3 + 2 * width}\r\n$4\r\nXADD\r\n{_bulk(key)}$1\r\n*\r\n".replace("%", "%%")
-    row = fixed + "".join(_bulk(n).replace("%", "%%") + "$%d\r\n%s\r\n" for n in names)
+    leads = _field_leads(key, tuple(names))
     texts = list(map(str, values))
-    args: list[Any] = [None] * (2 * len(texts))
-    args[1::2] = texts
+    pieces: list[Any] = [None] * (2 * len(texts))
+    pieces[1::2] = texts
 
     def formatted(size: Callable[[str], int]) -> str:
-        args[0::2] = list(map(size, texts))
-        return row * rows % tuple(args)
+        for j, lead in enumerate(leads):
+            pieces[2 * j::2 * width] = _length_heads(lead, texts[j::width], size)
+        return "\r\n".join(pieces) + "\r\n"
 
     return _prepacked(key, cap, rows, formatted)
+
+
+_LEAD_TABLE = max(MAX_KEY_BYTES, MAX_ID_BYTES) + 1  # lengths up to the longest key or id
+
+
+@functools.lru_cache(maxsize=64)
+def _field_leads(key: str, names: tuple[str, ...]) -> tuple[tuple[str, list[str]], ...]:
+    """For an XADD to ``key`` with fields ``names``: per field, its lead - the RESP between
+    the previous value's CRLF and this value's length (the command, the key and ``*``
+    before the first field, then the field's name, then ``$``) - and a table of the lead
+    followed by each length below ``_LEAD_TABLE``."""
+    start = f"*{3 + 2 * len(names)}\r\n$4\r\nXADD\r\n{_bulk(key)}$1\r\n*\r\n"
+    leads = [f"{start if j == 0 else ''}{_bulk(name)}$" for j, name in enumerate(names)]
+    return tuple((lead, [f"{lead}{n}" for n in range(_LEAD_TABLE)]) for lead in leads)
+
+
+def _length_heads(lead: tuple[str, list[str]], col: Sequence[str],
+                  size: Callable[[str], int]) -> list[str]:
+    """The lead of each value of ``col`` with its length, from the table when it can."""
+    whole, table = lead
+    try:
+        return list(map(table.__getitem__, map(size, col)))
+    except IndexError:  # a value longer than the table (not from the engine's checks)
+        return [f"{whole}{size(v)}" for v in col]
 
 
 def _prepacked(key: str, cap: int, count: int,
