@@ -385,6 +385,10 @@ class CommitPlan:
     def __len__(self) -> int:
         return len(self.commands)
 
+    def replies(self) -> int:
+        """How many commands Redis will queue (one reply of EXEC each)."""
+        return sum(c.count if isinstance(c, Prepacked) else 1 for c in self.commands)
+
     def names(self) -> list[str]:
         """The name of every command Redis will queue, in order (one per reply of EXEC)."""
         out: list[str] = []
@@ -539,19 +543,26 @@ def receive(client: redis.Redis, plan: CommitPlan) -> list[Any]:
     """
     conn = client.connection
     assert conn is not None
-    names = plan.names()
-    got = _replies(conn, len(names) + 2)  # MULTI's OK, one QUEUED each, then EXEC's
-    queued = [str(x) for x in got[:-1] if isinstance(x, Exception)]
+    got = _replies(conn, plan.replies() + 2)  # MULTI's OK, one QUEUED each, then EXEC's
     result = got[-1]
+    queued = [str(x) for x in got[:-1] if isinstance(x, Exception)] if _any_error(
+        got[:-1]) else []
     if isinstance(result, Exception):
         raise CommitError(f"the batch transaction was refused: {result}; "
                           f"queueing errors: {queued}")
     if result is None:
         raise CommitError("the batch transaction was aborted")
-    bad = [f"{names[i]}: {x}" for i, x in enumerate(result) if isinstance(x, Exception)]
-    if bad or queued:
+    if queued or _any_error(result):
+        names = plan.names()
+        bad = [f"{names[i]}: {x}" for i, x in enumerate(result) if isinstance(x, Exception)]
         raise CommitError(f"commands of the batch transaction failed: {bad or queued}")
     return list(result)
+
+
+def _any_error(replies: Sequence[Any]) -> bool:
+    """Whether any reply is an error (checked by the few types present, not reply by reply:
+    a batch's transaction has hundreds of replies)."""
+    return any(issubclass(t, Exception) for t in set(map(type, replies)))
 
 
 def execute(client: redis.Redis, plan: CommitPlan) -> list[Any]:
