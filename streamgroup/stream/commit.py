@@ -92,13 +92,18 @@ def _prefix(side: str | None, status: str) -> bytes:
             + _packb("llr") + b"\xcb")
 
 
+@functools.lru_cache(maxsize=16)
+def _prefixes(labels: tuple[str, ...], status_names: tuple[str, ...]) -> list[bytes]:
+    """``_prefix`` of every (side slot -1, 0, 1; status) pair, in the order of ``code``."""
+    return [_prefix(side, status) for side in (None, *labels) for status in status_names]
+
+
 def assign_values(rc: RecordColumns) -> list[bytes]:
     """``assign_value`` of every record of the columns, in order, without a loop per field."""
     n = len(rc)
     if n == 0:
         return []
-    names = (None, *rc.labels)  # slot -1, 0, 1
-    prefixes = [_prefix(side, status) for side in names for status in rc.status_names]
+    prefixes = _prefixes(tuple(rc.labels), tuple(rc.status_names))
     code = (rc.side.astype(np.int64) + 1) * len(rc.status_names) + rc.status
     # (constant bytes, then the column's values in this dtype), in map order
     parts: list[tuple[bytes, np.ndarray, str]] = [(b"", rc.llr, ">f8")]
