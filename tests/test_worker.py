@@ -441,3 +441,16 @@ def test_replay_keeps_the_later_of_two_journal_entries_for_one_batch(redis_url: 
     assert "stale-item" not in w2.state.engine.keys
     assert (w2.state.engine.stats(), w2.state.seq, dict(w2.state.counters)) == want
     w2.close()
+
+
+def test_answers_total_counts_packs_and_plain_entries() -> None:
+    """The backlog cap counts a pack's answers; the shortcut for batches without packs
+    gives what counting entry by entry gives."""
+    from streamgroup.stream.worker import _answers_in, answers_total
+
+    plain = [[b"1-0", [b"a", b"x", b"b", b"y", b"same", b"1", b"source", b"s", b"qid", b"4"]]]
+    packed = [[b"2-0", [b"pack", pack_answers([Answer("p", "q", True, "s", None)] * 3)]]]
+    gone = [[b"3-0", None]]
+    for batch in (plain * 5, plain + packed, packed, plain + gone, gone, []):
+        assert answers_total(batch) == sum(map(_answers_in, batch))
+    assert answers_total(plain * 5 + packed) == 8

@@ -24,9 +24,10 @@ from __future__ import annotations
 
 import contextlib
 import gc
+import operator
 import random
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -81,6 +82,20 @@ def _answers_in(entry: Any) -> int:
     if head == 0xDD and len(pack) >= 5:
         return int.from_bytes(pack[1:5], "big")
     return 1  # not an array: the codec will reject it
+
+
+def answers_total(entries: Sequence[Any]) -> int:
+    """Answers in raw entries (``_answers_in`` summed). A batch with no two-field entry
+    holds no pack: then it is one answer per entry, found without a call per entry."""
+    try:
+        if 2 not in set(map(len, map(_FIELDS, entries))):
+            return len(entries)
+    except TypeError:  # a pending entry whose content was deleted (fields None)
+        pass
+    return sum(map(_answers_in, entries))
+
+
+_FIELDS = operator.itemgetter(1)
 
 
 def read_command(consumer: str, streams: tuple[str, ...], ids: str, count: int,
@@ -426,7 +441,7 @@ class Worker:
                     items = entries
                 else:
                     answers = entries
-            if answers and sum(map(_answers_in, answers)) > self._max_answers:
+            if answers and answers_total(answers) > self._max_answers:
                 self._backlog = answers
                 answers = self._take_backlog()
         n = len(items) + len(answers)
