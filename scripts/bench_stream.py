@@ -47,9 +47,10 @@ lookup latency of this machine with no worker running.
 
 ``BENCH_PYSPY=PATH`` records a py-spy profile (raw format) of the worker over the drain
 cycles, to ``PATH`` and ``PATH-packed`` (py-spy is a tool to install by hand, not a
-dependency). ``BENCH_LOOKUP_NICE=N`` runs the lookup process at nice ``N`` (negative:
-ahead of the worker), to tell time spent waiting for a core from time spent waiting for
-Redis.
+dependency); with ``BENCH_PYSPY_IDLE=1`` the samples include the time it waits (py-spy
+``--idle``), to see where it waits for Redis. ``BENCH_LOOKUP_NICE=N`` runs the lookup
+process at nice ``N`` (negative: ahead of the worker), to tell time spent waiting for a
+core from time spent waiting for Redis.
 """
 
 from __future__ import annotations
@@ -421,7 +422,8 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
     if os.environ.get("BENCH_PYSPY"):  # a profile of the worker over the cycles (a tool)
         spy = subprocess.Popen(["py-spy", "record", "--pid", str(proc.pid), "--format", "raw",
                                 "-o", os.environ["BENCH_PYSPY"] + ("-packed" if pack else ""),
-                                "--rate", "200", "--nonblocking"],
+                                "--rate", "200", "--nonblocking",
+                                *(["--idle"] if os.environ.get("BENCH_PYSPY_IDLE") else [])],
                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         time.sleep(1.0)
     windows: list[tuple[float, float]] = []
