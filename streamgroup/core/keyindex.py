@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Iterator, Sequence
 from itertools import repeat
-from operator import itemgetter
+from operator import eq, itemgetter
 from typing import Any
 
 import numpy as np
@@ -130,6 +130,27 @@ class KeyIndex:
             found = self._find(rest, h)
             out[miss] = found
             self._remember(rest, found)
+        return out
+
+    def lookup_guessed(self, keys: Sequence[str], guess: np.ndarray) -> np.ndarray:
+        """:meth:`lookup`, given each key's likely index (or -1) in ``guess``: a guess whose
+        string is cached (an answer's keys are those of the question it answers) is
+        confirmed by one string comparison, without hashing the key or probing the dict."""
+        count = len(keys)
+        if count == 0 or not (guess >= 0).any():
+            return self.lookup(keys)
+        slot = guess & (len(self._slot_idx) - 1)
+        try:
+            ok = np.fromiter(map(eq, keys, self._slot_key[slot].tolist()), dtype=bool,
+                             count=count)
+        except (TypeError, ValueError):  # not text: lookup raises as it always did
+            return self.lookup(keys)
+        ok &= (self._slot_idx[slot] == guess) & (guess >= 0)
+        if ok.all():
+            return guess
+        out = np.where(ok, guess, -1)
+        rest = np.flatnonzero(~ok)
+        out[rest] = self.lookup([keys[k] for k in rest.tolist()])
         return out
 
     def _remember(self, keys: Sequence[str], idx: np.ndarray) -> None:
