@@ -32,12 +32,13 @@ class Intake:
     same: np.ndarray
     with_q: np.ndarray  # positions of answers that name a qid
     qn: np.ndarray  # those qids as numbers
+    src: np.ndarray | None  # the source ids when every source is known, else None
 
 
 class IntakeMixin:
     """Validation of items and answers (part of :class:`~streamgroup.core.engine.Engine`)."""
 
-    # Attributes provided by Engine: keys, labels, ledger, q, source_index, source_names.
+    # Attributes provided by Engine: keys, labels, ledger, q, source_index, source_names, _salt.
     def validate_item(self, key: Any, side: Any = None) -> str | None:
         err = validate.item_key(key)
         if err or side is None:
@@ -133,7 +134,12 @@ class IntakeMixin:
                 if err:
                     bad.setdefault(pos, err)
         sources = self.source_index
-        new_sources = set(names) - sources.keys()
+        try:  # the usual batch: every source known, and their ids found in one pass
+            src: np.ndarray | None = np.fromiter(map(sources.__getitem__, names),
+                                                 dtype=np.int64, count=count)
+            new_sources: set[str] = set()
+        except KeyError:
+            src, new_sources = None, set(names) - sources.keys()
         if new_sources:
             for pos, n in enumerate(names):
                 if n in new_sources:
@@ -159,7 +165,7 @@ class IntakeMixin:
             pos = min(bad)
             raise EngineInputError(f"answer {pos}: {bad[pos]}")
         same = np.array(flags, dtype=bool) if count else np.zeros(0, dtype=bool)
-        return Intake(a_keys, b_keys, ia, ib, names, same, wq, qn)
+        return Intake(a_keys, b_keys, ia, ib, names, same, wq, qn, src)
 
     @staticmethod
     def _slot_for(side: str, labels: list[str | None]) -> int | None:
