@@ -45,6 +45,53 @@ def test_lookups_are_right_whatever_the_cache_holds(keys: list[str], cache: int,
     assert index.lookup(["\u2603 not a key"]).tolist() == [-1]
 
 
+@settings(max_examples=60, deadline=None)
+@given(st.lists(KEY, min_size=1, max_size=300, unique=True), st.integers(1, 300), st.data())
+def test_cached_key_strings_equal_the_stored_keys(keys: list[str], cache: int,
+                                                  data: st.DataObject) -> None:
+    """keys_of serves recent keys from a small direct-mapped cache of strings and lookup
+    tries every key in the dict in one call: whatever the cache holds (slots shared by
+    several keys, keys added in between, unknown keys among known ones), a question or a
+    record must never name another item's key."""
+    index = KeyIndex(cache_size=cache)
+    cut = data.draw(st.integers(1, len(keys)))
+    index.add(keys[:cut])
+    for _ in range(6):
+        if data.draw(st.booleans()) and cut < len(keys):
+            more = data.draw(st.integers(cut + 1, len(keys)))
+            index.add(keys[cut:more])
+            cut = more
+        picks = data.draw(st.lists(st.integers(0, cut - 1), max_size=120))
+        assert index.keys_of(np.array(picks, dtype=np.int64)) == [keys[i] for i in picks]
+        asked = [keys[i] for i in picks] + data.draw(st.lists(st.sampled_from(
+            ["\u2603 not a key", keys[-1]]), max_size=2))
+        want = [keys.index(k) if k in keys[:cut] else -1 for k in asked]
+        assert index.lookup(asked).tolist() == want
+    assert index.keys_of(np.arange(cut)) == keys[:cut]
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(KEY, min_size=2, max_size=200, unique=True), st.sampled_from([1, 2, 3, 300]),
+       st.data())
+def test_a_guessed_lookup_equals_the_plain_one(keys: list[str], cache: int,
+                                               data: st.DataObject) -> None:
+    """An answer's keys are checked against the question's pair by a string comparison
+    (lookup_guessed): right, wrong, absent or uncached guesses alike, each answer must be
+    counted for the items its keys name, and an unknown key found unknown."""
+    index = KeyIndex(cache_size=cache)
+    index.add(keys)
+    index.keys_of(np.array(data.draw(st.lists(st.integers(0, len(keys) - 1), min_size=8,
+                                              max_size=40)), dtype=np.int64))
+    known = keys + ["\u2603 not a key"]
+    for _ in range(4):
+        asked = data.draw(st.lists(st.sampled_from(known), max_size=60))
+        guess = np.array([keys.index(k) if k in keys and data.draw(st.booleans())
+                          else data.draw(st.integers(-1, len(keys) - 1)) for k in asked],
+                         dtype=np.int64)
+        plain = index.lookup(asked)
+        assert index.lookup_guessed(asked, guess).tolist() == plain.tolist()
+
+
 def test_the_key_cache_grows_with_the_outstanding_cap() -> None:
     """Both items of every question in flight fit in the cache (within its bounds), also
     in an engine restored from a snapshot."""

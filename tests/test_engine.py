@@ -8,6 +8,8 @@ import msgpack
 import numpy as np
 import pytest
 import zstandard
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy.stats import beta as beta_dist
 from scipy.stats import binom
 
@@ -439,3 +441,26 @@ def test_remembered_best_step_equals_the_one_computed_afresh() -> None:
     again = Engine.restore(eng.snapshot())
     assert again._best_step() == afresh(again) == eng._best_step()
     assert len(steps) > 3  # the biases did move
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.lists(st.lists(st.sampled_from(["s0", "s1", "s2", "s3", ""]), min_size=1,
+                         max_size=12), min_size=1, max_size=6))
+def test_source_ids_equal_the_order_of_first_appearance(batches: list[list[str]]) -> None:
+    """Every source keeps the id given at its first answer (ids found while checking when
+    all of a batch's sources are known, registered otherwise): the per-source biases and
+    counts must belong to the right source."""
+    crowd = Crowd(60, delta=0.6, seed=3)
+    eng = Engine(EngineConfig(max_outstanding=10**6))
+    eng.add_items((k, None) for k in crowd.keys)
+    qs = eng.plan(0)
+    names: list[str] = []
+    for k, batch in enumerate(batches):
+        part, qs = qs[:len(batch)], qs[len(batch):]
+        batch = batch[:len(part)]
+        eng.add_answers([Answer(q.a, q.b, True, s) for q, s in zip(part, batch, strict=True)],
+                        k)
+        names += batch
+    first = list(dict.fromkeys(names))
+    assert eng.source_names == first
+    assert eng.ledger.answer("src").tolist() == [first.index(s) for s in names]

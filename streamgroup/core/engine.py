@@ -306,12 +306,9 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
             self.pool = np.append(self.pool, i)
 
     def _source_ids(self, names: Sequence[str]) -> np.ndarray:
+        """The ids of the sources ``names``, registering the new ones (_check_answers
+        found the ids already when every source was known)."""
         index = self.source_index
-        try:  # the usual batch: every source known, one pass
-            return np.fromiter(map(index.__getitem__, names), dtype=np.int64,
-                               count=len(names))
-        except KeyError:
-            pass
         for name in dict.fromkeys(names):  # new sources, in order of first appearance
             if name not in index:
                 index[name] = len(self.source_names)
@@ -340,7 +337,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
             return np.zeros(0, dtype=bool)
         a = self._register_missing(got.a_keys, got.ia)
         b = self._register_missing(got.b_keys, got.ib)
-        src = self._source_ids(got.sources)
+        src = got.src if got.src is not None else self._source_ids(got.sources)
         same = got.same
         fresh = self.seen.add_new(pair_keys(a, b, src))
         # A qid answered twice is a duplicate even from another source; a qid is closed

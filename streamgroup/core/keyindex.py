@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Iterator, Sequence
 from itertools import repeat
+from operator import eq, itemgetter
 from typing import Any
 
 import numpy as np
@@ -22,7 +23,8 @@ def cache_size_for(max_outstanding: int) -> int:
     plus room for the rest (a cache smaller than that is emptied over and over, and a
     lookup that misses costs several times one that hits: measured 7.5 against 5.3 us per
     packed answer with 300,000 items in play, scripts/bench_batch.py --packed --items
-    300000). Between 2**17 and 2**20 keys, about 100 bytes each."""
+    300000). Between 2**17 and 2**20 keys, about 100 bytes each (and as many slots of the
+    strings cache of ``keys_of``, about 16 bytes each plus the strings not in the dict)."""
     return min(max(KeyIndex.CACHE, 2 * max_outstanding + (1 << 16)), 1 << 20)
 
 
@@ -36,6 +38,10 @@ class KeyIndex:
         # emptied when full: it should hold every key in play (see cache_size_for)
         self.cache_size = cache_size
         self.cache: dict[str, int] = {}
+        # keys_of's cache of key strings, direct-mapped: slot i & (len - 1) holds key i
+        # (the index in _slot_idx, -1 when empty); grown with n up to cache_size slots
+        self._slot_idx = np.full(1, -1, dtype=np.int64)
+        self._slot_key = np.empty(1, dtype=object)
         self.blob = bytearray()
         self.offsets = np.zeros(17, dtype=np.int64)
         self.hashes = np.zeros(16, dtype=np.int64)
@@ -63,12 +69,38 @@ class KeyIndex:
         return default if i < 0 else i
 
     def keys_of(self, idx: Sequence[int]) -> list[str]:
-        """The keys at ``idx``: gathered into one NUL-separated buffer by numpy and decoded
-        and split once (keys never hold NUL), instead of a slice and a decode per key."""
+        """The keys at ``idx``. Keys handed out or looked up lately come from a cache of
+        their strings; the rest are decoded from the blob (:meth:`_decode`)."""
         idx = np.asarray(idx, dtype=np.int64)
         if len(idx) < 8:
             o, blob = self.offsets, self.blob
             return [blob[o[i]:o[i + 1]].decode("utf-8") for i in idx.tolist()]
+        slot = idx & (len(self._slot_idx) - 1)
+        got = self._slot_key[slot]
+        miss = np.flatnonzero(self._slot_idx[slot] != idx)
+        if len(miss):
+            fill = np.fromiter(self._decode(idx[miss]), dtype=object, count=len(miss))
+            got[miss] = fill
+            self._keep(idx[miss], fill)
+        return got.tolist()
+
+    def _keep(self, idx: np.ndarray, keys: np.ndarray) -> None:
+        """Hold the strings ``keys`` of the indices ``idx`` in keys_of's cache."""
+        size = len(self._slot_idx)
+        limit = 1 << (self.cache_size - 1).bit_length()  # cache_size, rounded up to 2**k
+        if size < limit and size < self.n:  # grow (emptied) with n, up to the limit
+            size = min(limit, max(1024, 1 << (self.n - 1).bit_length()))
+            self._slot_idx = np.full(size, -1, dtype=np.int64)
+            self._slot_key = np.empty(size, dtype=object)
+        slot = idx & (size - 1)
+        self._slot_idx[slot] = idx
+        # two indices sharing a slot: keep the string of the one whose index stayed
+        ok = self._slot_idx[slot] == idx
+        self._slot_key[slot[ok]] = keys[ok]
+
+    def _decode(self, idx: np.ndarray) -> list[str]:
+        """The keys at ``idx`` from the blob: gathered into one NUL-separated buffer by numpy
+        and decoded and split once (keys never hold NUL), not a slice and a decode per key."""
         o = self.offsets
         starts = o[idx]
         lens = o[idx + 1] - starts
@@ -84,8 +116,13 @@ class KeyIndex:
 
     def lookup(self, keys: Sequence[str]) -> np.ndarray:
         """Index of each key, or -1."""
-        out = np.fromiter(map(self.cache.get, keys, repeat(-1)), dtype=np.int64,
-                          count=len(keys))
+        count = len(keys)
+        try:  # the usual batch: every key cached, one C call (about half a map of get)
+            if count > 1:
+                return np.fromiter(itemgetter(*keys)(self.cache), dtype=np.int64, count=count)
+        except KeyError:
+            pass
+        out = np.fromiter(map(self.cache.get, keys, repeat(-1)), dtype=np.int64, count=count)
         miss = np.nonzero(out < 0)[0]
         if len(miss):
             rest = [keys[q] for q in miss.tolist()]
@@ -95,10 +132,35 @@ class KeyIndex:
             self._remember(rest, found)
         return out
 
+    def lookup_guessed(self, keys: Sequence[str], guess: np.ndarray) -> np.ndarray:
+        """:meth:`lookup`, given each key's likely index (or -1) in ``guess``: a guess whose
+        string is cached (an answer's keys are those of the question it answers) is
+        confirmed by one string comparison, without hashing the key or probing the dict."""
+        count = len(keys)
+        if count == 0 or not (guess >= 0).any():
+            return self.lookup(keys)
+        slot = guess & (len(self._slot_idx) - 1)
+        try:
+            ok = np.fromiter(map(eq, keys, self._slot_key[slot].tolist()), dtype=bool,
+                             count=count)
+        except (TypeError, ValueError):  # not text: lookup raises as it always did
+            return self.lookup(keys)
+        ok &= (self._slot_idx[slot] == guess) & (guess >= 0)
+        if ok.all():
+            return guess
+        out = np.where(ok, guess, -1)
+        rest = np.flatnonzero(~ok)
+        out[rest] = self.lookup([keys[k] for k in rest.tolist()])
+        return out
+
     def _remember(self, keys: Sequence[str], idx: np.ndarray) -> None:
         if len(self.cache) + len(keys) > self.cache_size:
             self.cache = {}
         self.cache.update((k, i) for k, i in zip(keys, idx.tolist(), strict=True) if i >= 0)
+        known = np.flatnonzero(idx >= 0)
+        if len(known):  # the same strings serve keys_of
+            self._keep(idx[known], np.fromiter((keys[q] for q in known.tolist()),
+                                               dtype=object, count=len(known)))
 
     def _find(self, keys: Sequence[str], h: np.ndarray) -> np.ndarray:
         out = np.full(len(h), -1, dtype=np.int64)
