@@ -197,22 +197,30 @@ def test_second_answer_to_a_question_is_a_qid_duplicate(redis_url: str) -> None:
     w.close()
 
 
-def test_restart_resumes_exactly_from_snapshot_and_journal(redis_url: str) -> None:
-    """A new worker rebuilds the same engine state from the snapshot plus the journal."""
-    r = redis.Redis.from_url(redis_url)
-    crowd = Crowd(150, delta=0.6, sources=[0.6] * 10, seed=5)
+def _run_steps(url: str, n: int, *, seed: int, steps: int, **kw: Any
+               ) -> tuple[redis.Redis, Worker]:
+    """A worker over ``n`` items, answered by a simulated crowd for ``steps`` adapter
+    steps; returns a client and the (still open) worker."""
+    r = redis.Redis.from_url(url)
+    crowd = Crowd(n, delta=0.6, sources=[0.6] * 10, seed=seed)
     push_items(r, crowd.keys)
-    # snapshots every 0.05 s give a mix of snapshot and journal at the end
-    w = Worker(settings(redis_url, batch=20))
+    w = Worker(settings(url, **kw))
     adapter = SimAdapter(r, NS, crowd)
-    steps = {"n": 0}
+    done = {"n": 0}
 
     def some(wk: Worker) -> bool:
         adapter.step()
-        steps["n"] += 1
-        return steps["n"] > 40
+        done["n"] += 1
+        return done["n"] > steps
 
     w.run_until(some, 30)
+    return r, w
+
+
+def test_restart_resumes_exactly_from_snapshot_and_journal(redis_url: str) -> None:
+    """A new worker rebuilds the same engine state from the snapshot plus the journal."""
+    # snapshots every 0.05 s give a mix of snapshot and journal at the end
+    r, w = _run_steps(redis_url, 150, seed=5, steps=40, batch=20)
     before = w.state.engine.stats(), w.state.seq, dict(w.state.counters)
     assert r.exists(K.journal) or r.exists(K.snapshot)
     w.close()
@@ -413,19 +421,7 @@ def test_replay_keeps_the_later_of_two_journal_entries_for_one_batch(redis_url: 
     it), and the state equals the one the worker had."""
     from streamgroup.stream.state import Batch
 
-    r = redis.Redis.from_url(redis_url)
-    crowd = Crowd(120, delta=0.6, sources=[0.6] * 10, seed=7)
-    push_items(r, crowd.keys)
-    w = Worker(settings(redis_url, batch=20, snapshot_every=3600))
-    adapter = SimAdapter(r, NS, crowd)
-    steps = {"n": 0}
-
-    def some(wk: Worker) -> bool:
-        adapter.step()
-        steps["n"] += 1
-        return steps["n"] > 30
-
-    w.run_until(some, 30)
+    r, w = _run_steps(redis_url, 120, seed=7, steps=30, batch=20, snapshot_every=3600)
     want = w.state.engine.stats(), w.state.seq, dict(w.state.counters)
     w.close()
     rows = r.xrange(K.journal)
