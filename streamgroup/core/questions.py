@@ -84,7 +84,7 @@ class QuestionsMixin:
             served.append(t)
             got += len(t)
             if got >= room:
-                self.carry.add(rest, ordered=True)
+                self.carry.put_back(rest)  # from the prefix just taken: below every member
                 break
         targets = np.concatenate(served) if served else np.zeros(0, dtype=np.int64)
         n = len(self.keys)
