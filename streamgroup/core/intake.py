@@ -112,7 +112,7 @@ class IntakeMixin:
             asked = qn[issued]
             t = self.q["target"][asked].astype(np.int64)
             p = self.q["partner"][asked].astype(np.int64)
-            swap = planner.uniform(asked.astype(np.uint64), 3 + self._salt) < 0.5  # as _issue
+            swap = planner.coin(asked, 3 + self._salt)  # as _issue
             at = wq[issued]
             guess[at] = np.where(swap, p, t)
             guess[count + at] = np.where(swap, t, p)
