@@ -53,7 +53,22 @@ def test_qid_digits_parse_like_int(texts: list[str]) -> None:
     """The intake parses checked qids (ASCII digits, fewer than 19) with numpy: the same
     numbers as int(), leading zeros included."""
     got = digits_to_int64(texts)
+    assert got is not None
     assert got.dtype == np.int64 and got.tolist() == [int(t) for t in texts]
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.text("0123456789 \t+-x_٣²", max_size=18), min_size=1, max_size=40))
+def test_qid_digits_refuse_what_is_not_plain_digits(texts: list[str]) -> None:
+    """A qid that is empty, signed, spaced or in non-ASCII digits must not be parsed on the
+    fast path (the answer would be matched to a question instead of refused): None
+    exactly when some text is not a non-empty ASCII digit string, else int()'s numbers."""
+    plain = all(t.isdigit() and t.isascii() for t in texts)
+    got = digits_to_int64(texts)
+    if plain:
+        assert got is not None and got.tolist() == [int(t) for t in texts]
+    else:
+        assert got is None
 
 
 @settings(max_examples=200, deadline=None)
