@@ -134,6 +134,33 @@ def test_sorted_queue_gives_the_smallest_members_of_a_set(start: list[int], ops:
         assert bool(queue) == bool(model)
 
 
+@settings(max_examples=150, deadline=None)
+@given(st.lists(st.integers(0, 3000), max_size=600), OPS, st.integers(1, 300), st.data())
+def test_sorted_queue_takes_back_what_it_gave(start: list[int], ops: list[tuple], floor: int,
+                                              data: st.DataObject) -> None:
+    """Planning gives back the unserved end of each prefix it takes (put_back, no merge),
+    sometimes with values not below the rest; the queue must still hand out the smallest
+    members of the set, else items would be asked about out of turn or lost."""
+    queue, model = SortedQueue(np.array(start, dtype=np.int64)), set(start)
+    queue.MERGE_FLOOR = floor
+    for op, arg in ops:
+        if op.startswith("add"):
+            queue.add(np.array(arg, dtype=np.int64))
+            model |= set(arg)
+        else:
+            got = queue.take(arg)
+            want = sorted(model)[:arg]
+            assert got.tolist() == want
+            model -= set(want)
+            back = sorted(data.draw(st.sets(st.sampled_from(want))) if want else set())
+            if data.draw(st.booleans()):  # a foreign value: not below every member
+                back = sorted(set(back) | {data.draw(st.integers(0, 3000))})
+            queue.put_back(np.array(back, dtype=np.int64))
+            model |= set(back)
+        assert queue.values().tolist() == sorted(model)
+        assert bool(queue) == bool(model)
+
+
 @settings(max_examples=60, deadline=None)
 @given(st.integers(1, 200), st.integers(0, 2**32 - 1))
 def test_assign_values_decode_like_the_one_record_form(n: int, seed: int) -> None:

@@ -53,4 +53,41 @@ def test_qid_digits_parse_like_int(texts: list[str]) -> None:
     """The intake parses checked qids (ASCII digits, fewer than 19) with numpy: the same
     numbers as int(), leading zeros included."""
     got = digits_to_int64(texts)
+    assert got is not None
     assert got.dtype == np.int64 and got.tolist() == [int(t) for t in texts]
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.text("0123456789 \t+-x_٣²", max_size=18), min_size=1, max_size=40))
+def test_qid_digits_refuse_what_is_not_plain_digits(texts: list[str]) -> None:
+    """A qid that is empty, signed, spaced or in non-ASCII digits must not be parsed on the
+    fast path (the answer would be matched to a question instead of refused): None
+    exactly when some text is not a non-empty ASCII digit string, else int()'s numbers."""
+    plain = all(t.isdigit() and t.isascii() for t in texts)
+    got = digits_to_int64(texts)
+    if plain:
+        assert got is not None and got.tolist() == [int(t) for t in texts]
+    else:
+        assert got is None
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.integers(0, 2**63 - 1), min_size=1, max_size=40), st.integers(0, 2**32))
+def test_swap_coin_is_the_uniform_below_one_half(xs: list[int], salt: int) -> None:
+    """The side each question shows its items on (and the intake's guess of it) comes from
+    coin: the same as uniform < 0.5, else answers would be checked against the wrong pair.
+    mix in place must leave its input alone and hash int64 like uint64."""
+    signed = np.array(xs, dtype=np.int64)
+    before = signed.copy()
+    h = planner.mix(signed.astype(np.uint64) ^ planner.mix(salt))
+    plain = (h >> np.uint64(11)).astype(np.float64) / float(1 << 53)
+    assert planner.uniform(signed, salt).tolist() == plain.tolist()
+    want = plain < 0.5
+    assert planner.coin(signed, salt).tolist() == want.tolist()
+    assert signed.tolist() == before.tolist()
+    assert planner.mix(signed).tolist() == [planner._mix_int(x) for x in xs]
+    assert int(planner.mix(np.array(xs[0], dtype=np.uint64))) == planner._mix_int(xs[0])
+    # hashes whose top 53 bits sit at the half: the float comparison and the bit agree
+    edge = np.array([(1 << 63) - 1, 1 << 63, ((1 << 63) - 1) ^ 0x7FF], dtype=np.uint64)
+    f = (edge >> np.uint64(11)).astype(np.float64) / float(1 << 53)
+    assert (f < 0.5).tolist() == (edge < np.uint64(1 << 63)).tolist()

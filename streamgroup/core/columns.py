@@ -57,7 +57,10 @@ def uniq(x: np.ndarray) -> np.ndarray:
     if len(x) < 2:
         return np.asarray(x, dtype=np.int64)
     y = np.sort(x)
-    return y[np.r_[True, y[1:] != y[:-1]]]
+    first = np.empty(len(y), dtype=bool)  # not np.r_: its index parsing costs ~7 us a call
+    first[0] = True
+    np.not_equal(y[1:], y[:-1], out=first[1:])
+    return y[first]
 
 
 def first_occurrence(x: np.ndarray) -> np.ndarray:
@@ -129,12 +132,31 @@ class SortedQueue:
         if len(self.small) > max(self.MERGE_FLOOR, len(self.big) // 4):
             self.big, self.small = union_sorted(self.big, self.small), self.small[:0]
 
+    def put_back(self, values: np.ndarray) -> None:
+        """Return ``values`` (sorted and distinct) taken by the last :meth:`take`: they lie
+        below every member, so they go in front of the small run without a merge."""
+        if len(values) == 0:
+            return
+        small, big, top = self.small, self.big, values[-1]
+        if (len(small) and top >= small[0]) or (len(big) and top >= big[0]):
+            self.add(values, ordered=True)  # not below every member: the general path
+            return
+        self.small = np.concatenate([values.astype(np.int64, copy=False), small])
+        if len(self.small) > max(self.MERGE_FLOOR, len(self.big) // 4):
+            self.big, self.small = union_sorted(self.big, self.small), self.small[:0]
+
     def take(self, k: int) -> np.ndarray:
         """Remove and return the ``k`` smallest values (fewer if the set is smaller)."""
-        if not len(self.small):
+        if not len(self.small) or k <= 0:
             out, self.big = self.big[:k], self.big[k:]
             return out
         a, b = self.big[:k], self.small[:k]
+        # k values of one run bound the answer: the other run's values above its k-th
+        # cannot be among the k smallest (the union of both prefixes is cut to k anyway)
+        if len(a) == k:
+            b = b[:int(np.searchsorted(b, a[-1], side="right"))]
+        if len(b) == k:
+            a = a[:int(np.searchsorted(a, b[-1], side="right"))]
         out = union_sorted(a, b)[:k]
         if len(out):
             last = out[-1]

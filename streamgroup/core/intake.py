@@ -14,10 +14,19 @@ from .pairset import MAX_SOURCES
 from .types import Answer, AnswerColumns
 
 
-def digits_to_int64(texts: Sequence[str]) -> np.ndarray:
-    """The numbers written by non-empty ASCII digit strings of at most 18 digits (numpy
-    parses them itself: about two thirds of the time of ``int`` per string)."""
-    return np.array(texts, dtype=np.int64)
+def digits_to_int64(texts: Sequence[str]) -> np.ndarray | None:
+    """The numbers written by ``texts`` (strings of at most 18 characters) if every one is
+    a non-empty string of ASCII digits, else None.
+
+    The texts are checked as one joined string and parsed by numpy from one
+    space-separated string: about a third of the time of a check per string and
+    ``np.array(texts, dtype=int64)`` (~25 against ~75 us for 500 qids).
+    """
+    joined = "".join(texts)
+    if not (joined.isdigit() and joined.isascii()):
+        return None
+    out = np.fromstring(" ".join(texts), dtype=np.int64, sep=" ")
+    return out if len(out) == len(texts) else None  # an empty text leaves no number
 
 
 @dataclass(slots=True)
@@ -96,9 +105,11 @@ class IntakeMixin:
         qid_bad: dict[int, str] = {}
         if with_q:
             texts = qids if len(with_q) == count else [qids[pos] for pos in with_q]
-            if (set(map(type, texts)) == {str} and all(map(str.isdigit, texts))
-                    and all(map(str.isascii, texts)) and max(map(len, texts)) < 19):
-                qn = digits_to_int64(texts)
+            parsed = (digits_to_int64(texts)
+                      if set(map(type, texts)) == {str} and max(map(len, texts)) < 19
+                      else None)
+            if parsed is not None:
+                qn = parsed
             else:
                 for k, q in enumerate(texts):
                     err = validate.qid(q)
@@ -112,7 +123,7 @@ class IntakeMixin:
             asked = qn[issued]
             t = self.q["target"][asked].astype(np.int64)
             p = self.q["partner"][asked].astype(np.int64)
-            swap = planner.uniform(asked.astype(np.uint64), 3 + self._salt) < 0.5  # as _issue
+            swap = planner.coin(asked, 3 + self._salt)  # as _issue
             at = wq[issued]
             guess[at] = np.where(swap, p, t)
             guess[count + at] = np.where(swap, t, p)

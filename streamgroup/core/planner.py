@@ -9,6 +9,9 @@ import numpy as np
 _GOLDEN_INT = 0x9E3779B97F4A7C15
 _GOLDEN = np.uint64(_GOLDEN_INT)
 _M64 = (1 << 64) - 1
+_S11, _S27, _S30, _S31 = np.uint64(11), np.uint64(27), np.uint64(30), np.uint64(31)
+_C1, _C2 = np.uint64(0xBF58476D1CE4E5B9), np.uint64(0x94D049BB133111EB)
+_HALF = np.uint64(1 << 63)
 
 
 def _mix_int(x: int) -> int:
@@ -23,17 +26,39 @@ def mix(x: np.ndarray | int) -> np.ndarray:
     """splitmix64: a stateless, well-spread hash; drives every planning 'coin'."""
     if type(x) is int and 0 <= x <= _M64:  # the salts: several per batch, ~9 us each in numpy
         return np.uint64(_mix_int(x))  # type: ignore[return-value]
-    with np.errstate(over="ignore"):
-        z = np.asarray(x, dtype=np.uint64) + _GOLDEN
-        z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
-        z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
-        return z ^ (z >> np.uint64(31))
+    if np.ndim(x) == 0:  # numpy scalars: their arithmetic checks for overflow
+        with np.errstate(over="ignore"):
+            z = np.asarray(x, dtype=np.uint64) + _GOLDEN
+            z = (z ^ (z >> _S30)) * _C1
+            z = (z ^ (z >> _S27)) * _C2
+            return z ^ (z >> _S31)
+    # the same steps in place, in one buffer and one temporary (array arithmetic wraps
+    # silently): half the time of a fresh array per step (~7 against ~14 us for 500)
+    z = np.asarray(x, dtype=np.uint64) + _GOLDEN
+    t = z >> _S30
+    z ^= t
+    z *= _C1
+    np.right_shift(z, _S27, out=t)
+    z ^= t
+    z *= _C2
+    np.right_shift(z, _S31, out=t)
+    z ^= t
+    return z
 
 
 def uniform(x: np.ndarray | int, salt: int) -> np.ndarray:
     """Deterministic uniforms in [0, 1) from integers and a salt."""
     h = mix(np.asarray(x, dtype=np.uint64) ^ mix(salt))
-    return (h >> np.uint64(11)).astype(np.float64) / float(1 << 53)
+    h >>= _S11  # a fresh hash: shifted and scaled in place
+    u = h.astype(np.float64)
+    u /= float(1 << 53)
+    return u
+
+
+def coin(x: np.ndarray, salt: int) -> np.ndarray:
+    """``uniform(x, salt) < 0.5`` without the floats: the uniform is the hash's top 53 bits
+    over 2**53 (exact in float64), below one half exactly when the top bit is clear."""
+    return mix(np.asarray(x, dtype=np.uint64) ^ mix(salt)) < _HALF
 
 
 def answers_still_needed(llr: np.ndarray, boundary: float, best_step: float) -> np.ndarray:

@@ -84,7 +84,7 @@ class QuestionsMixin:
             served.append(t)
             got += len(t)
             if got >= room:
-                self.carry.add(rest, ordered=True)
+                self.carry.put_back(rest)  # from the prefix just taken: below every member
                 break
         targets = np.concatenate(served) if served else np.zeros(0, dtype=np.int64)
         n = len(self.keys)
@@ -193,7 +193,7 @@ class QuestionsMixin:
             first_ms = it["first_ms"]
             first_ms[pairs[first_ms[pairs] < 0]] = now_ms
         self._touch(np.asarray(targets, dtype=np.int64))
-        swap = planner.uniform(qids.astype(np.uint64), 3 + self._salt) < 0.5
+        swap = planner.coin(qids, 3 + self._salt)
         first = np.where(swap, partners, targets)
         second = np.where(swap, targets, partners)
         keys = self.keys.keys_of(np.concatenate([first, second]))  # one gather for both
