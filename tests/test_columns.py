@@ -106,12 +106,13 @@ def test_the_key_cache_grows_with_the_outstanding_cap() -> None:
 OPS = st.lists(st.one_of(
     st.tuples(st.sampled_from(["add", "add ordered"]), st.lists(st.integers(0, 3000),
                                                                 max_size=200)),
-    st.tuples(st.just("take"), st.integers(0, 120))), max_size=40)
+    st.tuples(st.just("take"), st.integers(-3, 120))), max_size=40)  # k <= 0 takes none
 
 
 @settings(max_examples=150, deadline=None)
 @given(st.lists(st.integers(0, 3000), max_size=600), OPS, st.integers(1, 300))
 @example([5, 6], [("add", [2, 1]), ("take", 2)], 300)  # the small run ahead of the big one
+@example([5, 1, 9], [("take", -2)], 300)  # no room: nothing taken
 def test_sorted_queue_gives_the_smallest_members_of_a_set(start: list[int], ops: list[tuple],
                                                           floor: int) -> None:
     """Against a Python set (the model): take(k) returns its k smallest members, once
@@ -127,7 +128,7 @@ def test_sorted_queue_gives_the_smallest_members_of_a_set(start: list[int], ops:
                 queue.add(np.unique(np.array(arg, dtype=np.int64)), ordered=True)
             model |= set(arg)
         else:
-            want = sorted(model)[:arg]
+            want = sorted(model)[:max(arg, 0)]
             assert queue.take(arg).tolist() == want
             model -= set(want)
         assert queue.values().tolist() == sorted(model)
@@ -149,7 +150,7 @@ def test_sorted_queue_takes_back_what_it_gave(start: list[int], ops: list[tuple]
             model |= set(arg)
         else:
             got = queue.take(arg)
-            want = sorted(model)[:arg]
+            want = sorted(model)[:max(arg, 0)]
             assert got.tolist() == want
             model -= set(want)
             back = sorted(data.draw(st.sets(st.sampled_from(want))) if want else set())

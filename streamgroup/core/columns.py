@@ -147,7 +147,9 @@ class SortedQueue:
 
     def take(self, k: int) -> np.ndarray:
         """Remove and return the ``k`` smallest values (fewer if the set is smaller)."""
-        if not len(self.small) or k <= 0:
+        if k <= 0:
+            return self.big[:0]
+        if not len(self.small):
             out, self.big = self.big[:k], self.big[k:]
             return out
         a, b = self.big[:k], self.small[:k]
