@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import EngineInputError
-from . import planner, validate
+from . import validate
 from .pairset import MAX_SOURCES
 from .types import Answer, AnswerColumns
 
@@ -47,7 +47,8 @@ class Intake:
 class IntakeMixin:
     """Validation of items and answers (part of :class:`~streamgroup.core.engine.Engine`)."""
 
-    # Attributes provided by Engine: keys, labels, ledger, q, source_index, source_names, _salt.
+    # Attributes provided by Engine: keys, labels, ledger, q, source_index, source_names,
+    # _shown_swapped.
     def validate_item(self, key: Any, side: Any = None) -> str | None:
         err = validate.item_key(key)
         if err or side is None:
@@ -118,15 +119,15 @@ class IntakeMixin:
                     elif q.isascii() and len(q) < 19:
                         qn[k] = int(q)
         issued = (qn >= 0) & (qn < self.q.n)
+        safe = np.where(issued, qn, 0)
+        t, p = self.q["target"][safe], self.q["partner"][safe]  # each qid's pair
         guess = np.full(2 * count, -1, dtype=np.int64)
         if issued.any():
-            asked = qn[issued]
-            t = self.q["target"][asked].astype(np.int64)
-            p = self.q["partner"][asked].astype(np.int64)
-            swap = planner.coin(asked, 3 + self._salt)  # as _issue
+            it, ip = t[issued], p[issued]
+            swap = self._shown_swapped(qn[issued])
             at = wq[issued]
-            guess[at] = np.where(swap, p, t)
-            guess[count + at] = np.where(swap, t, p)
+            guess[at] = np.where(swap, ip, it)
+            guess[count + at] = np.where(swap, it, ip)
         both = self.keys.lookup_guessed(a_keys + b_keys, guess)  # one call: half the costs
         ia, ib = both[:count], both[count:]
         bad: dict[int, str] = {}
@@ -165,8 +166,6 @@ class IntakeMixin:
             for k in np.nonzero(~issued)[0].tolist():
                 bad.setdefault(with_q[k], f"qid {qids[with_q[k]]!r} is not one this "
                                           "worker issued")
-            safe = np.where(issued, qn, 0)
-            t, p = self.q["target"][safe], self.q["partner"][safe]
             i, j = ia[wq], ib[wq]
             match = ((t == i) & (p == j)) | ((t == j) & (p == i))
             for k in np.nonzero(issued & ~match)[0].tolist():

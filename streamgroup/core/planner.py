@@ -26,12 +26,8 @@ def mix(x: np.ndarray | int) -> np.ndarray:
     """splitmix64: a stateless, well-spread hash; drives every planning 'coin'."""
     if type(x) is int and 0 <= x <= _M64:  # the salts: several per batch, ~9 us each in numpy
         return np.uint64(_mix_int(x))  # type: ignore[return-value]
-    if np.ndim(x) == 0:  # numpy scalars: their arithmetic checks for overflow
-        with np.errstate(over="ignore"):
-            z = np.asarray(x, dtype=np.uint64) + _GOLDEN
-            z = (z ^ (z >> _S30)) * _C1
-            z = (z ^ (z >> _S27)) * _C2
-            return z ^ (z >> _S31)
+    if np.ndim(x) == 0:  # numpy scalars (their arithmetic warns on overflow): as arrays
+        return mix(np.atleast_1d(np.asarray(x, dtype=np.uint64)))[0]
     # the same steps in place, in one buffer and one temporary (array arithmetic wraps
     # silently): half the time of a fresh array per step (~7 against ~14 us for 500)
     z = np.asarray(x, dtype=np.uint64) + _GOLDEN

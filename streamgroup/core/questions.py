@@ -193,7 +193,7 @@ class QuestionsMixin:
             first_ms = it["first_ms"]
             first_ms[pairs[first_ms[pairs] < 0]] = now_ms
         self._touch(np.asarray(targets, dtype=np.int64))
-        swap = planner.coin(qids, 3 + self._salt)
+        swap = self._shown_swapped(qids)
         first = np.where(swap, partners, targets)
         second = np.where(swap, targets, partners)
         keys = self.keys.keys_of(np.concatenate([first, second]))  # one gather for both
@@ -201,6 +201,11 @@ class QuestionsMixin:
         return QuestionColumns([f"{n}" for n in range(start, start + count)],
                                keys[:count], keys[count:], [WHY_NAMES[why]] * count,
                                [now_ms] * count)
+
+    def _shown_swapped(self, qids: np.ndarray) -> np.ndarray:
+        """Whether each question shows its partner as ``a`` (a coin per qid): how ``_issue``
+        wrote it, and so the likely (a, b) order of its answer."""
+        return planner.coin(qids, 3 + self._salt)
 
     def _expire(self, now_ms: int) -> None:
         """Close the open questions older than the timeout.
