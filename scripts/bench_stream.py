@@ -316,6 +316,21 @@ def idle_lookups(url: str, seconds: float) -> dict[str, Any]:
     return latency_summary(got["start"], got["ms"])
 
 
+def busy_floor_lookups(url: str, seconds: float) -> dict[str, Any]:
+    """Lookup latency with Redis idle but every core kept busy by a spinning process (as
+    busy as the worker and Redis keep them in the drain): what this machine's scheduler
+    alone adds to a lookup, the floor under ``lookup_p99_ms``."""
+    hogs = [subprocess.Popen([sys.executable, "-c", "while True: pass"])
+            for _ in range(os.cpu_count() or 1)]
+    try:
+        time.sleep(0.2)
+        return idle_lookups(url, seconds)
+    finally:
+        for h in hogs:
+            h.kill()
+            h.wait()
+
+
 def start_crowd_run(url: str, ns: str, n: int, batch: int, pack: bool, max_outstanding: int
                     ) -> tuple[redis.Redis, Keys, subprocess.Popen[bytes], Feeder]:
     """Fill ``n`` items, start the worker and wait until it has registered every one (so
@@ -431,6 +446,8 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
     cpu = r_cpu = sys_cpu = 0.0
     usec: collections.Counter[str] = collections.Counter()
     tails: collections.defaultdict[str, list[float]] = collections.defaultdict(list)
+    slow: collections.defaultdict[str, list[float]] = collections.defaultdict(list)
+    r.config_set("slowlog-log-slower-than", 1000)  # microseconds
 
     def caught_up() -> bool:  # every answer in the stream read and committed
         last = r.xinfo_stream(k.answers)["last-generated-id"]
@@ -459,6 +476,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         backlog = pause_and_answer()
         target = consumed() + backlog
         r.config_resetstat()
+        r.slowlog_reset()
         rc0 = redis_cpu(r)
         (u0, s0), t0 = cpu_split(proc.pid), time.monotonic()
         proc.send_signal(signal.SIGCONT)
@@ -485,6 +503,8 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
                 if p in got:
                     tails[f"{name}_{p}"].append(got[p] / 1000)
         windows.append((t0, t1))
+        for e in r.slowlog_get(128):
+            slow[e["command"].split(b" ", 1)[0].decode().lower()].append(e["duration"] / 1000)
     if spy is not None:
         spy.send_signal(signal.SIGINT)
         spy.wait(60)
@@ -507,6 +527,8 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         # how long Redis itself takes for one batch's read and transaction (it serves no
         # lookup meanwhile): the median over the windows of each window's percentile
         "redis_ms": {k: round(statistics.median(v), 3) for k, v in sorted(tails.items())},
+        # the commands that held Redis for a millisecond or more (SLOWLOG): count, longest
+        "redis_slow": {k: [len(v), round(max(v), 2)] for k, v in sorted(slow.items())},
     }
     if child is not None:
         child.send_signal(signal.SIGTERM)
@@ -547,6 +569,17 @@ def bench_memory(url: str, ns: str, n: int, batch: int) -> dict[str, Any]:
     }
 
 
+def pin(srv: EmbeddedRedis) -> None:
+    """BENCH_REDIS_CPU=N: Redis alone on CPU N, everything else (this process and its
+    children: the worker, the adapter, the lookups) on the other CPUs."""
+    cpu = os.environ.get("BENCH_REDIS_CPU")
+    if not cpu:
+        return
+    assert srv._proc is not None
+    os.sched_setaffinity(srv._proc.pid, {int(cpu)})
+    os.sched_setaffinity(0, set(range(os.cpu_count() or 1)) - {int(cpu)})
+
+
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     p.add_argument("--items", type=int, default=1_000_000, help="items for the memory part")
@@ -579,10 +612,12 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     if args.drain_only:
         with EmbeddedRedis("redis-server") as srv:
+            pin(srv)
             raw = bench_raw(srv.url, args.batch, args.raw_entries)
             plain = bench_drain(srv.url, "dw", args.drain_items, args.batch, False,
                                 args.warmup, args.cycles, True, args.drain_items // 2)
             raw2 = bench_raw(srv.url, args.batch, args.raw_entries)
+            floor = busy_floor_lookups(srv.url, args.seconds)
         raw_rate = (raw + raw2) / 2
         quick = {
             "batch": args.batch,
@@ -593,20 +628,24 @@ def main(argv: list[str] | None = None) -> int:
             "lookup_p99_ms": round(plain["lookup"]["p99_ms"], 3),
             "lookup_p50_ms": round(plain["lookup"]["p50_ms"], 3),
             "lookups": plain["lookup"]["lookups"],
+            "lookup_busy_floor_p99_ms": round(floor["p99_ms"], 3),
             "worker_cpu_share_plain": round(plain["worker_cpu_share"], 2),
             "worker_sys_part_plain": round(plain["worker_sys_part"], 2),
             "redis_cpu_share_plain": round(plain["redis_cpu_share"], 2),
             "redis_us_per_answer_plain": plain["redis_us_per_answer"],
             "redis_ms_plain": plain["redis_ms"],
+            "redis_slow_plain": plain["redis_slow"],
             "worker_exit_codes": [plain["exit"]],
         }
         print(json.dumps(quick, indent=2) if args.json else quick)
         return 0
     with EmbeddedRedis("redis-server") as srv:
+        pin(srv)
         url = srv.url
         flush = redis.Redis.from_url(url).flushall
         raw = bench_raw(url, args.batch, args.raw_entries)
         idle = idle_lookups(url, args.seconds)
+        floor = busy_floor_lookups(url, args.seconds)
         plain = bench_drain(url, "dw", args.drain_items, args.batch, False, args.warmup,
                             args.cycles, True, args.drain_items // 2)
         flush()
@@ -637,6 +676,7 @@ def main(argv: list[str] | None = None) -> int:
         "lookup_p50_ms": round(plain["lookup"]["p50_ms"], 3),
         "lookups": plain["lookup"]["lookups"],
         "lookup_idle_p99_ms": round(idle["p99_ms"], 3),
+        "lookup_busy_floor_p99_ms": round(floor["p99_ms"], 3),
         "drain_windows": [plain["windows"], packed["windows"]],
         "drain_window_s": [plain["window_s"], packed["window_s"]],
         "worker_cpu_share_plain": round(plain["worker_cpu_share"], 2),
@@ -650,6 +690,7 @@ def main(argv: list[str] | None = None) -> int:
         "redis_us_per_answer_plain": plain["redis_us_per_answer"],
         "redis_us_per_answer_packed": packed["redis_us_per_answer"],
         "redis_ms_plain": plain["redis_ms"],
+        "redis_slow_plain": plain["redis_slow"],
         # the closed loop: the simulated crowd adapter runs beside the worker, on the same
         # two cores and the same Redis, answering each question as it appears
         "loop_entries_per_s": round(loop["entries_per_s"]),
