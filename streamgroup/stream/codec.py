@@ -475,31 +475,27 @@ def _fast_pack(data: list[Any], eid: bytes, out: Decoded) -> bool:
 def _fast_columns(a: list[Any], b: list[Any], s: list[Any], optional: list[list[Any]],
                   eid: bytes, out: Decoded) -> bool:
     """Check and add answer columns at once (source, qid and aid in ``optional``; None
-    where absent). Returns False, having added nothing, if any value needs a closer look."""
-    if set(map(type, a)) != {str} or set(map(type, b)) != {str} or any(map(str.__eq__, a, b)):
-        return False
-    if ("" in a or "" in b  # (all str: the fastest test for an empty one)
-            or max(map(len, a)) > _FAST_CHARS or max(map(len, b)) > _FAST_CHARS):
-        return False
-    if not set(map(type, s)) <= {bool, int} or not set(s) <= {0, 1}:
-        return False
+    where absent). Returns False, having added nothing, if any value needs a closer look.
+
+    Every text value (a, b and the optional ones given) goes into one list: joining it
+    proves they are all str, and one pass each finds an empty or a long one."""
     texts = a + b
     for col in optional:
-        kinds = set(map(type, col))
-        if not kinds <= {str, type(None)}:
-            return False
-        if str in kinds:
-            given = [v for v in col if v is not None] if type(None) in kinds else col
-            if "" in given or max(map(len, given)) > _FAST_CHARS:
-                return False
-            texts += given
-    if has_control(" ".join(texts)):
+        texts += [v for v in col if v is not None] if None in col else col
+    try:
+        joined = " ".join(texts)
+    except TypeError:  # some value is not a str (bytes, a number, nil in a or b)
+        return False
+    if "" in texts or max(map(len, texts)) > _FAST_CHARS or any(map(str.__eq__, a, b)):
+        return False
+    same_types = set(map(type, s))
+    if not same_types <= {bool, int} or not set(s) <= {0, 1} or has_control(joined):
         return False
     src, qid, aid = optional
     dst = out.cols
     dst.a += a
     dst.b += b
-    dst.same += [x is True or x == 1 for x in s]
+    dst.same += s if same_types == {bool} else map(bool, s)  # (0 and 1 only, checked above)
     dst.source += ["" if v is None else v for v in src] if None in src else src
     dst.qid += qid
     out.aids += aid
