@@ -26,12 +26,14 @@ from __future__ import annotations
 
 import bisect
 import itertools
+import operator
 import re
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 import msgpack
+import numpy as np
 
 from ..core.types import Answer, AnswerColumns
 from ..keys import (
@@ -475,21 +477,14 @@ def _fast_pack(data: list[Any], eid: bytes, out: Decoded) -> bool:
 def _fast_columns(a: list[Any], b: list[Any], s: list[Any], optional: list[list[Any]],
                   eid: bytes, out: Decoded) -> bool:
     """Check and add answer columns at once (source, qid and aid in ``optional``; None
-    where absent). Returns False, having added nothing, if any value needs a closer look.
-
-    Every text value (a, b and the optional ones given) goes into one list: joining it
-    proves they are all str, and one pass each finds an empty or a long one."""
+    where absent). Returns False, having added nothing, if any value needs a closer look."""
     texts = a + b
     for col in optional:
         texts += [v for v in col if v is not None] if None in col else col
-    try:
-        joined = " ".join(texts)
-    except TypeError:  # some value is not a str (bytes, a number, nil in a or b)
-        return False
-    if "" in texts or max(map(len, texts)) > _FAST_CHARS or any(map(str.__eq__, a, b)):
+    if not _short_texts(texts) or any(map(operator.eq, a, b)):
         return False
     same_types = set(map(type, s))
-    if not same_types <= {bool, int} or not set(s) <= {0, 1} or has_control(joined):
+    if not same_types <= {bool, int} or not set(s) <= {0, 1}:
         return False
     src, qid, aid = optional
     dst = out.cols
@@ -501,6 +496,27 @@ def _fast_columns(a: list[Any], b: list[Any], s: list[Any], optional: list[list[
     out.aids += aid
     out.origins.add_pack(eid, len(a))
     return True
+
+
+def _short_texts(texts: list[Any]) -> bool:
+    """Whether every value is a str of 1 to ``_FAST_CHARS`` characters without a control
+    character. They are joined by NUL (which proves they are all str); ASCII text (the
+    usual case) is then measured by numpy from the positions of the NULs, which must be
+    exactly the separators."""
+    try:
+        joined = "\0".join(texts)
+    except TypeError:  # some value is not a str (bytes, a number, nil in a or b)
+        return False
+    if has_control(joined, nul_ok=True):
+        return False
+    if not joined.isascii():
+        return ("" not in texts and max(map(len, texts)) <= _FAST_CHARS
+                and joined.count("\0") == len(texts) - 1)
+    ends = np.flatnonzero(np.frombuffer(joined.encode("ascii"), dtype=np.uint8) == 0)
+    if len(ends) != len(texts) - 1:  # a NUL inside a value
+        return False
+    sizes = np.diff(ends, prepend=-1, append=len(joined)) - 1
+    return bool(sizes.min() > 0) and bool(sizes.max() <= _FAST_CHARS)
 
 
 def _decode_pack(stream: str, eid: bytes, fields: dict[bytes, bytes], pack: bytes,
