@@ -280,6 +280,7 @@ def _fast_answers(entries: Sequence[Entry], out: Decoded) -> bool:
     rows = []
     empty = b""
     layout = _PLAIN_LAYOUT
+    qid_missing = aid_given = False  # (only entries read by name can set these)
     for eid, f in entries:
         if type(f) is list:  # a raw reply: the usual field order is read by position
             if len(f) == 10 and f[0::2] == layout:
@@ -314,6 +315,8 @@ def _fast_answers(entries: Sequence[Entry], out: Decoded) -> bool:
             return False
         texts += (ra, rb, src, qid or empty, aid or empty)
         rows.append((eid, rs == b"1", qid is not None, aid is not None))
+        qid_missing = qid_missing or qid is None
+        aid_given = aid_given or aid is not None
     raw = b"\0".join(texts)
     try:
         text = raw.decode()
@@ -327,18 +330,21 @@ def _fast_answers(entries: Sequence[Entry], out: Decoded) -> bool:
     cols = out.cols
     cols.a += parts[0::5]
     cols.b += parts[1::5]
-    cols.same += [r[1] for r in rows]
+    cols.same += map(_ROW_SAME, rows)
     cols.source += parts[2::5]
-    if all(r[2] for r in rows):
-        cols.qid += parts[3::5]
-    else:
+    if qid_missing:
         cols.qid += [q if r[2] else None for q, r in zip(parts[3::5], rows, strict=True)]
-    if any(r[3] for r in rows):
+    else:
+        cols.qid += parts[3::5]
+    if aid_given:
         out.aids += [x if r[3] else None for x, r in zip(parts[4::5], rows, strict=True)]
     else:
         out.aids += [None] * len(rows)
-    out.origins += [r[0] for r in rows]
+    out.origins += map(_ROW_EID, rows)
     return True
+
+
+_ROW_EID, _ROW_SAME = operator.itemgetter(0), operator.itemgetter(1)  # of _fast_answers' rows
 
 
 def decode_answers(stream: str, entries: Sequence[Entry]) -> Decoded:
