@@ -113,16 +113,19 @@ def _assign_parts(rc: RecordColumns, suffix: bytes = b""
         parts.append((_KEYS[key] + marker, col, dtype))
     parts.append((_KEYS["pinned"], np.where(rc.pinned, 0xC3, 0xC2), "u1"))  # true / false
     parts.append((suffix, None, "V0"))
-    width = sum(len(c) + np.dtype(dt).itemsize for c, _, dt in parts)
-    tail = np.empty((n, width), dtype=np.uint8)
+    # every row starts as the constants with zeros for the values, then each column of
+    # values is written over its zeros
+    row = b"".join(const + bytes(np.dtype(dt).itemsize) for const, _, dt in parts)
+    tail = np.empty((n, len(row)), dtype=np.uint8)
+    tail[:] = np.frombuffer(row, dtype=np.uint8)
     at = 0
     for const, col, dtype in parts:
-        tail[:, at:at + len(const)] = np.frombuffer(const, dtype=np.uint8)
         at += len(const)
         if col is not None:
             size = np.dtype(dtype).itemsize
             tail[:, at:at + size] = col.astype(dtype).view(np.uint8).reshape(n, size)
             at += size
+    width = len(row)
     # The tails as the rows of a fixed-width bytes array: numpy would drop trailing NULs
     # when it hands them out, but every tail ends in the pinned flag (0xC2 or 0xC3) or in
     # the suffix's LF.
