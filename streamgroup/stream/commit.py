@@ -163,7 +163,9 @@ DECISION_FIELDS = ("key", "side", "status", "llr", "answers", "rev")
 
 def decision_values(rc: RecordColumns, positions: Sequence[int]) -> list[Any]:
     """The fields ``DECISION_FIELDS`` of the records at ``positions``, flat, row after row
-    (key, side or "", status, llr as ``repr`` of a float, answers, rev)."""
+    (key, side or "", status, llr as ``repr`` of a float, answers, rev). The reference of
+    what a decision holds: the commit formats them straight from the columns
+    (:func:`decision_entries`)."""
     idx = np.asarray(positions, dtype=np.int64)
     names = (*rc.labels, "")
     n = len(idx)
@@ -382,18 +384,23 @@ def decision_entries(key: str, cap: int, rc: RecordColumns,
 _COUNT_TABLE = 4096  # counts below this are formatted from a table
 
 
+def _count_piece(lead: str, count: int) -> str:
+    """``lead``, then the count's length, CRLF and text (as ``str`` writes it)."""
+    return f"{lead}{len(str(count))}\r\n{count}"
+
+
 @functools.lru_cache(maxsize=16)
 def _count_table(lead: str) -> list[str]:
-    """``lead``, then the length, CRLF and text of each count below ``_COUNT_TABLE``."""
-    return [f"{lead}{len(str(v))}\r\n{v}" for v in range(_COUNT_TABLE)]
+    """``_count_piece`` of each count below ``_COUNT_TABLE``."""
+    return [_count_piece(lead, v) for v in range(_COUNT_TABLE)]
 
 
 def _count_pieces(lead: str, counts: np.ndarray) -> list[str]:
-    """Each count (non-negative integers) with its lead and length, as written by ``str``."""
+    """``_count_piece`` of each count (integers), from the table when all are in it."""
     values = counts.astype(np.int64).tolist()
     if values and min(values) >= 0 and max(values) < _COUNT_TABLE:
         return list(map(_count_table(lead).__getitem__, values))
-    return [f"{lead}{len(str(v))}\r\n{v}" for v in values]
+    return [_count_piece(lead, v) for v in values]
 
 
 _LEAD_TABLE = max(MAX_KEY_BYTES, MAX_ID_BYTES) + 1  # lengths up to the longest key or id
