@@ -16,7 +16,8 @@ Order inside the transaction (MULTI/EXEC: other clients see all of it or none of
 8. the renewal of the worker's lease on the namespace (``stream/lease.py``).
 
 Many entries of one stream (plain questions, decisions) are plain ``XADD`` commands
-formatted as RESP for the whole batch at once (:class:`Prepacked`, :func:`xadd_entries`):
+formatted as RESP for the whole batch at once (:class:`Prepacked`; :func:`xadd_entries`
+in general, specialised from the columns for questions and decisions):
 Redis parses queued commands before EXEC, whereas a script calling XADD does all its work
 inside the transaction, about three times the server time per entry. Scripts go as
 ``EVAL`` (not ``EVALSHA``), so a script cache emptied by a Redis restart can never fail one
