@@ -275,3 +275,102 @@ def test_refs_read_back_like_the_list_of_tuples_they_stand_for(ops: list) -> Non
     for bad in (len(model), -len(model) - 1):
         with pytest.raises(IndexError):
             refs[bad]
+
+
+# Good values, and values near every check of the whole-batch paths: empty, at and past
+# each byte limit (in ASCII and in two-byte characters), control characters, NUL, a
+# character of four bytes. A generated batch is good but for at most one poisoned value.
+_GOOD = st.sampled_from(["k1", "k2", "shard-7", "é", "x" * 32, "é" * 64, "\U0001f600"])
+_EDGES_TEXT = ["", "x" * 33, "x" * 128, "x" * 129, "x" * 256, "x" * 257, "é" * 65, "é" * 128,
+               "é" * 129, "a\0b", "a\x7f", "a\x85", "a\nb", "\x1f", "\0"]
+_BAD_OTHER = [None, 0, 1, 2, True, False, b"k", b"k\xff", "1", "0", "yes", b"1", b"2"]
+_POISON = st.none() | st.tuples(st.integers(0, 5), st.integers(0, 5), st.one_of(
+    st.sampled_from(_EDGES_TEXT + _BAD_OTHER),
+    st.text(alphabet=st.sampled_from("ab\0\x1fé\x85 "), max_size=6)))
+
+
+def _decoded(d: codec.Decoded) -> tuple:
+    """All a decoding gives, the answer columns as the journal writes them (bools stay
+    bools)."""
+    c = d.cols
+    return (msgpack.packb([c.a, c.b, c.same, c.source, c.qid]), d.aids, list(d.origins),
+            d.missing, [(x.fields, x.reason, x.kind, x.origin) for x in d.dead])
+
+
+def _slow(name: str, entries: list) -> tuple:
+    """The entries decoded with the fast path ``name`` turned off."""
+    with pytest.MonkeyPatch.context() as m:
+        m.setattr(codec, name, lambda *args: False)
+        return _decoded(decode_answers(S, entries))
+
+
+def _rows(good: list, poison: tuple | None) -> list:
+    rows = [list(r) for r in good]
+    if poison is not None:
+        i, j, bad = poison
+        rows[i % len(rows)][j % len(rows[0])] = bad
+    return rows
+
+
+@given(good=st.lists(st.tuples(_GOOD, _GOOD, st.sampled_from([b"1", b"0"]), _GOOD, _GOOD),
+                     min_size=1, max_size=6), poison=_POISON,
+       shape=st.sampled_from(["usual", "aid", "mixed", "missing"]))
+def test_plain_fast_path_decodes_like_the_entry_by_entry_path(good: list, poison: tuple | None,
+                                                             shape: str) -> None:
+    """Raw plain entries (the usual field order read by position, or any other read by
+    name) decode exactly as entry by entry, good and bad alike: the same answers, aids,
+    origins and dead letters with their reasons."""
+    entries = _plain_entries(_rows(good, poison), shape)
+    assert _decoded(decode_answers(S, entries)) == _slow("_fast_answers", entries)
+
+
+def _plain_entries(rows: list, shape: str) -> list:
+    """Raw entries of these rows (a, b, same, source, qid) in the usual field order, or
+    with an aid in other orders (``shape``); a value Redis could not hold becomes bytes."""
+    entries = []
+    for i, row in enumerate(rows):
+        a, b, same, src, qid = (x.encode() if isinstance(x, str) else x for x in row)
+        if not all(isinstance(x, bytes) for x in (a, b, same, src, qid)):
+            a = b"k\xff"  # (a value Redis could not hold: make it bytes that are not UTF-8)
+            same = same if isinstance(same, bytes) else b"2"
+            src, qid = (x if isinstance(x, bytes) else b"s" for x in (src, qid))
+            b = b if isinstance(b, bytes) else b"kb"
+        f = [b"a", a, b"b", b, b"same", same, b"source", src, b"qid", qid]
+        if shape == "aid" or (shape == "mixed" and i % 2):
+            f[8:] = [b"aid", qid, b"qid", qid]
+        if shape == "missing" and i == len(rows) - 1:
+            f = f[2:] if i % 2 else None
+        entries.append([f"{i}-0".encode(), f])
+    return entries
+
+
+@given(good=st.lists(st.tuples(_GOOD, _GOOD, st.sampled_from([0, 1, True, False]),
+                               _GOOD | st.none(), _GOOD | st.none(), _GOOD | st.none()),
+                     min_size=1, max_size=6), poison=_POISON,
+       absent=st.sets(st.sampled_from(["source", "qid", "aid"])))
+def test_column_pack_fast_path_decodes_like_the_element_by_element_path(
+        good: list, poison: tuple | None, absent: set) -> None:
+    """A column pack checked whole decodes exactly as element by element: same answers,
+    aids, origins and dead letters, whatever mix of good and bad values it holds."""
+    entries = _column_entries(_rows(good, poison), absent)
+    assert _decoded(decode_answers(S, entries)) == _slow("_fast_columns", entries)
+
+
+def _column_entries(rows: list, absent: set) -> list:
+    cols = {k: [r[j] for r in rows] for j, k in enumerate(codec.COLUMN_FIELDS)
+            if k not in absent}
+    return [(b"9-0", {b"pack": msgpack.packb(cols, use_bin_type=True)})]
+
+
+def test_every_edge_value_in_every_field_decodes_like_the_slow_paths() -> None:
+    """Each edge value, in each field of an otherwise good batch, decodes as the entry by
+    entry (plain) and element by element (column pack) paths decode it."""
+    plain = [("k1", "k2", b"1", "s1", "q1"), ("shard-7", "é", b"0", "s2", "q2")]
+    packed = [("k1", "k2", 1, "s1", "q1", "p1"), ("shard-7", "é", True, None, "q2", None)]
+    for bad in _EDGES_TEXT + _BAD_OTHER:
+        for j in range(6):
+            for shape in ("usual", "aid") if j < 5 else ():
+                entries = _plain_entries(_rows(plain, (1, j, bad)), shape)
+                assert _decoded(decode_answers(S, entries)) == _slow("_fast_answers", entries)
+            entries = _column_entries(_rows(packed, (1, j, bad)), set())
+            assert _decoded(decode_answers(S, entries)) == _slow("_fast_columns", entries)

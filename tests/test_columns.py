@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hiredis
 import msgpack
 import numpy as np
 from hypothesis import example, given, settings
@@ -13,7 +14,15 @@ from streamgroup.core.engine import Engine
 from streamgroup.core.keyindex import KeyIndex, cache_size_for
 from streamgroup.core.types import Answer, AnswerColumns, EngineConfig, RecordColumns
 from streamgroup.sim.crowd import Crowd
-from streamgroup.stream.commit import assign_value, assign_values, decision_values
+from streamgroup.stream.commit import (
+    DECISION_FIELDS,
+    assign_command,
+    assign_value,
+    assign_values,
+    decision_entries,
+    decision_values,
+    xadd_entries,
+)
 
 KEY = st.text(st.characters(blacklist_categories=("Cc", "Cs")), min_size=1, max_size=40)
 
@@ -181,6 +190,12 @@ def test_assign_values_decode_like_the_one_record_form(n: int, seed: int) -> Non
     # reference packer, msgpack-python's packb, writes for the same map
     rc.answers, rc.rev = rc.answers % 128, rc.rev % 128
     assert assign_values(rc) == [assign_value(r) for r in rc.rows()]
+    # the batch's HSET, formatted whole: what hiredis packs for the keys and values
+    for keys in (rc.keys, [k + "é" * (i % 3) + "k" * (i % 300) for i, k in enumerate(rc.keys)]):
+        rc.keys = keys
+        flat = [x for r in rc.rows() for x in (r.key, assign_value(r))]
+        assert assign_command("{t}:assign", rc) == hiredis.pack_command(
+            ("HSET", "{t}:assign", *flat))
     # the decisions stream's fields, from the columns, as from the records one by one
     pos = sorted(rng.choice(n, size=int(rng.integers(0, n + 1)), replace=False).tolist())
     want: list[object] = []
@@ -189,6 +204,12 @@ def test_assign_values_decode_like_the_one_record_form(n: int, seed: int) -> Non
                  int(r.answers), int(r.rev))
     got = decision_values(rc, pos)
     assert got == want and [type(v) for v in got] == [type(v) for v in want]
+    # and formatted as XADDs straight from the columns: what the generic formatter writes,
+    # for counts within the table and beyond it
+    for key, extra in (("{t}:decisions", 0), ("{t}:dé", 4000)):
+        rc.answers = rc.answers + extra
+        assert decision_entries(key, 50, rc, pos) == xadd_entries(
+            key, 50, DECISION_FIELDS, decision_values(rc, pos))
 
 
 def test_engine_column_calls_equal_row_calls() -> None:

@@ -165,6 +165,26 @@ def test_a_failing_command_is_named_and_the_connection_stays_in_step(
     assert r.ping() is True
 
 
+@pytest.mark.parametrize("parser", PARSERS)
+def test_replies_of_a_large_transaction_are_read_in_full(redis_url: str, parser: type) -> None:
+    """A transaction whose replies span many socket reads (20,000 queued commands) gets
+    every reply in order, an error among them is named, and the connection stays in step;
+    a command sent first is answered first."""
+    r = _client(redis_url, parser)
+    r.set("{tc}:str", b"x")
+    cmds: list = [("INCR", "{tc}:big") for _ in range(20_000)]
+    cmds[12_345] = ("INCR", "{tc}:str")
+    plan = CommitPlan(cmds)
+    send(r, plan, first=("GET", "{tc}:str"))
+    assert r.connection is not None and r.connection.read_response() == b"x"
+    with pytest.raises(CommitError, match="INCR: value is not an integer"):
+        receive(r, plan)
+    assert r.get("{tc}:big") == b"19999" and r.ping() is True
+    plan = CommitPlan(cmds[:12_345])
+    send(r, plan)
+    assert receive(r, plan) == list(range(20_000, 32_345))
+
+
 def test_an_older_snapshot_never_lands_over_a_newer_one(redis_url: str) -> None:
     """The snapshot write is guarded by the batch number it covers. A cut AOF can make
     Redis 7.0 run an old transaction's surviving commands later, in front of a newer
@@ -218,3 +238,22 @@ def test_resp_command_writes_what_hiredis_writes(head: list[str], args: list[byt
     table-made length headers; byte for byte what the reference packer,
     ``hiredis.pack_command``, writes for the same command, long args included."""
     assert resp_command(tuple(head), args) == hiredis.pack_command((*head, *args))
+
+
+@settings(max_examples=60, deadline=None)
+@given(rows=st.lists(st.tuples(st.text(min_size=1, max_size=8), st.text(min_size=1, max_size=300),
+                               st.sampled_from(["seed", "place", "check", "plaçe"]),
+                               st.sampled_from([5, 77, 10**12])), min_size=1, max_size=30),
+       one_time=st.booleans())
+def test_question_entries_pack_what_hiredis_packs(rows: list, one_time: bool) -> None:
+    """The batch's questions formatted in one go are, byte for byte, the XADDs that the
+    reference packer (``hiredis.pack_command``) writes one by one, whether the batch has
+    one time or several."""
+    ts = [rows[0][3]] * len(rows) if one_time else [r[3] for r in rows]
+    qc = QuestionColumns([str(i) for i in range(len(rows))], [r[0] for r in rows],
+                         [r[1] for r in rows], [r[2] for r in rows], ts)
+    (entries,) = _question_entries("{tc}:q", 0, qc)
+    assert entries.blob == b"".join(
+        hiredis.pack_command(("XADD", "{tc}:q", "*", "qid", q, "a", a, "b", b, "why", w,
+                              "ts", t))
+        for q, a, b, w, t in zip(qc.qid, qc.a, qc.b, qc.why, qc.ts_ms, strict=True))

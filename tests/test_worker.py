@@ -232,6 +232,21 @@ def test_restart_resumes_exactly_from_snapshot_and_journal(redis_url: str) -> No
     w2.close()
 
 
+def test_a_restart_counts_the_stored_journal_and_snapshot_against_the_journal_bound(
+        redis_url: str) -> None:
+    """The journal left in Redis (replayed, still there) and the snapshot under it are where
+    a restarted worker's journal bound starts from, not zero: the bound on the journal's
+    memory and replay time holds across restarts."""
+    r, w = _run_steps(redis_url, 150, seed=5, steps=20, batch=20, snapshot_every=3600)
+    w.close()
+    stored = sum(len(f[b"b"]) for _, f in r.xrange(K.journal))
+    assert stored > 0
+    w2 = Worker(settings(redis_url, batch=20, snapshot_every=3600))
+    w2.start()
+    assert w2._journal_bytes == stored and w2._snapshot_bytes == len(r.get(K.snapshot))
+    w2.close()
+
+
 def test_state_without_epoch_is_refused(redis_url: str) -> None:
     """Assignments without the epoch key stop the worker with a StateError, not a reset."""
     r = redis.Redis.from_url(redis_url)

@@ -91,7 +91,7 @@ def _apply_answers(state: WorkerState, cols: AnswerColumns, aids: list[str | Non
                    origins: Sequence[Ref], stream: str, now_ms: int, out: Outcome) -> None:
     counts, batch = out.counts, out.batch
     window = state.aids
-    if any(a is not None for a in aids):
+    if aids.count(None) != len(aids):  # some answer carries an aid
         keep: list[int] = []
         fresh: set[str] = set()
         for pos, aid in enumerate(aids):

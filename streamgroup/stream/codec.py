@@ -26,12 +26,14 @@ from __future__ import annotations
 
 import bisect
 import itertools
+import operator
 import re
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 import msgpack
+import numpy as np
 
 from ..core.types import Answer, AnswerColumns
 from ..keys import (
@@ -278,6 +280,7 @@ def _fast_answers(entries: Sequence[Entry], out: Decoded) -> bool:
     rows = []
     empty = b""
     layout = _PLAIN_LAYOUT
+    qid_missing = aid_given = False  # (only entries read by name can set these)
     for eid, f in entries:
         if type(f) is list:  # a raw reply: the usual field order is read by position
             if len(f) == 10 and f[0::2] == layout:
@@ -312,6 +315,8 @@ def _fast_answers(entries: Sequence[Entry], out: Decoded) -> bool:
             return False
         texts += (ra, rb, src, qid or empty, aid or empty)
         rows.append((eid, rs == b"1", qid is not None, aid is not None))
+        qid_missing = qid_missing or qid is None
+        aid_given = aid_given or aid is not None
     raw = b"\0".join(texts)
     try:
         text = raw.decode()
@@ -325,18 +330,21 @@ def _fast_answers(entries: Sequence[Entry], out: Decoded) -> bool:
     cols = out.cols
     cols.a += parts[0::5]
     cols.b += parts[1::5]
-    cols.same += [r[1] for r in rows]
+    cols.same += map(_ROW_SAME, rows)
     cols.source += parts[2::5]
-    if all(r[2] for r in rows):
-        cols.qid += parts[3::5]
-    else:
+    if qid_missing:
         cols.qid += [q if r[2] else None for q, r in zip(parts[3::5], rows, strict=True)]
-    if any(r[3] for r in rows):
+    else:
+        cols.qid += parts[3::5]
+    if aid_given:
         out.aids += [x if r[3] else None for x, r in zip(parts[4::5], rows, strict=True)]
     else:
         out.aids += [None] * len(rows)
-    out.origins += [r[0] for r in rows]
+    out.origins += map(_ROW_EID, rows)
     return True
+
+
+_ROW_EID, _ROW_SAME = operator.itemgetter(0), operator.itemgetter(1)  # of _fast_answers' rows
 
 
 def decode_answers(stream: str, entries: Sequence[Entry]) -> Decoded:
@@ -476,35 +484,45 @@ def _fast_columns(a: list[Any], b: list[Any], s: list[Any], optional: list[list[
                   eid: bytes, out: Decoded) -> bool:
     """Check and add answer columns at once (source, qid and aid in ``optional``; None
     where absent). Returns False, having added nothing, if any value needs a closer look."""
-    if set(map(type, a)) != {str} or set(map(type, b)) != {str} or any(map(str.__eq__, a, b)):
-        return False
-    if ("" in a or "" in b  # (all str: the fastest test for an empty one)
-            or max(map(len, a)) > _FAST_CHARS or max(map(len, b)) > _FAST_CHARS):
-        return False
-    if not set(map(type, s)) <= {bool, int} or not set(s) <= {0, 1}:
-        return False
     texts = a + b
     for col in optional:
-        kinds = set(map(type, col))
-        if not kinds <= {str, type(None)}:
-            return False
-        if str in kinds:
-            given = [v for v in col if v is not None] if type(None) in kinds else col
-            if "" in given or max(map(len, given)) > _FAST_CHARS:
-                return False
-            texts += given
-    if has_control(" ".join(texts)):
+        texts += [v for v in col if v is not None] if None in col else col
+    if not _short_texts(texts) or any(map(operator.eq, a, b)):
+        return False
+    same_types = set(map(type, s))
+    if not same_types <= {bool, int} or not set(s) <= {0, 1}:
         return False
     src, qid, aid = optional
     dst = out.cols
     dst.a += a
     dst.b += b
-    dst.same += [x is True or x == 1 for x in s]
+    dst.same += s if same_types == {bool} else map(bool, s)  # (0 and 1 only, checked above)
     dst.source += ["" if v is None else v for v in src] if None in src else src
     dst.qid += qid
     out.aids += aid
     out.origins.add_pack(eid, len(a))
     return True
+
+
+def _short_texts(texts: list[Any]) -> bool:
+    """Whether every value is a str of 1 to ``_FAST_CHARS`` characters without a control
+    character. They are joined by NUL (which proves they are all str); ASCII text (the
+    usual case) is then measured by numpy from the positions of the NULs, which must be
+    exactly the separators."""
+    try:
+        joined = "\0".join(texts)
+    except TypeError:  # some value is not a str (bytes, a number, nil in a or b)
+        return False
+    if has_control(joined, nul_ok=True):
+        return False
+    if not joined.isascii():
+        return ("" not in texts and max(map(len, texts)) <= _FAST_CHARS
+                and joined.count("\0") == len(texts) - 1)
+    ends = np.flatnonzero(np.frombuffer(joined.encode("ascii"), dtype=np.uint8) == 0)
+    if len(ends) != len(texts) - 1:  # a NUL inside a value
+        return False
+    sizes = np.diff(ends, prepend=-1, append=len(joined)) - 1
+    return bool(sizes.min() > 0) and bool(sizes.max() <= _FAST_CHARS)
 
 
 def _decode_pack(stream: str, eid: bytes, fields: dict[bytes, bytes], pack: bytes,

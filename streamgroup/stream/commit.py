@@ -16,7 +16,8 @@ Order inside the transaction (MULTI/EXEC: other clients see all of it or none of
 8. the renewal of the worker's lease on the namespace (``stream/lease.py``).
 
 Many entries of one stream (plain questions, decisions) are plain ``XADD`` commands
-formatted as RESP for the whole batch at once (:class:`Prepacked`, :func:`xadd_entries`):
+formatted as RESP for the whole batch at once (:class:`Prepacked`; :func:`xadd_entries`
+in general, specialised from the columns for questions and decisions):
 Redis parses queued commands before EXEC, whereas a script calling XADD does all its work
 inside the transaction, about three times the server time per entry. Scripts go as
 ``EVAL`` (not ``EVALSHA``), so a script cache emptied by a Redis restart can never fail one
@@ -36,6 +37,7 @@ loses the oldest entries (a lost question is simply re-issued after the question
 from __future__ import annotations
 
 import functools
+import itertools
 import operator
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -98,32 +100,63 @@ def _prefixes(labels: tuple[str, ...], status_names: tuple[str, ...]) -> list[by
     return [_prefix(side, status) for side in (None, *labels) for status in status_names]
 
 
-def assign_values(rc: RecordColumns) -> list[bytes]:
-    """``assign_value`` of every record of the columns, in order, without a loop per field."""
+def _assign_parts(rc: RecordColumns, suffix: bytes = b""
+                  ) -> tuple[list[bytes], list[int], list[bytes]]:
+    """Every record's value in two parts: a prefix from a table (``_prefixes``), the
+    record's index into it, and the record's tail (llr onwards, then ``suffix``)."""
     n = len(rc)
-    if n == 0:
-        return []
     prefixes = _prefixes(tuple(rc.labels), tuple(rc.status_names))
     code = (rc.side.astype(np.int64) + 1) * len(rc.status_names) + rc.status
     # (constant bytes, then the column's values in this dtype), in map order
-    parts: list[tuple[bytes, np.ndarray, str]] = [(b"", rc.llr, ">f8")]
+    parts: list[tuple[bytes, np.ndarray | None, str]] = [(b"", rc.llr, ">f8")]
     for key, col in (("answers", rc.answers), ("rev", rc.rev)):
         marker, dtype = _uint_column(col)
         parts.append((_KEYS[key] + marker, col, dtype))
     parts.append((_KEYS["pinned"], np.where(rc.pinned, 0xC3, 0xC2), "u1"))  # true / false
-    width = sum(len(c) + np.dtype(dt).itemsize for c, _, dt in parts)
-    tail = np.empty((n, width), dtype=np.uint8)
+    parts.append((suffix, None, "V0"))
+    # every row starts as the constants with zeros for the values, then each column of
+    # values is written over its zeros
+    row = b"".join(const + bytes(np.dtype(dt).itemsize) for const, _, dt in parts)
+    tail = np.empty((n, len(row)), dtype=np.uint8)
+    tail[:] = np.frombuffer(row, dtype=np.uint8)
     at = 0
     for const, col, dtype in parts:
-        tail[:, at:at + len(const)] = np.frombuffer(const, dtype=np.uint8)
         at += len(const)
-        size = np.dtype(dtype).itemsize
-        tail[:, at:at + size] = col.astype(dtype).view(np.uint8).reshape(n, size)
-        at += size
+        if col is not None:
+            size = np.dtype(dtype).itemsize
+            tail[:, at:at + size] = col.astype(dtype).view(np.uint8).reshape(n, size)
+            at += size
+    width = len(row)
     # The tails as the rows of a fixed-width bytes array: numpy would drop trailing NULs
-    # when it hands them out, but every tail ends in the pinned flag (0xC2 or 0xC3).
-    tails = tail.view(f"S{width}").ravel().tolist()
-    return list(map(operator.add, map(prefixes.__getitem__, code.tolist()), tails))
+    # when it hands them out, but every tail ends in the pinned flag (0xC2 or 0xC3) or in
+    # the suffix's LF.
+    return prefixes, code.tolist(), tail.view(f"S{width}").ravel().tolist()
+
+
+def assign_values(rc: RecordColumns) -> list[bytes]:
+    """``assign_value`` of every record of the columns, in order, without a loop per field."""
+    if not len(rc):
+        return []
+    prefixes, code, tails = _assign_parts(rc)
+    return list(map(operator.add, map(prefixes.__getitem__, code), tails))
+
+
+def assign_command(key: str, rc: RecordColumns) -> bytes:
+    """The ``HSET key`` of every record (item key, ``assign_value``) in RESP form, as
+    :func:`resp_command` writes it, with no bytes object made per value: a record is its
+    key's length line, the key, its value's length line and prefix (one per kind of
+    prefix, the tails being of one width) and its tail with the closing CRLF, all joined
+    once."""
+    keys = list(map(str.encode, rc.keys))
+    prefixes, code, tails = _assign_parts(rc, b"\r\n")
+    width = len(tails[0]) - 2 if tails else 0
+    leads = [b"\r\n$%d\r\n%s" % (len(p) + width, p) for p in prefixes]
+    pieces: list[bytes] = [b""] * (4 * len(keys))
+    pieces[0::4] = _bulk_heads(keys, b"\r\n")
+    pieces[1::4] = keys
+    pieces[2::4] = map(leads.__getitem__, code)
+    pieces[3::4] = tails
+    return _resp_start(("HSET", key), 2 * len(keys)) + b"".join(pieces)
 
 
 DECISION_FIELDS = ("key", "side", "status", "llr", "answers", "rev")
@@ -131,14 +164,16 @@ DECISION_FIELDS = ("key", "side", "status", "llr", "answers", "rev")
 
 def decision_values(rc: RecordColumns, positions: Sequence[int]) -> list[Any]:
     """The fields ``DECISION_FIELDS`` of the records at ``positions``, flat, row after row
-    (key, side or "", status, llr as ``repr`` of a float, answers, rev)."""
+    (key, side or "", status, llr as ``repr`` of a float, answers, rev). The reference of
+    what a decision holds: the commit formats them straight from the columns
+    (:func:`decision_entries`)."""
     idx = np.asarray(positions, dtype=np.int64)
     names = (*rc.labels, "")
     n = len(idx)
     vals: list[Any] = [None] * (6 * n)
-    vals[0::6] = [rc.keys[k] for k in idx.tolist()]
-    vals[1::6] = [names[s] for s in rc.side[idx].tolist()]
-    vals[2::6] = [rc.status_names[s] for s in rc.status[idx].tolist()]
+    vals[0::6] = map(rc.keys.__getitem__, idx.tolist())
+    vals[1::6] = map(names.__getitem__, rc.side[idx].tolist())
+    vals[2::6] = map(rc.status_names.__getitem__, rc.status[idx].tolist())
     vals[3::6] = list(map(repr, rc.llr[idx].astype(np.float64).tolist()))
     vals[4::6] = rc.answers[idx].astype(np.int64).tolist()
     vals[5::6] = rc.rev[idx].astype(np.int64).tolist()
@@ -263,13 +298,22 @@ def _question_entries(key: str, cap: int, qc: QuestionColumns) -> list[Command |
     """
     leads = _field_leads(key, QUESTION_FIELDS)
     why_lead, ts_lead = leads[3][0], leads[4][0]
-    tails = {(w, t): f"{why_lead}{_utf8_len(w)}\r\n{w}\r\n{ts_lead}{len(str(t))}\r\n{t}"
-             for w, t in set(zip(qc.why, qc.ts_ms, strict=True))}
+
+    def tail(why: str, ts: int) -> str:
+        return f"{why_lead}{_utf8_len(why)}\r\n{why}\r\n{ts_lead}{len(str(ts))}\r\n{ts}"
+
+    ts = qc.ts_ms
+    if ts.count(ts[0]) == len(ts):  # one time for the batch (the usual case): keyed by why
+        kinds: list[Any] = qc.why
+        tails = {w: tail(w, ts[0]) for w in set(kinds)}
+    else:
+        kinds = list(zip(qc.why, ts, strict=True))
+        tails = {wt: tail(*wt) for wt in set(kinds)}
     pieces: list[Any] = [None] * (7 * len(qc))
     pieces[1::7] = qc.qid
     pieces[3::7] = qc.a
     pieces[5::7] = qc.b
-    pieces[6::7] = map(tails.__getitem__, zip(qc.why, qc.ts_ms, strict=True))
+    pieces[6::7] = map(tails.__getitem__, kinds)
 
     def formatted(size: Callable[[str], int]) -> str:
         for at, col, lead in zip((0, 2, 4), (qc.qid, qc.a, qc.b), leads, strict=False):
@@ -306,6 +350,58 @@ def xadd_entries(key: str, cap: int, names: Sequence[str],
         return "\r\n".join(pieces) + "\r\n"
 
     return _prepacked(key, cap, rows, formatted)
+
+
+def decision_entries(key: str, cap: int, rc: RecordColumns,
+                     positions: Sequence[int]) -> list[Command | Prepacked]:
+    """What ``xadd_entries(key, cap, DECISION_FIELDS, decision_values(rc, positions))``
+    writes, formatted from the columns: a row's side and status come as one piece from a
+    table of their few pairs, its answers and rev from a table of small counts, so a row
+    is seven pieces of one join, and only its key and llr are measured."""
+    idx = np.asarray(positions, dtype=np.int64)
+    leads = _field_leads(key, DECISION_FIELDS)
+    keys = list(map(rc.keys.__getitem__, idx.tolist()))
+    llrs = list(map(repr, rc.llr[idx].astype(np.float64).tolist()))
+    kinds = ((rc.side[idx].astype(np.int64) + 1) * len(rc.status_names)
+             + rc.status[idx]).tolist()
+    pieces: list[Any] = [None] * (7 * len(keys))
+    pieces[1::7] = keys
+    pieces[4::7] = llrs
+    pieces[5::7] = _count_pieces(leads[4][0], rc.answers[idx])
+    pieces[6::7] = _count_pieces(leads[5][0], rc.rev[idx])
+    side_lead, status_lead = leads[1][0], leads[2][0]
+
+    def formatted(size: Callable[[str], int]) -> str:
+        pairs = [f"{side_lead}{size(side)}\r\n{side}\r\n{status_lead}{size(status)}\r\n{status}"
+                 for side in ("", *rc.labels) for status in rc.status_names]  # by kind
+        pieces[0::7] = _length_heads(leads[0], keys, size)
+        pieces[2::7] = map(pairs.__getitem__, kinds)
+        pieces[3::7] = _length_heads(leads[3], llrs, size)
+        return "\r\n".join(pieces) + "\r\n"
+
+    return _prepacked(key, cap, len(keys), formatted)
+
+
+_COUNT_TABLE = 4096  # counts below this are formatted from a table
+
+
+def _count_piece(lead: str, count: int) -> str:
+    """``lead``, then the count's length, CRLF and text (as ``str`` writes it)."""
+    return f"{lead}{len(str(count))}\r\n{count}"
+
+
+@functools.lru_cache(maxsize=16)
+def _count_table(lead: str) -> list[str]:
+    """``_count_piece`` of each count below ``_COUNT_TABLE``."""
+    return [_count_piece(lead, v) for v in range(_COUNT_TABLE)]
+
+
+def _count_pieces(lead: str, counts: np.ndarray) -> list[str]:
+    """``_count_piece`` of each count (integers), from the table when all are in it."""
+    values = counts.astype(np.int64).tolist()
+    if values and min(values) >= 0 and max(values) < _COUNT_TABLE:
+        return list(map(_count_table(lead).__getitem__, values))
+    return [_count_piece(lead, v) for v in values]
 
 
 _LEAD_TABLE = max(MAX_KEY_BYTES, MAX_ID_BYTES) + 1  # lengths up to the longest key or id
@@ -346,23 +442,34 @@ def _prepacked(key: str, cap: int, count: int,
     return out
 
 
-_BULK_HEADS = [b"$%d" % n for n in range(4096)]
+_BULK_HEADS = {b"": [b"$%d" % n for n in range(4096)],
+               b"\r\n": [b"$%d\r\n" % n for n in range(4096)]}
+
+
+def _bulk_heads(args: Sequence[bytes], end: bytes = b"") -> list[bytes]:
+    """The length header (``$n``, then ``end``) of each arg, from a table when it can."""
+    try:
+        return list(map(_BULK_HEADS[end].__getitem__, map(len, args)))
+    except IndexError:  # an arg of 4 KiB or more
+        return [b"$%d%s" % (len(a), end) for a in args]
+
+
+def _resp_start(head: Command, more: int) -> bytes:
+    """The RESP of the command ``head`` followed by ``more`` args not written yet."""
+    start = hiredis.pack_command(head)
+    return b"*%d" % (len(head) + more) + start[start.index(b"\r\n"):]
 
 
 def resp_command(head: Command, args: Sequence[bytes]) -> bytes:
     """The RESP form of the command ``*head, *args`` (``args``: bytes, often hundreds),
     as ``hiredis.pack_command`` writes it, about twice as fast: the args go in by one join
     on CRLF with each length header taken from a table."""
-    start = hiredis.pack_command(head)
-    start = b"*%d" % (len(head) + len(args)) + start[start.index(b"\r\n"):]
+    start = _resp_start(head, len(args))
     if not args:
         return start
     pieces: list[bytes] = [b""] * (2 * len(args))
     pieces[1::2] = args
-    try:
-        pieces[0::2] = map(_BULK_HEADS.__getitem__, map(len, args))
-    except IndexError:  # an arg of 4 KiB or more
-        pieces[0::2] = [b"$%d" % len(a) for a in args]
+    pieces[0::2] = _bulk_heads(args)
     return start + b"\r\n".join(pieces) + b"\r\n"
 
 
@@ -404,10 +511,14 @@ class CommitPlan:
                 out.append(str(c[0]))
         return out
 
+    def pieces(self) -> list[bytes]:
+        """The commands in RESP form, one piece each, as sent between MULTI and EXEC."""
+        return [c.blob if isinstance(c, Prepacked) else hiredis.pack_command(c)
+                for c in self.commands]
+
     def packed(self) -> bytes:
-        """The commands in RESP form, as sent between MULTI and EXEC."""
-        return b"".join([c.blob if isinstance(c, Prepacked) else hiredis.pack_command(c)
-                         for c in self.commands])
+        """The commands in RESP form, joined."""
+        return b"".join(self.pieces())
 
 
 def build_commit(
@@ -434,14 +545,10 @@ def build_commit(
     if epoch is not None:
         cmds.append(("SET", keys.epoch, epoch))
     if records is not None and len(records):
-        flat: list[Any] = [None] * (2 * len(records))
-        flat[0::2] = map(str.encode, records.keys)
-        flat[1::2] = assign_values(records)
-        cmds.append(Prepacked("HSET", resp_command(("HSET", keys.assign), flat), 1))
+        cmds.append(Prepacked("HSET", assign_command(keys.assign, records), 1))
     if decisions:
         assert records is not None
-        cmds += xadd_entries(keys.decisions, caps.decisions, DECISION_FIELDS,
-                             decision_values(records, decisions))
+        cmds += decision_entries(keys.decisions, caps.decisions, records, decisions)
     if questions is not None and len(questions):
         qc = questions
         if pack_questions:
@@ -502,7 +609,7 @@ def send(client: redis.Redis, plan: CommitPlan, first: Command | None = None) ->
     if conn is None:
         raise RuntimeError("the worker's client must be a single-connection client")
     blob = b"".join([*((hiredis.pack_command(first),) if first is not None else ()),
-                     _MULTI, plan.packed(), _EXEC])
+                     _MULTI, *plan.pieces(), _EXEC])  # one copy of the commands, not two
     conn.send_packed_command([blob], check_health=False)
 
 
@@ -528,15 +635,18 @@ def _replies(conn: Any, count: int) -> list[Any]:
         return out
     out = []
     gets = reader.gets
-    while len(out) < count:
-        reply = gets()
-        if reply is _NOT_ENOUGH_DATA:
-            parser.read_from_socket()
-        elif isinstance(reply, ConnectionError):
-            raise reply
-        else:
-            out.append(reply)
-    return out
+    while True:
+        # the replies already in the reader's buffer, gathered without a Python-level step
+        # per reply (iter() stops at the "no complete reply yet" marker)
+        got = list(itertools.islice(iter(gets, _NOT_ENOUGH_DATA), count - len(out)))
+        if _any_error(got):
+            lost = [x for x in got if isinstance(x, ConnectionError)]
+            if lost:
+                raise lost[0]
+        out += got
+        if len(out) >= count:
+            return out
+        parser.read_from_socket()
 
 
 def receive(client: redis.Redis, plan: CommitPlan) -> list[Any]:

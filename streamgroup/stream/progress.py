@@ -9,13 +9,12 @@ seconds, and a progress sample goes to ``{NS}:history`` every ``history_every`` 
 from __future__ import annotations
 
 import time
-from collections import Counter
 from typing import Any
 
 import msgpack
 import redis
 
-from ..keys import GROUP, Keys
+from ..keys import GROUP, WHYS, Keys
 from ..serve.metrics import WorkerMetrics
 from ..settings import Settings
 from .batch import Outcome
@@ -61,8 +60,10 @@ class Progress:
             for stream, d in out.dead:
                 m.entries_rejected.labels(stream=stream.rsplit(":", 1)[-1],
                                           reason=d.kind).inc()
-            if len(out.questions):
-                for why, k in Counter(out.questions.why).items():
+            whys = out.questions.why
+            for why in WHYS if whys else ():  # (a count per kind: no hashing per question)
+                k = whys.count(why)
+                if k:
                     m.questions_issued.labels(why=why).inc(k)
             take = getattr(state.engine, "take_latencies", None) if state else None
             if take is not None:

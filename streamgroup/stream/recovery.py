@@ -142,14 +142,15 @@ def _create(client: redis.Redis, keys: Keys, settings: Settings, clock: Any) -> 
     return state
 
 
-def journal_entries(client: redis.Redis, keys: Keys) -> Iterator[Batch]:
+def journal_entries(client: redis.Redis, keys: Keys) -> Iterator[tuple[Batch, int]]:
+    """Every journal entry, in order: the batch and the size of its entry in bytes."""
     start = "-"
     while True:
         rows = client.xrange(keys.journal, min=start, max="+", count=JOURNAL_CHUNK)
         if not rows:
             return
         for _eid, fields in rows:
-            yield Batch.from_journal(fields[b"b"])
+            yield Batch.from_journal(fields[b"b"]), len(fields[b"b"])
         start = "(" + rows[-1][0].decode()
 
 
@@ -162,11 +163,12 @@ def replay_journal(client: redis.Redis, keys: Keys, state: WorkerState) -> int:
     cut broke off and run them at a later load in front of the next transaction, which
     after a restart is the worker's redo of that same batch, read again and perhaps split
     into batches differently. The batches after it were built on the redo, so the redo is
-    what replay applies.
+    what replay applies. The entries' bytes are added to ``state.journal_size``.
     """
     n = 0
     held: Batch | None = None
-    for batch in journal_entries(client, keys):
+    for batch, size in journal_entries(client, keys):
+        state.journal_size += size
         if held is not None and batch.seq == held.seq:
             log.warning("the journal holds two entries for one batch; the later one is "
                         "kept (a transaction cut short, replayed by Redis)", ns=keys.ns,

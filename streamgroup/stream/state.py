@@ -111,6 +111,10 @@ class WorkerState:
         self.seq = 0
         self.aids = AidWindow(aid_window)
         self.counters: Counter[str] = Counter()
+        # what this state was loaded from, as it lies in Redis: the snapshot's bytes and
+        # the journal's replayed on top of it (the worker's journal bound counts both)
+        self.snapshot_size = 0
+        self.journal_size = 0
 
     # -- applying -----------------------------------------------------------------------
     def apply_items(self, items: list[tuple[str, str | None]]) -> list[str]:
@@ -169,6 +173,7 @@ class WorkerState:
             raise StateError(f"the snapshot belongs to epoch {m['epoch']!r}, but the "
                              f"namespace's epoch is {epoch!r}: the state is inconsistent")
         st = WorkerState(Engine.restore(m["engine"]), epoch, aid_window)
+        st.snapshot_size = len(data)
         st.seq = int(m["seq"])
         st.aids.extend(m["aids"])
         st.counters.update(m["counters"])

@@ -273,7 +273,10 @@ class Worker:
         self._next_claim = 0.0
         now = self.clock()
         self._next_snapshot = now + self.settings.snapshot_every
-        self._journal_bytes = 0
+        # the journal in Redis (replayed, not dropped) and the snapshot under it count
+        # from the start: the bound below holds across restarts too
+        self._journal_bytes = self.state.journal_size
+        self._snapshot_bytes = self.state.snapshot_size
         self.progress.metrics, self.progress.health = self.metrics, self.health
         self.progress.reset(self.state)
         self._log.info("state loaded", seq=self.state.seq, epoch=self.state.epoch,
