@@ -134,13 +134,13 @@ def test_recount_equals_the_answer_by_answer_sum() -> None:
     b = (a + rng.integers(1, n_items, n_ans)) % n_items
     src = rng.integers(0, 3, n_ans)
     same = rng.random(n_ans) < 0.5
-    idx = led.append_answers(a, b, src, same)
+    rows = led.append_answers(a, b, src, same)
     llr0 = led.item("llr").copy()  # the partners' evidence both passes discount by
     led.recompute(DELTA, SE)
     full = led.item("llr").copy()
     led.items["llr"][:n_items] = llr0
     t_small = []
-    for part in np.array_split(idx, 7):
+    for part in np.array_split(np.arange(rows.start, rows.stop), 7):
         target, step, _ = led._contributions(part, DELTA, SE)
         t_small.append((target, step))
     side, pinned = led.item("side"), led.item("pinned")
