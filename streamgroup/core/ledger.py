@@ -10,6 +10,7 @@ groups (plus "none of these yet"); the answer store and the directions stay as t
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -18,6 +19,17 @@ from .columns import ONE_I32, Columns
 from .evidence import answer_weights, reference_eps
 
 UNPLACED = -1
+
+
+@dataclass(slots=True)
+class Counted:
+    """(answer, counted endpoint) pairs: the endpoint the evidence is for, the other
+    one, the answer's source, and the sign of its vote on the target (+1 or -1)."""
+
+    target: np.ndarray
+    partner: np.ndarray
+    src: np.ndarray
+    sign: np.ndarray
 
 _ITEM_FIELDS: dict[str, tuple[Any, Any]] = {
     "side": (np.int8, UNPLACED),
@@ -85,15 +97,13 @@ class Ledger:
         return rows
 
     # -- evidence -------------------------------------------------------------
-    def _contributions(self, idx: np.ndarray | slice, delta: np.ndarray, se: np.ndarray,
-                       trust_partners: bool = False
-                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """(target, step, sensitivity) for every (answer, counted endpoint) among ``idx``.
-
-        The sensitivity is signed like the answer's vote, so that answers of one source
-        add up (their bias errors are shared) while those of different sources do not.
-        """
+    def counted_pairs(self, idx: np.ndarray | slice | None = None) -> Counted:
+        """The (answer, counted endpoint) pairs among answers ``idx`` (default: every
+        answer, as views), apart from their weights: what a recount of unchanged
+        placements and directions can share between several sets of weights."""
         ans = self.answers
+        if idx is None:
+            idx = slice(0, self.n_answers)
         a, b, d = ans["a"][idx], ans["b"][idx], ans["direction"][idx]
         src, same = ans["src"][idx], ans["same"][idx]
         for_a = (d & 1).view(np.bool_)  # bit 1, as 0/1 bytes: a bool mask as it is
@@ -110,9 +120,17 @@ class Ledger:
             return out
 
         target, partner = both(a, b), both(b, a)
-        s = both(src, src)
-        x = both(same, same).astype(np.float64)
-        side = self.items["side"]
+        sign = 2.0 * self.items["side"][partner]  # x (2 side - 1), in place
+        sign -= 1.0
+        sign *= both(same, same)
+        return Counted(target, partner, both(src, src), sign)
+
+    def _weigh(self, pairs: Counted, delta: np.ndarray, se: np.ndarray,
+               trust_partners: bool = False) -> tuple[np.ndarray, np.ndarray]:
+        """(step, sensitivity) of each pair: the sensitivity is signed like the answer's
+        vote, so that answers of one source add up (their bias errors are shared) while
+        those of different sources do not."""
+        partner, s = pairs.partner, pairs.src
         if trust_partners:
             eps = np.zeros(len(partner))
         elif len(partner) > self.n_items:
@@ -122,12 +140,16 @@ class Ledger:
         else:
             eps = reference_eps(self.items["llr"][partner], self.items["pinned"][partner])
         w, spread = answer_weights(delta[s], se[s], eps)
-        sign = 2.0 * side[partner]  # x (2 side - 1), then times w and spread, in place
-        sign -= 1.0
-        sign *= x
-        w *= sign
-        spread *= sign
-        return target, w, spread
+        w *= pairs.sign
+        spread *= pairs.sign
+        return w, spread
+
+    def _contributions(self, idx: np.ndarray | slice, delta: np.ndarray, se: np.ndarray,
+                       trust_partners: bool = False
+                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(target, step, sensitivity) for every (answer, counted endpoint) among ``idx``."""
+        pairs = self.counted_pairs(idx)
+        return (pairs.target, *self._weigh(pairs, delta, se, trust_partners))
 
     def count(self, idx: np.ndarray | slice, delta: np.ndarray, se: np.ndarray
               ) -> np.ndarray:
@@ -142,20 +164,28 @@ class Ledger:
         np.add.at(self.items["count"], target, ONE_I32)
         return target
 
-    def recompute(self, delta: np.ndarray, se: np.ndarray, settle: bool = False) -> None:
+    def recompute(self, delta: np.ndarray, se: np.ndarray, settle: bool = False,
+                  pairs: Counted | None = None, llr_only: bool = False) -> None:
         """Rebuild every item's evidence from all counted answers (after new weights).
 
         Each answer is discounted by its partner's chance of being wrong, read from the
         partner's current evidence; ``settle`` first builds that evidence without the
-        discount, for items placed together whose evidence is not known yet.
+        discount, for items placed together whose evidence is not known yet. ``pairs``:
+        :meth:`counted_pairs` of every answer, if the caller has it (placements and
+        directions unchanged since). ``llr_only``: rebuild the evidence alone, for a
+        step whose other sums a later full recount replaces.
         """
         n = self.n_items
-        idx = slice(0, self.n_answers)  # every answer: views, not gathers
+        if pairs is None:
+            pairs = self.counted_pairs()
+        target = pairs.target
         if settle:
-            target, step, _ = self._contributions(idx, delta, se, trust_partners=True)
+            step, _ = self._weigh(pairs, delta, se, trust_partners=True)
             self.items["llr"][:n] = np.bincount(target, weights=step, minlength=n)[:n]
-        target, step, spread = self._contributions(idx, delta, se)
+        step, spread = self._weigh(pairs, delta, se)
         self.items["llr"][:n] = np.bincount(target, weights=step, minlength=n)[:n]
+        if llr_only:
+            return
         self.items["s1"][:n] = np.bincount(target, weights=spread, minlength=n)[:n]
         self.items["s2"][:n] = np.bincount(target, weights=spread * spread, minlength=n)[:n]
         self.items["count"][:n] = np.bincount(target, minlength=n)[:n]

@@ -76,8 +76,13 @@ def fit(ledger: Ledger, delta: np.ndarray, se: np.ndarray, iterations: int = 3,
     result = NoiseFit(delta, se, np.zeros(n_sources), 0.0, SE_NEW)
     if cold:
         result = m_step(ledger, n_sources, hard_posterior(ledger))
+    # placements and directions stay as they are during a fit: every recount shares one
+    # list of counted pairs, and those before the last need only the evidence (m_step
+    # reads nothing else; the last recount writes every sum)
+    pairs = ledger.counted_pairs()
     for k in range(iterations):
-        ledger.recompute(result.delta, result.se, settle=cold and k == 0)
+        ledger.recompute(result.delta, result.se, settle=cold and k == 0, pairs=pairs,
+                         llr_only=True)
         result = m_step(ledger, n_sources)
-    ledger.recompute(result.delta, result.se)
+    ledger.recompute(result.delta, result.se, pairs=pairs)
     return result
