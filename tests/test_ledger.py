@@ -202,3 +202,32 @@ def test_fit_sharing_its_pairs_equals_full_recounts(seed: int, iterations: int,
     assert (got.pooled, got.pooled_se) == (want.pooled, want.pooled_se)
     for name in ("llr", "s1", "s2", "count"):
         assert ledgers[0].item(name).tobytes() == ledgers[1].item(name).tobytes()
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.integers(0, 2**32 - 1))
+def test_m_step_equals_its_formula(seed: int) -> None:
+    """m_step takes 2 p - 1 per item and gathers it per answer: the same biases as the
+    formula written per answer."""
+    r = np.random.default_rng(seed)
+    n_items, n_ans, n_src = 25, 150, 3
+    led = Ledger()
+    led.add_items(n_items)
+    led.items["side"][:n_items] = r.integers(-1, 2, n_items)
+    led.items["llr"][:n_items] = r.normal(0, 3, n_items)
+    a = r.integers(0, n_items, n_ans)
+    b = (a + r.integers(1, n_items, n_ans)) % n_items
+    led.append_answers(a, b, r.integers(0, n_src, n_ans), r.random(n_ans) < 0.5)
+    p = noise.side_posterior(led)
+    got = noise.m_step(led, n_src)
+    counted = led.answer("direction") != 0
+    ca, cb = led.answer("a")[counted], led.answer("b")[counted]
+    src = led.answer("src")[counted]
+    x = led.answer("same")[counted].astype(np.float64)
+    rel = (2.0 * p[ca] - 1.0) * (2.0 * p[cb] - 1.0)
+    agree = np.bincount(src, weights=x * rel, minlength=n_src)
+    info = np.bincount(src, weights=rel * rel, minlength=n_src)
+    total = np.bincount(src, minlength=n_src).astype(np.float64)
+    want = np.clip(agree / (total + noise.PRIOR), -0.995, 0.995)
+    assert got.delta.tobytes() == want.tobytes()
+    assert got.answers.tobytes() == info.tobytes()

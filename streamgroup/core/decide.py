@@ -99,7 +99,9 @@ class DecideMixin:
         llr = self.ledger.items["llr"][idx[loose]]
         nxt = decision_error(np.abs(llr) + self._best_step(), spread[loose])
         e = err[loose]
-        pi = np.clip((alpha - nxt) / np.maximum(e - nxt, 1e-300), 0.0, 1.0)
+        pi = (alpha - nxt) / np.maximum(e - nxt, 1e-300)
+        np.maximum(pi, 0.0, out=pi)  # clipped to [0, 1] (np.clip has a costly wrapper)
+        np.minimum(pi, 1.0, out=pi)
         count = self.ledger.items["count"][idx[loose]].astype(np.uint64)
         coin = planner.uniform(idx[loose].astype(np.uint64) * np.uint64(1 << 20) + count,
                               29 + self._salt)

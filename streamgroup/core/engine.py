@@ -184,7 +184,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
     def take_update_columns(self) -> tuple[RecordColumns, list[int]]:
         """:meth:`take_updates` as columns: (changed records, positions of the decisions)."""
         it = self.items
-        dirty = np.nonzero(it.view("dirty"))[0]
+        dirty = it.view("dirty").nonzero()[0]
         out = self._record_columns(dirty)
         side, status = out.side, out.status
         seen = it["shown_status"][dirty]
@@ -193,7 +193,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         it["dirty"][dirty] = False
         it["shown_side"][dirty] = side
         it["shown_status"][dirty] = status
-        return out, np.nonzero(moved)[0].tolist()
+        return out, moved.nonzero()[0].tolist()
 
     def take_latencies(self) -> list[float]:
         """Seconds from first question to commit, for items committed since the last call."""

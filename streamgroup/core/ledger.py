@@ -86,12 +86,15 @@ class Ledger:
         ans["a"][rows] = a
         ans["b"][rows] = b
         ans["src"][rows] = src
-        ans["same"][rows] = np.where(same, 1, -1)
+        vote = np.array(same, dtype=np.int8)  # a copy: +1 same, -1 different
+        vote *= 2
+        vote -= 1
+        ans["same"][rows] = vote
         side = self.items["side"]
         direction = (side[a] != UNPLACED) * np.int8(2)  # counts for b (bit 2) if a is placed
         direction += side[b] != UNPLACED  # and for a (bit 1) if b is
         ans["direction"][rows] = direction
-        waiting = np.flatnonzero(direction == 0)
+        waiting = (direction == 0).nonzero()[0]
         if len(waiting):
             self.pending = np.concatenate([self.pending, start + waiting])
         return rows

@@ -53,7 +53,8 @@ def m_step(ledger: Ledger, n_sources: int, p: np.ndarray | None = None) -> Noise
     x = ledger.answer("same")[counted].astype(np.float64)
     if p is None:
         p = side_posterior(ledger)
-    r = (2.0 * p[a] - 1.0) * (2.0 * p[b] - 1.0)  # expected relation sign: +1 same, -1 different
+    lean = 2.0 * p - 1.0  # per item, then gathered: the same values as per answer
+    r = lean[a] * lean[b]  # expected relation sign: +1 same, -1 different
     agree = np.bincount(src, weights=x * r, minlength=n_sources)
     info = np.bincount(src, weights=r * r, minlength=n_sources)
     total = np.bincount(src, minlength=n_sources).astype(np.float64)

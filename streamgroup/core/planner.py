@@ -35,7 +35,9 @@ def mix(x: np.ndarray | int) -> np.ndarray:
     """splitmix64: a stateless, well-spread hash; drives every planning 'coin'."""
     if type(x) is int and 0 <= x <= _M64:  # the salts: several per batch, ~9 us each in numpy
         return _mix_salt(x)  # type: ignore[return-value]
-    if np.ndim(x) == 0:  # numpy scalars (their arithmetic warns on overflow): as arrays
+    # (np.ndim(x) without its wrapper's cost: numpy scalars and other non-sequences)
+    scalar = x.ndim == 0 if isinstance(x, np.ndarray) else not isinstance(x, list | tuple)
+    if scalar:  # numpy scalars (their arithmetic warns on overflow): as arrays
         return mix(np.atleast_1d(np.asarray(x, dtype=np.uint64)))[0]
     # the same steps in place, in one buffer and one temporary (array arithmetic wraps
     # silently): half the time of a fresh array per step (~7 against ~14 us for 500)
