@@ -124,3 +124,17 @@ def test_answers_still_needed_equals_the_formula(llr: list[float], boundary: flo
         want = np.maximum(np.ceil(gap / step - 1e-9), 1).astype(np.int64)
     assert got.dtype == np.int64 and got.tolist() == want.tolist()
     assert x.tobytes() == before.tobytes()
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 10**6), st.integers(1, 4)), max_size=60),
+       st.integers(0, 120))
+def test_first_slots_equal_the_whole_repeat_cut_to_the_room(rows: list[tuple[int, int]],
+                                                           room: int) -> None:
+    """first_slots repeats only the candidates it needs: the same slots as repeating every
+    candidate and cutting to the room, and the count of candidates used up entirely."""
+    cand = np.array([c for c, _ in rows], dtype=np.int64)
+    each = np.array([e for _, e in rows], dtype=np.int64)
+    got, served = planner.first_slots(cand, each, room)
+    assert got.tolist() == np.repeat(cand, each)[:room].tolist()
+    assert served == int((np.cumsum(each) <= room).sum())

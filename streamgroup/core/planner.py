@@ -100,6 +100,17 @@ def slots(
     return np.maximum(room, 0)
 
 
+def first_slots(cand: np.ndarray, each: np.ndarray, room: int) -> tuple[np.ndarray, int]:
+    """The first ``room`` entries of ``cand`` with each one repeated ``each`` times, and
+    how many candidates they use up entirely.
+
+    Only the candidates up to the first one not used up are repeated: a round looks at
+    a chunk of several times its room, and repeating all of it costs more than the rest.
+    """
+    served = int(each.cumsum().searchsorted(room, side="right"))
+    return cand[:served + 1].repeat(each[:served + 1])[:room], served
+
+
 def slot_ranks(targets: np.ndarray) -> np.ndarray:
     """For each entry, how many earlier entries name the same target (0, 1, 2, ...).
 

@@ -138,9 +138,7 @@ class QuestionsMixin:
         cand, each = cand[some], each[some]
         if len(cand) == 0:
             return empty, empty
-        ends = each.cumsum()
-        served = int(ends.searchsorted(room, side="right"))
-        targets = cand.repeat(each)[:room]
+        targets, served = planner.first_slots(cand, each, room)
         return targets.astype(np.int64, copy=False), cand[served:].astype(np.int64, copy=False)
 
     def _nudge(self, idx: np.ndarray) -> None:
