@@ -122,7 +122,8 @@ class IntakeMixin:
                     qid_bad.setdefault(with_q[k], err)
                 elif q.isascii() and len(q) < 19:
                     qn[k] = int(q)
-        issued = (qn >= 0) & (qn < self.q.n)
+        # parsed digits are never negative; the fallback marks an unusable qid with -1
+        issued = qn < self.q.n if parsed is not None else (qn >= 0) & (qn < self.q.n)
         every = np.count_nonzero(issued) == count  # each answer names an issued qid
         safe = qn if every else np.where(issued, qn, 0)
         t, p = self.q["target"][safe], self.q["partner"][safe]  # each qid's pair

@@ -31,6 +31,7 @@ class Counted:
     src: np.ndarray
     sign: np.ndarray
 
+
 _ITEM_FIELDS: dict[str, tuple[Any, Any]] = {
     "side": (np.int8, UNPLACED),
     "llr": (np.float64, 0.0),
