@@ -8,7 +8,7 @@ import msgpack
 import numpy as np
 import pytest
 import zstandard
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 from scipy.stats import beta as beta_dist
 from scipy.stats import binom
@@ -16,7 +16,7 @@ from scipy.stats import binom
 from streamgroup.core import sprt
 from streamgroup.core.codes import Q_EXPIRED, Q_OPEN
 from streamgroup.core.engine import Engine
-from streamgroup.core.types import Answer, EngineConfig
+from streamgroup.core.types import Answer, AnswerColumns, EngineConfig
 from streamgroup.errors import EngineInputError
 from streamgroup.sim import Crowd, mixed_sources
 
@@ -464,3 +464,62 @@ def test_source_ids_equal_the_order_of_first_appearance(batches: list[list[str]]
     first = list(dict.fromkeys(names))
     assert eng.source_names == first
     assert eng.ledger.answer("src").tolist() == [first.index(s) for s in names]
+
+
+def _checked(eng: Engine, cols: AnswerColumns) -> tuple[object, ...]:
+    """What _check_answers makes of a batch: its arrays, or the refusal's message."""
+    try:
+        got = eng._check_answers(cols)
+    except EngineInputError as exc:
+        return ("refused", str(exc))
+    return (got.keys, got.both.tolist(), got.unknown.tolist(), got.same.tolist(),
+            got.with_q.tolist(), got.qn.tolist(), None if got.src is None else got.src.tolist())
+
+
+@settings(max_examples=150, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 39), st.sampled_from(
+    ["right", "right", "right", "swapped", "other qid", "no qid", "unknown qid", "bad qid",
+     "stranger", "same item", "new source"])), min_size=1, max_size=30))
+@example([(0, "right"), (3, "right"), (3, "right")])
+def test_answer_checks_skipped_for_confirmed_pairs_equal_the_full_checks(
+        rows: list[tuple[int, str]]) -> None:
+    """When every answer names an issued qid and its keys are that question's, the intake
+    skips the checks such answers always pass. Batches mixing right and wrong answers must
+    give what the full checks give (the same arrays, or the same first refusal), and the
+    guess built for such a batch must equal the one built answer by answer."""
+    crowd = Crowd(60, delta=0.6, seed=3)
+    eng = Engine(EngineConfig(max_outstanding=10**6))
+    eng.add_items((k, None) for k in crowd.keys)
+    qs = eng.plan(0)
+    eng.add_answers([Answer(q.a, q.b, True, "s0", q.qid) for q in qs[:5]], 0)  # answered
+    cols = AnswerColumns.empty()
+    for k, kind in rows:
+        q = qs[k]
+        ans = Answer(q.a, q.b, k % 2 == 0, "s0", q.qid)
+        if kind == "swapped":
+            ans = ans._replace(a=q.b, b=q.a)
+        elif kind == "other qid":
+            ans = ans._replace(qid=qs[(k + 7) % len(qs)].qid)
+        elif kind == "no qid":
+            ans = ans._replace(qid=None)
+        elif kind == "unknown qid":
+            ans = ans._replace(qid="987654")
+        elif kind == "bad qid":
+            ans = ans._replace(qid="12a")
+        elif kind == "stranger":
+            ans = ans._replace(b=f"stranger-{k}")
+        elif kind == "same item":
+            ans = ans._replace(b=q.a)
+        elif kind == "new source":
+            ans = ans._replace(source=f"s{k}")
+        cols.append(ans)
+    fast = _checked(eng, cols)
+    plain_lookup = eng.keys.lookup_guessed
+    eng.keys.lookup_guessed = lambda keys, guess: plain_lookup(keys, guess).copy()
+    assert fast == _checked(eng, cols)  # a copy is never ``guess``: every check runs
+    count = len(qs)
+    qn = np.array([int(q.qid) for q in qs], dtype=np.int64)
+    t, p = eng.q["target"][qn], eng.q["partner"][qn]
+    args = (qn, t, p, np.arange(count), np.ones(count, dtype=bool))
+    assert (eng._pair_guess(*args, True, count).tolist()
+            == eng._pair_guess(*args, False, count).tolist())

@@ -6,6 +6,7 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from streamgroup.core import noise
 from streamgroup.core.evidence import _GH_W, _GH_Z, answer_weights, decision_error
 from streamgroup.core.ledger import UNPLACED, Ledger
 
@@ -134,13 +135,13 @@ def test_recount_equals_the_answer_by_answer_sum() -> None:
     b = (a + rng.integers(1, n_items, n_ans)) % n_items
     src = rng.integers(0, 3, n_ans)
     same = rng.random(n_ans) < 0.5
-    idx = led.append_answers(a, b, src, same)
+    rows = led.append_answers(a, b, src, same)
     llr0 = led.item("llr").copy()  # the partners' evidence both passes discount by
     led.recompute(DELTA, SE)
     full = led.item("llr").copy()
     led.items["llr"][:n_items] = llr0
     t_small = []
-    for part in np.array_split(idx, 7):
+    for part in np.array_split(np.arange(rows.start, rows.stop), 7):
         target, step, _ = led._contributions(part, DELTA, SE)
         t_small.append((target, step))
     side, pinned = led.item("side"), led.item("pinned")
@@ -159,3 +160,74 @@ def test_recount_equals_the_answer_by_answer_sum() -> None:
                             minlength=n_items)
     np.testing.assert_allclose(full, want, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(got_small, want, rtol=1e-12, atol=1e-12)
+
+
+def _plain_fit(led: Ledger, delta: np.ndarray, se: np.ndarray, iterations: int,
+               cold: bool) -> noise.NoiseFit:
+    """noise.fit written out with a full recount (its own pairs, every sum) each time."""
+    result = noise.NoiseFit(delta, se, np.zeros(len(delta)), 0.0, noise.SE_NEW)
+    if cold:
+        result = noise.m_step(led, len(delta), noise.hard_posterior(led))
+    for k in range(iterations):
+        led.recompute(result.delta, result.se, settle=cold and k == 0)
+        result = noise.m_step(led, len(delta))
+    led.recompute(result.delta, result.se)
+    return result
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.integers(0, 2**32 - 1), st.integers(1, 3), st.booleans())
+def test_fit_sharing_its_pairs_equals_full_recounts(seed: int, iterations: int,
+                                                    cold: bool) -> None:
+    """A fit lists the counted pairs once and rebuilds only the evidence before its last
+    recount: the biases it learns and every item's sums must be those of full recounts."""
+    rng = np.random.default_rng(seed)
+    n_items, n_ans, n_src = 30, 200, 4
+    ledgers = []
+    for _ in range(2):
+        led = Ledger()
+        led.add_items(n_items)
+        r = np.random.default_rng(seed)
+        led.items["side"][:n_items] = r.integers(-1, 2, n_items)
+        led.items["pinned"][:n_items] = r.random(n_items) < 0.2
+        a = r.integers(0, n_items, n_ans)
+        b = (a + r.integers(1, n_items, n_ans)) % n_items
+        led.append_answers(a, b, r.integers(0, n_src, n_ans), r.random(n_ans) < 0.6)
+        ledgers.append(led)
+    delta, se = rng.uniform(-0.5, 0.9, n_src), rng.uniform(0.01, 0.3, n_src)
+    got = noise.fit(ledgers[0], delta, se, iterations=iterations, cold=cold)
+    want = _plain_fit(ledgers[1], delta, se, iterations, cold)
+    for name in ("delta", "se", "answers"):
+        assert getattr(got, name).tobytes() == getattr(want, name).tobytes()
+    assert (got.pooled, got.pooled_se) == (want.pooled, want.pooled_se)
+    for name in ("llr", "s1", "s2", "count"):
+        assert ledgers[0].item(name).tobytes() == ledgers[1].item(name).tobytes()
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.integers(0, 2**32 - 1))
+def test_m_step_equals_its_formula(seed: int) -> None:
+    """m_step takes 2 p - 1 per item and gathers it per answer: the same biases as the
+    formula written per answer."""
+    r = np.random.default_rng(seed)
+    n_items, n_ans, n_src = 25, 150, 3
+    led = Ledger()
+    led.add_items(n_items)
+    led.items["side"][:n_items] = r.integers(-1, 2, n_items)
+    led.items["llr"][:n_items] = r.normal(0, 3, n_items)
+    a = r.integers(0, n_items, n_ans)
+    b = (a + r.integers(1, n_items, n_ans)) % n_items
+    led.append_answers(a, b, r.integers(0, n_src, n_ans), r.random(n_ans) < 0.5)
+    p = noise.side_posterior(led)
+    got = noise.m_step(led, n_src)
+    counted = led.answer("direction") != 0
+    ca, cb = led.answer("a")[counted], led.answer("b")[counted]
+    src = led.answer("src")[counted]
+    x = led.answer("same")[counted].astype(np.float64)
+    rel = (2.0 * p[ca] - 1.0) * (2.0 * p[cb] - 1.0)
+    agree = np.bincount(src, weights=x * rel, minlength=n_src)
+    info = np.bincount(src, weights=rel * rel, minlength=n_src)
+    total = np.bincount(src, minlength=n_src).astype(np.float64)
+    want = np.clip(agree / (total + noise.PRIOR), -0.995, 0.995)
+    assert got.delta.tobytes() == want.tobytes()
+    assert got.answers.tobytes() == info.tobytes()

@@ -7,6 +7,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from streamgroup.core import planner
+from streamgroup.core.columns import strictly_increasing
 from streamgroup.core.intake import digits_to_int64
 
 
@@ -91,3 +92,49 @@ def test_swap_coin_is_the_uniform_below_one_half(xs: list[int], salt: int) -> No
     edge = np.array([(1 << 63) - 1, 1 << 63, ((1 << 63) - 1) ^ 0x7FF], dtype=np.uint64)
     f = (edge >> np.uint64(11)).astype(np.float64) / float(1 << 53)
     assert (f < 0.5).tolist() == (edge < np.uint64(1 << 63)).tolist()
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.integers(0, 40), max_size=60), st.booleans())
+def test_slot_ranks_of_sorted_and_distinct_targets(targets: list[int], distinct: bool) -> None:
+    """A round's targets usually come sorted and distinct, where slot_ranks returns zeros
+    without sorting: the same ranks as the plain count, with repeats or without."""
+    values = sorted(set(targets)) if distinct else sorted(targets)
+    t = np.array(values, dtype=np.int64)
+    rising = all(x < y for x, y in zip(values[:-1], values[1:], strict=True))
+    assert strictly_increasing(t) == rising
+    got = planner.slot_ranks(t)
+    assert got.dtype == np.int64
+    assert got.tolist() == [values[:k].count(x) for k, x in enumerate(values)]
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.floats(-50, 50), max_size=40), st.floats(0.5, 12),
+       st.one_of(st.just(0.0), st.floats(0.05, 3)))
+def test_answers_still_needed_equals_the_formula(llr: list[float], boundary: float,
+                                                 step: float) -> None:
+    """answers_still_needed works in one buffer; it must give the plain expression's counts."""
+    x = np.array(llr, dtype=np.float64)
+    before = x.copy()
+    got = planner.answers_still_needed(x, boundary, step)
+    if step <= 0:
+        want = np.ones(len(x), dtype=np.int64)
+    else:
+        gap = np.maximum(boundary - np.abs(x), 0.0)
+        want = np.maximum(np.ceil(gap / step - 1e-9), 1).astype(np.int64)
+    assert got.dtype == np.int64 and got.tolist() == want.tolist()
+    assert x.tobytes() == before.tobytes()
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 10**6), st.integers(1, 4)), max_size=60),
+       st.integers(0, 120))
+def test_first_slots_equal_the_whole_repeat_cut_to_the_room(rows: list[tuple[int, int]],
+                                                           room: int) -> None:
+    """first_slots repeats only the candidates it needs: the same slots as repeating every
+    candidate and cutting to the room, and the count of candidates used up entirely."""
+    cand = np.array([c for c, _ in rows], dtype=np.int64)
+    each = np.array([e for _, e in rows], dtype=np.int64)
+    got, served = planner.first_slots(cand, each, room)
+    assert got.tolist() == np.repeat(cand, each)[:room].tolist()
+    assert served == int((np.cumsum(each) <= room).sum())

@@ -52,11 +52,24 @@ class Columns:
         return sum(a.nbytes for a in self.data.values())
 
 
+# On the hot path numpy is called through array methods (a.searchsorted, a.argsort,
+# a.take, a.nonzero, a.compress ...) and np.count_nonzero rather than the np.* functions
+# and a.any() / a.all(), whose Python wrappers cost more than the work on a batch of 50
+# (e.g. 0.3 against 0.9 us for a searchsorted, 0.1 against 0.7 us for an any): the same C
+# code, the same results.
+
+
+def strictly_increasing(x: np.ndarray) -> bool:
+    """Whether each value of the integer array ``x`` is above the one before it."""
+    return len(x) < 2 or not np.count_nonzero(x[1:] <= x[:-1])
+
+
 def uniq(x: np.ndarray) -> np.ndarray:
     """Sorted distinct values (a plain sort: faster than np.unique's hashing for ints)."""
     if len(x) < 2:
         return np.asarray(x, dtype=np.int64)
-    y = np.sort(x)
+    y = np.array(x)
+    y.sort()
     first = np.empty(len(y), dtype=bool)  # not np.r_: its index parsing costs ~7 us a call
     first[0] = True
     np.not_equal(y[1:], y[:-1], out=first[1:])
@@ -68,9 +81,9 @@ def first_occurrence(x: np.ndarray) -> np.ndarray:
     ``np.unique(x, return_index=True)`` marks, in fewer calls). A strictly increasing ``x``,
     the usual batch of qids, is settled by one comparison."""
     count = len(x)
-    if count < 2 or bool((x[1:] > x[:-1]).all()):
+    if strictly_increasing(x):
         return np.ones(count, dtype=bool)
-    order = np.argsort(x, kind="stable")  # stable: the first of a run is the earliest
+    order = x.argsort(kind="stable")  # stable: the first of a run is the earliest
     ordered = x[order]
     run_start = np.empty(count, dtype=bool)
     run_start[0] = True
@@ -85,7 +98,8 @@ def insert_sorted(a: np.ndarray, pos: np.ndarray, values: np.ndarray) -> np.ndar
     given): the same array, without np.insert's argsort of the positions and its checks."""
     out = np.empty(len(a) + len(values), dtype=a.dtype)
     at = pos + np.arange(len(values))
-    keep = np.ones(len(out), dtype=bool)
+    keep = np.empty(len(out), dtype=bool)
+    keep.fill(True)
     keep[at] = False
     out[at] = values
     out[keep] = a
@@ -99,9 +113,9 @@ def union_sorted(a: np.ndarray, b: np.ndarray) -> np.ndarray:
         return np.asarray(a, dtype=np.int64)
     if len(a) == 0:
         return np.asarray(b, dtype=np.int64)
-    pos = np.searchsorted(a, b)
-    known = a[np.minimum(pos, len(a) - 1)] == b
-    return insert_sorted(a, pos[~known], b[~known]).astype(np.int64, copy=False)
+    pos = a.searchsorted(b)
+    new = a.take(pos, mode="clip") != b
+    return insert_sorted(a, pos[new], b[new]).astype(np.int64, copy=False)
 
 
 class SortedQueue:
@@ -156,14 +170,14 @@ class SortedQueue:
         # k values of one run bound the answer: the other run's values above its k-th
         # cannot be among the k smallest (the union of both prefixes is cut to k anyway)
         if len(a) == k:
-            b = b[:int(np.searchsorted(b, a[-1], side="right"))]
+            b = b[:int(b.searchsorted(a[-1], side="right"))]
         if len(b) == k:
-            a = a[:int(np.searchsorted(a, b[-1], side="right"))]
+            a = a[:int(a.searchsorted(b[-1], side="right"))]
         out = union_sorted(a, b)[:k]
         if len(out):
             last = out[-1]
-            self.big = self.big[int(np.searchsorted(a, last, side="right")):]
-            self.small = self.small[int(np.searchsorted(b, last, side="right")):]
+            self.big = self.big[int(a.searchsorted(last, side="right")):]
+            self.small = self.small[int(b.searchsorted(last, side="right")):]
         return out
 
     def values(self) -> np.ndarray:

@@ -45,14 +45,15 @@ class DecideMixin:
             llr = led["llr"][todo]
             spread = self.ledger.spread(todo, self.shared)
             err = decision_error(llr, spread)
-            lean = (llr > 0).astype(np.int8)
-            side = led["side"][todo]
+            open_ = led["side"][todo] == UNPLACED
             ok = err <= alpha
-            commit = self._may_commit(todo, err, spread, side == UNPLACED)
+            commit = self._may_commit(todo, err, spread, open_)
             newly = todo[commit]
-            flips = todo[ok & (side != UNPLACED) & (lean != side)]
+            # a placed item is here only if its evidence leans the other way (above): it
+            # flips once that is sure
+            flips = todo[ok & ~open_]
             if len(newly):
-                led["side"][newly] = lean[commit]
+                led["side"][newly] = llr[commit] > 0
                 self._committed(newly)
             ok |= commit
             if len(flips):
@@ -69,6 +70,8 @@ class DecideMixin:
                 todo = np.arange(len(self.keys))
             elif len(newly):
                 released = self.ledger.release_pending()
+                if not len(released):
+                    return
                 todo = self.ledger.count(released, self.delta, self.se)
                 self.items["dirty"][todo] = True  # held answers now count: new evidence
                 todo = uniq(todo)
@@ -91,12 +94,14 @@ class DecideMixin:
         alpha = self.config.alpha
         strict = open_ & (err <= alpha)
         loose = open_ & ~strict & (err <= alpha * (1.0 + self.config.alpha_slack))
-        if not loose.any():
+        if not np.count_nonzero(loose):
             return strict
         llr = self.ledger.items["llr"][idx[loose]]
         nxt = decision_error(np.abs(llr) + self._best_step(), spread[loose])
         e = err[loose]
-        pi = np.clip((alpha - nxt) / np.maximum(e - nxt, 1e-300), 0.0, 1.0)
+        pi = (alpha - nxt) / np.maximum(e - nxt, 1e-300)
+        np.maximum(pi, 0.0, out=pi)  # clipped to [0, 1] (np.clip has a costly wrapper)
+        np.minimum(pi, 1.0, out=pi)
         count = self.ledger.items["count"][idx[loose]].astype(np.uint64)
         coin = planner.uniform(idx[loose].astype(np.uint64) * np.uint64(1 << 20) + count,
                               29 + self._salt)
@@ -113,11 +118,12 @@ class DecideMixin:
         self.latencies.extend(((self.now_ms - asked) / 1000.0).tolist())
 
     def _give_up(self, idx: np.ndarray) -> None:
-        if len(idx) == 0:
-            return
         cnt = self.ledger.items["count"][idx]
+        full = cnt >= self.config.item_ceiling
+        if not np.count_nonzero(full):
+            return
         st = self.items["status"][idx]
-        stuck = idx[(cnt >= self.config.item_ceiling) & (st != PLACED) & (st != UNRESOLVED)]
+        stuck = idx[full & (st != PLACED) & (st != UNRESOLVED)]
         if len(stuck):
             self.items["status"][stuck] = UNRESOLVED
             self.items["dirty"][stuck] = True

@@ -49,7 +49,7 @@ from .codes import (
     WAITING,
     WHY_NAMES,
 )
-from .columns import ONE_I32, Columns, SortedQueue, first_occurrence
+from .columns import ONE_I32, Columns, SortedQueue, first_occurrence, strictly_increasing
 from .decide import DecideMixin
 from .intake import IntakeMixin
 from .keyindex import KeyIndex, cache_size_for
@@ -184,7 +184,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
     def take_update_columns(self) -> tuple[RecordColumns, list[int]]:
         """:meth:`take_updates` as columns: (changed records, positions of the decisions)."""
         it = self.items
-        dirty = np.nonzero(it.view("dirty"))[0]
+        dirty = it.view("dirty").nonzero()[0]
         out = self._record_columns(dirty)
         side, status = out.side, out.status
         seen = it["shown_status"][dirty]
@@ -193,7 +193,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         it["dirty"][dirty] = False
         it["shown_side"][dirty] = side
         it["shown_status"][dirty] = status
-        return out, np.nonzero(moved)[0].tolist()
+        return out, moved.nonzero()[0].tolist()
 
     def take_latencies(self) -> list[float]:
         """Seconds from first question to commit, for items committed since the last call."""
@@ -333,10 +333,11 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         (False: a duplicate). Same checks, same all-or-nothing refusal."""
         got = self._check_answers(answers)
         self.now_ms = max(self.now_ms, int(now_ms))
-        if not len(answers):
+        count = len(answers)
+        if not count:
             return np.zeros(0, dtype=bool)
-        a = self._register_missing(got.a_keys, got.ia)
-        b = self._register_missing(got.b_keys, got.ib)
+        both = self._register_missing(got.keys, got.both, got.unknown)  # a's, then b's
+        a, b = both[:count], both[count:]
         src = got.src if got.src is not None else self._source_ids(got.sources)
         same = got.same
         fresh = self.seen.add_new(pair_keys(a, b, src))
@@ -344,22 +345,27 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         # by its first answer even when that (pair, source) was heard before.
         with_q, qn = got.with_q, got.qn
         if len(with_q):
-            again = (self.q["state"][qn] == Q_ANSWERED) | ~first_occurrence(qn)
-            fresh[with_q[again]] = False
-            self._close_questions(qn[~again], Q_ANSWERED)
-        out = fresh
-        self.duplicates += int((~fresh).sum())
-        if not fresh.any():
-            return out
-        a, b, src, same = a[fresh], b[fresh], src[fresh], same[fresh]
-        self.spend += len(a)
-        both = np.concatenate([a, b])
+            again = self.q["state"][qn] == Q_ANSWERED
+            if not strictly_increasing(qn):  # a qid named twice: later answers are repeats
+                again |= ~first_occurrence(qn)
+            if np.count_nonzero(again):
+                fresh[with_q[again]] = False
+                qn = qn[~again]
+            self._close_questions(qn, Q_ANSWERED)
+        applied = int(np.count_nonzero(fresh))
+        self.duplicates += count - applied
+        if not applied:
+            return fresh
+        if applied < count:
+            a, b, src, same = a[fresh], b[fresh], src[fresh], same[fresh]
+            both = np.concatenate([a, b])
+        self.spend += applied
         self._touch(both)
         self._nudge(both)
         if self.phase == "boot":
             self._mark_block_answers(a, b)
-        idx = self.ledger.append_answers(a, b, src, same)
-        targets = self.ledger.count(idx, self.delta, self.se)
+        rows = self.ledger.append_answers(a, b, src, same)
+        targets = self.ledger.count(rows, self.delta, self.se)
         # only the items whose evidence moved have a new record (not a placed partner,
         # nor the two sides of an answer held until one of them is placed)
         self.items["dirty"][targets] = True
@@ -369,7 +375,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
                 self._decide(np.arange(len(self.keys)), ordered=True)
             else:
                 self._decide(targets)
-        return out
+        return fresh
 
     def _counted(self) -> int:
         return self.ledger.n_answers
@@ -378,18 +384,18 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         """Waiting items that are asked about, or answered, are asking now."""
         st = self.items["status"]
         waiting = idx[st[idx] == WAITING]
-        st[waiting] = ASKING
-        self.items["dirty"][waiting] = True
+        if len(waiting):
+            st[waiting] = ASKING
+            self.items["dirty"][waiting] = True
 
     def _close_questions(self, qn: np.ndarray, state: int) -> None:
         q = self.q
-        was_open = q["state"][qn] == Q_OPEN
-        opened = qn[was_open]
+        opened = qn[q["state"][qn] == Q_OPEN]
         self.outstanding -= len(opened)
         why = q["why"][opened]
-        place = opened[why == PLACE]  # only placement questions hold an item's slot
-        np.subtract.at(self.items["inflight"], q["target"][place], ONE_I32)
-        self._nudge(q["target"][place].astype(np.int64))
+        place = q["target"][opened[why == PLACE]]  # only placement questions hold a slot
+        np.subtract.at(self.items["inflight"], place, ONE_I32)
+        self._nudge(place)
         if state == Q_EXPIRED:
             seed = opened[why == SEED]  # a block pair not answered in time is asked again
             if len(seed):

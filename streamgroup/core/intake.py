@@ -13,17 +13,22 @@ from . import validate
 from .pairset import MAX_SOURCES
 from .types import Answer, AnswerColumns
 
+_NONE = np.zeros(0, dtype=np.int64)
 
-def digits_to_int64(texts: Sequence[str]) -> np.ndarray | None:
-    """The numbers written by ``texts`` (strings of at most 18 characters) if every one is
-    a non-empty string of ASCII digits, else None.
+
+def digits_to_int64(texts: Sequence[Any]) -> np.ndarray | None:
+    """The numbers written by ``texts`` if every one is a non-empty string of at most 18
+    ASCII digits, else None.
 
     The texts are checked as one joined string and parsed by numpy from one
     space-separated string: about a third of the time of a check per string and
     ``np.array(texts, dtype=int64)`` (~25 against ~75 us for 500 qids).
     """
-    joined = "".join(texts)
-    if not (joined.isdigit() and joined.isascii()):
+    try:
+        joined = "".join(texts)
+    except TypeError:  # something that is not text
+        return None
+    if not (joined.isdigit() and joined.isascii()) or max(map(len, texts)) > 18:
         return None
     out = np.fromstring(" ".join(texts), dtype=np.int64, sep=" ")
     return out if len(out) == len(texts) else None  # an empty text leaves no number
@@ -31,12 +36,11 @@ def digits_to_int64(texts: Sequence[str]) -> np.ndarray | None:
 
 @dataclass(slots=True)
 class Intake:
-    """One checked batch of answers, as arrays (indices -1 for keys not registered yet)."""
+    """One checked batch of answers, as arrays."""
 
-    a_keys: list[str]
-    b_keys: list[str]
-    ia: np.ndarray
-    ib: np.ndarray
+    keys: list[str]  # the a keys, then the b keys
+    both: np.ndarray  # their indices (a's, then b's), -1 for keys not registered yet
+    unknown: np.ndarray  # the positions of those -1s in ``both``
     sources: list[str]
     same: np.ndarray
     with_q: np.ndarray  # positions of answers that name a qid
@@ -66,13 +70,13 @@ class IntakeMixin:
                 return f"item {key!r} is already pinned to side {have!r}"
         return None
 
-    def _register_missing(self, keys: list[str], idx: np.ndarray) -> np.ndarray:
-        missing = idx < 0
-        if not missing.any():
+    def _register_missing(self, keys: list[str], idx: np.ndarray, unknown: np.ndarray
+                          ) -> np.ndarray:
+        """``idx`` with the keys at positions ``unknown`` (ascending) registered, in order."""
+        if not len(unknown):
             return idx
         out = idx.copy()
-        pos = np.nonzero(missing)[0]
-        out[pos] = self._register_many([keys[k] for k in pos.tolist()])
+        out[unknown] = self._register_many([keys[k] for k in unknown.tolist()])
         return out
 
     def validate_answer(self, ans: Any) -> str | None:
@@ -88,7 +92,10 @@ class IntakeMixin:
         """Raise EngineInputError at the first bad answer, else return the batch as arrays.
 
         Keys already registered were checked when they arrived, so the common case costs
-        a few vectorised operations per batch rather than string checks per answer.
+        a few vectorised operations per batch rather than string checks per answer. In the
+        usual batch every answer names an issued qid and its keys are those of the
+        question's pair (confirmed by string comparison): such keys are known, distinct
+        unless the pair is not, and match their question, so those checks are skipped.
         """
         count = len(answers)
         a_keys, b_keys = answers.a, answers.b
@@ -102,43 +109,42 @@ class IntakeMixin:
         else:
             with_q = [pos for pos, q in enumerate(qids) if q is not None]
             wq = np.asarray(with_q, dtype=np.int64)
-        qn = np.full(len(with_q), -1, dtype=np.int64)
         qid_bad: dict[int, str] = {}
-        if with_q:
-            texts = qids if len(with_q) == count else [qids[pos] for pos in with_q]
-            parsed = (digits_to_int64(texts)
-                      if set(map(type, texts)) == {str} and max(map(len, texts)) < 19
-                      else None)
-            if parsed is not None:
-                qn = parsed
-            else:
-                for k, q in enumerate(texts):
-                    err = validate.qid(q)
-                    if err:
-                        qid_bad.setdefault(with_q[k], err)
-                    elif q.isascii() and len(q) < 19:
-                        qn[k] = int(q)
-        issued = (qn >= 0) & (qn < self.q.n)
-        safe = np.where(issued, qn, 0)
+        texts = qids if len(with_q) == count else [qids[pos] for pos in with_q]
+        parsed = digits_to_int64(texts) if with_q else None
+        if parsed is not None:
+            qn = parsed
+        else:
+            qn = np.full(len(with_q), -1, dtype=np.int64)
+            for k, q in enumerate(texts):
+                err = validate.qid(q)
+                if err:
+                    qid_bad.setdefault(with_q[k], err)
+                elif q.isascii() and len(q) < 19:
+                    qn[k] = int(q)
+        # parsed digits are never negative; the fallback marks an unusable qid with -1
+        issued = qn < self.q.n if parsed is not None else (qn >= 0) & (qn < self.q.n)
+        every = np.count_nonzero(issued) == count  # each answer names an issued qid
+        safe = qn if every else np.where(issued, qn, 0)
         t, p = self.q["target"][safe], self.q["partner"][safe]  # each qid's pair
-        guess = np.full(2 * count, -1, dtype=np.int64)
-        if issued.any():
-            it, ip = t[issued], p[issued]
-            swap = self._shown_swapped(qn[issued])
-            at = wq[issued]
-            guess[at] = np.where(swap, ip, it)
-            guess[count + at] = np.where(swap, it, ip)
-        both = self.keys.lookup_guessed(a_keys + b_keys, guess)  # one call: half the costs
+        keys = a_keys + b_keys
+        guess = self._pair_guess(qn, t, p, wq, issued, every, count)
+        both = self.keys.lookup_guessed(keys, guess)  # one call: half the costs
+        held = every and both is guess  # every key is its question's
         ia, ib = both[:count], both[count:]
+        unknown = _NONE if held else (both < 0).nonzero()[0]
         bad: dict[int, str] = {}
-        for pos in np.nonzero((ia < 0) | (ib < 0))[0].tolist():
+        for pos in sorted({k % count for k in unknown.tolist()}):
             err = ((ia[pos] < 0 and validate.item_key(a_keys[pos], "a"))
                    or (ib[pos] < 0 and validate.item_key(b_keys[pos], "b")))
             if not err and a_keys[pos] == b_keys[pos]:
                 err = "a and b are the same item"
             if err:
                 bad[pos] = err
-        for pos in np.nonzero((ia == ib) & (ia >= 0))[0].tolist():
+        one_item = ia == ib
+        if len(unknown):
+            one_item &= ia >= 0
+        for pos in one_item.nonzero()[0].tolist():
             bad.setdefault(pos, "a and b are the same item")
         if set(map(type, flags)) - {bool}:
             for pos, f in enumerate(flags):
@@ -162,7 +168,7 @@ class IntakeMixin:
                         bad.setdefault(pos, err)
         for pos, err in qid_bad.items():
             bad.setdefault(pos, err)
-        if with_q:
+        if with_q and not held:
             for k in np.nonzero(~issued)[0].tolist():
                 bad.setdefault(with_q[k], f"qid {qids[with_q[k]]!r} is not one this "
                                           "worker issued")
@@ -175,7 +181,21 @@ class IntakeMixin:
             pos = min(bad)
             raise EngineInputError(f"answer {pos}: {bad[pos]}")
         same = np.array(flags, dtype=bool) if count else np.zeros(0, dtype=bool)
-        return Intake(a_keys, b_keys, ia, ib, names, same, wq, qn, src)
+        return Intake(keys, both, unknown, names, same, wq, qn, src)
+
+    def _pair_guess(self, qn: np.ndarray, t: np.ndarray, p: np.ndarray, wq: np.ndarray,
+                    issued: np.ndarray, every: bool, count: int) -> np.ndarray:
+        """The likely indices of the answers' keys (the a's, then the b's; -1 where no
+        issued qid says): its question's pair, in the order the question showed it."""
+        swap = self._shown_swapped(qn)
+        first, second = np.where(swap, p, t), np.where(swap, t, p)
+        if every:
+            return np.concatenate([first, second], dtype=np.int64)
+        guess = np.full(2 * count, -1, dtype=np.int64)
+        at = wq[issued]
+        guess[at] = first[issued]
+        guess[count + at] = second[issued]
+        return guess
 
     @staticmethod
     def _slot_for(side: str, labels: list[str | None]) -> int | None:

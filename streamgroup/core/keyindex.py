@@ -77,7 +77,7 @@ class KeyIndex:
             return [blob[o[i]:o[i + 1]].decode("utf-8") for i in idx.tolist()]
         slot = idx & (len(self._slot_idx) - 1)
         got = self._slot_key[slot]
-        miss = np.flatnonzero(self._slot_idx[slot] != idx)
+        miss = (self._slot_idx[slot] != idx).nonzero()[0]
         if len(miss):
             fill = np.fromiter(self._decode(idx[miss]), dtype=object, count=len(miss))
             got[miss] = fill
@@ -135,9 +135,11 @@ class KeyIndex:
     def lookup_guessed(self, keys: Sequence[str], guess: np.ndarray) -> np.ndarray:
         """:meth:`lookup`, given each key's likely index (or -1) in ``guess``: a guess whose
         string is cached (an answer's keys are those of the question it answers) is
-        confirmed by one string comparison, without hashing the key or probing the dict."""
+        confirmed by one string comparison, without hashing the key or probing the dict.
+        When every guess holds, the result is ``guess`` itself (callers may test ``is``)."""
         count = len(keys)
-        if count == 0 or not (guess >= 0).any():
+        given = guess >= 0
+        if count == 0 or not np.count_nonzero(given):
             return self.lookup(keys)
         slot = guess & (len(self._slot_idx) - 1)
         try:
@@ -145,11 +147,12 @@ class KeyIndex:
                              count=count)
         except (TypeError, ValueError):  # not text: lookup raises as it always did
             return self.lookup(keys)
-        ok &= (self._slot_idx[slot] == guess) & (guess >= 0)
-        if ok.all():
+        ok &= self._slot_idx[slot] == guess
+        ok &= given
+        if np.count_nonzero(ok) == count:
             return guess
         out = np.where(ok, guess, -1)
-        rest = np.flatnonzero(~ok)
+        rest = (~ok).nonzero()[0]
         out[rest] = self.lookup([keys[k] for k in rest.tolist()])
         return out
 

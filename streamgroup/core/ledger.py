@@ -10,6 +10,7 @@ groups (plus "none of these yet"); the answer store and the directions stay as t
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -18,6 +19,18 @@ from .columns import ONE_I32, Columns
 from .evidence import answer_weights, reference_eps
 
 UNPLACED = -1
+
+
+@dataclass(slots=True)
+class Counted:
+    """(answer, counted endpoint) pairs: the endpoint the evidence is for, the other
+    one, the answer's source, and the sign of its vote on the target (+1 or -1)."""
+
+    target: np.ndarray
+    partner: np.ndarray
+    src: np.ndarray
+    sign: np.ndarray
+
 
 _ITEM_FIELDS: dict[str, tuple[Any, Any]] = {
     "side": (np.int8, UNPLACED),
@@ -64,40 +77,41 @@ class Ledger:
         return self.items.grow(count)
 
     def append_answers(self, a: np.ndarray, b: np.ndarray, src: np.ndarray,
-                       same: np.ndarray) -> np.ndarray:
-        """Store answers; set their directions from the current placements."""
+                       same: np.ndarray) -> slice:
+        """Store answers; set their directions from the current placements. Returns
+        their rows (new rows are contiguous: a slice, read as views rather than gathers)."""
         ans = self.answers
         start = ans.n
-        idx = ans.grow(len(a))
-        rows = slice(start, start + len(a))  # new rows are contiguous: slices, not gathers
+        ans.grow(len(a))
+        rows = slice(start, start + len(a))
         ans["a"][rows] = a
         ans["b"][rows] = b
         ans["src"][rows] = src
-        ans["same"][rows] = np.where(same, 1, -1)
+        vote = np.array(same, dtype=np.int8)  # a copy: +1 same, -1 different
+        vote *= 2
+        vote -= 1
+        ans["same"][rows] = vote
         side = self.items["side"]
-        placed_a = side[a] != UNPLACED
-        placed_b = side[b] != UNPLACED
-        direction = np.where(placed_b, 1, 0) | np.where(placed_a, 2, 0)
+        direction = (side[a] != UNPLACED) * np.int8(2)  # counts for b (bit 2) if a is placed
+        direction += side[b] != UNPLACED  # and for a (bit 1) if b is
         ans["direction"][rows] = direction
-        waiting = idx[direction == 0]
+        waiting = (direction == 0).nonzero()[0]
         if len(waiting):
-            self.pending = np.concatenate([self.pending, waiting])
-        return idx
+            self.pending = np.concatenate([self.pending, start + waiting])
+        return rows
 
     # -- evidence -------------------------------------------------------------
-    def _contributions(self, idx: np.ndarray | slice, delta: np.ndarray, se: np.ndarray,
-                       trust_partners: bool = False
-                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """(target, step, sensitivity) for every (answer, counted endpoint) among ``idx``.
-
-        The sensitivity is signed like the answer's vote, so that answers of one source
-        add up (their bias errors are shared) while those of different sources do not.
-        """
+    def counted_pairs(self, idx: np.ndarray | slice | None = None) -> Counted:
+        """The (answer, counted endpoint) pairs among answers ``idx`` (default: every
+        answer, as views), apart from their weights: what a recount of unchanged
+        placements and directions can share between several sets of weights."""
         ans = self.answers
+        if idx is None:
+            idx = slice(0, self.n_answers)
         a, b, d = ans["a"][idx], ans["b"][idx], ans["direction"][idx]
         src, same = ans["src"][idx], ans["same"][idx]
-        for_a = (d & 1) != 0
-        for_b = (d & 2) != 0
+        for_a = (d & 1).view(np.bool_)  # bit 1, as 0/1 bytes: a bool mask as it is
+        for_b = (d >> 1).view(np.bool_)  # bit 2 (directions are 0 to 3)
         k = int(np.count_nonzero(for_a))
         m = k + int(np.count_nonzero(for_b))
 
@@ -105,14 +119,22 @@ class Ledger:
             """first[for_a] then second[for_b], written straight into one array (about a
             quarter of the time of two masked copies and a concatenation)."""
             out = np.empty(m, dtype=first.dtype)
-            np.compress(for_a, first, out=out[:k])
-            np.compress(for_b, second, out=out[k:])
+            first.compress(for_a, out=out[:k])
+            second.compress(for_b, out=out[k:])
             return out
 
         target, partner = both(a, b), both(b, a)
-        s = both(src, src)
-        x = both(same, same).astype(np.float64)
-        side = self.items["side"]
+        sign = 2.0 * self.items["side"][partner]  # x (2 side - 1), in place
+        sign -= 1.0
+        sign *= both(same, same)
+        return Counted(target, partner, both(src, src), sign)
+
+    def _weigh(self, pairs: Counted, delta: np.ndarray, se: np.ndarray,
+               trust_partners: bool = False) -> tuple[np.ndarray, np.ndarray]:
+        """(step, sensitivity) of each pair: the sensitivity is signed like the answer's
+        vote, so that answers of one source add up (their bias errors are shared) while
+        those of different sources do not."""
+        partner, s = pairs.partner, pairs.src
         if trust_partners:
             eps = np.zeros(len(partner))
         elif len(partner) > self.n_items:
@@ -122,16 +144,22 @@ class Ledger:
         else:
             eps = reference_eps(self.items["llr"][partner], self.items["pinned"][partner])
         w, spread = answer_weights(delta[s], se[s], eps)
-        sign = 2.0 * side[partner]  # x (2 side - 1), then times w and spread, in place
-        sign -= 1.0
-        sign *= x
-        w *= sign
-        spread *= sign
-        return target, w, spread
+        w *= pairs.sign
+        spread *= pairs.sign
+        return w, spread
 
-    def count(self, idx: np.ndarray, delta: np.ndarray, se: np.ndarray) -> np.ndarray:
-        """Add the evidence of answers ``idx`` (already given directions); return targets."""
-        if len(idx) == 0:
+    def _contributions(self, idx: np.ndarray | slice, delta: np.ndarray, se: np.ndarray,
+                       trust_partners: bool = False
+                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(target, step, sensitivity) for every (answer, counted endpoint) among ``idx``."""
+        pairs = self.counted_pairs(idx)
+        return (pairs.target, *self._weigh(pairs, delta, se, trust_partners))
+
+    def count(self, idx: np.ndarray | slice, delta: np.ndarray, se: np.ndarray
+              ) -> np.ndarray:
+        """Add the evidence of answers ``idx`` (positions, or a slice of rows; already given
+        directions); return targets."""
+        if not isinstance(idx, slice) and len(idx) == 0:
             return np.zeros(0, dtype=np.int64)
         target, step, spread = self._contributions(idx, delta, se)
         np.add.at(self.items["llr"], target, step)
@@ -140,20 +168,28 @@ class Ledger:
         np.add.at(self.items["count"], target, ONE_I32)
         return target
 
-    def recompute(self, delta: np.ndarray, se: np.ndarray, settle: bool = False) -> None:
+    def recompute(self, delta: np.ndarray, se: np.ndarray, settle: bool = False,
+                  pairs: Counted | None = None, llr_only: bool = False) -> None:
         """Rebuild every item's evidence from all counted answers (after new weights).
 
         Each answer is discounted by its partner's chance of being wrong, read from the
         partner's current evidence; ``settle`` first builds that evidence without the
-        discount, for items placed together whose evidence is not known yet.
+        discount, for items placed together whose evidence is not known yet. ``pairs``:
+        :meth:`counted_pairs` of every answer, if the caller has it (placements and
+        directions unchanged since). ``llr_only``: rebuild the evidence alone, for a
+        step whose other sums a later full recount replaces.
         """
         n = self.n_items
-        idx = slice(0, self.n_answers)  # every answer: views, not gathers
+        if pairs is None:
+            pairs = self.counted_pairs()
+        target = pairs.target
         if settle:
-            target, step, _ = self._contributions(idx, delta, se, trust_partners=True)
+            step, _ = self._weigh(pairs, delta, se, trust_partners=True)
             self.items["llr"][:n] = np.bincount(target, weights=step, minlength=n)[:n]
-        target, step, spread = self._contributions(idx, delta, se)
+        step, spread = self._weigh(pairs, delta, se)
         self.items["llr"][:n] = np.bincount(target, weights=step, minlength=n)[:n]
+        if llr_only:
+            return
         self.items["s1"][:n] = np.bincount(target, weights=spread, minlength=n)[:n]
         self.items["s2"][:n] = np.bincount(target, weights=spread * spread, minlength=n)[:n]
         self.items["count"][:n] = np.bincount(target, minlength=n)[:n]

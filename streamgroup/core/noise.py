@@ -53,7 +53,8 @@ def m_step(ledger: Ledger, n_sources: int, p: np.ndarray | None = None) -> Noise
     x = ledger.answer("same")[counted].astype(np.float64)
     if p is None:
         p = side_posterior(ledger)
-    r = (2.0 * p[a] - 1.0) * (2.0 * p[b] - 1.0)  # expected relation sign: +1 same, -1 different
+    lean = 2.0 * p - 1.0  # per item, then gathered: the same values as per answer
+    r = lean[a] * lean[b]  # expected relation sign: +1 same, -1 different
     agree = np.bincount(src, weights=x * r, minlength=n_sources)
     info = np.bincount(src, weights=r * r, minlength=n_sources)
     total = np.bincount(src, minlength=n_sources).astype(np.float64)
@@ -76,8 +77,13 @@ def fit(ledger: Ledger, delta: np.ndarray, se: np.ndarray, iterations: int = 3,
     result = NoiseFit(delta, se, np.zeros(n_sources), 0.0, SE_NEW)
     if cold:
         result = m_step(ledger, n_sources, hard_posterior(ledger))
+    # placements and directions stay as they are during a fit: every recount shares one
+    # list of counted pairs, and those before the last need only the evidence (m_step
+    # reads nothing else; the last recount writes every sum)
+    pairs = ledger.counted_pairs()
     for k in range(iterations):
-        ledger.recompute(result.delta, result.se, settle=cold and k == 0)
+        ledger.recompute(result.delta, result.se, settle=cold and k == 0, pairs=pairs,
+                         llr_only=True)
         result = m_step(ledger, n_sources)
-    ledger.recompute(result.delta, result.se)
+    ledger.recompute(result.delta, result.se, pairs=pairs)
     return result

@@ -33,11 +33,13 @@ class PairSet:
         return len(self.sorted) + len(self.recent)
 
     @staticmethod
-    def _member(arr: np.ndarray, keys: np.ndarray) -> np.ndarray:
+    def _member(arr: np.ndarray, keys: np.ndarray, at: np.ndarray | None = None
+                ) -> np.ndarray:
+        """Whether each of ``keys`` is in the sorted ``arr`` (``at``: their places in it,
+        when known)."""
         if len(arr) == 0:
             return np.zeros(len(keys), dtype=bool)
-        pos = np.minimum(np.searchsorted(arr, keys), len(arr) - 1)
-        return arr[pos] == keys
+        return arr.take(arr.searchsorted(keys) if at is None else at, mode="clip") == keys
 
     def contains(self, keys: np.ndarray) -> np.ndarray:
         return self._member(self.sorted, keys) | self._member(self.recent, keys)
@@ -53,18 +55,19 @@ class PairSet:
         count = len(keys)
         if count == 0:
             return np.zeros(0, dtype=bool)
-        order = np.argsort(keys, kind="stable")
+        order = keys.argsort(kind="stable")
         ordered = keys[order]
         fresh_mask = np.empty(count, dtype=bool)
         fresh_mask[0] = True
         np.not_equal(ordered[1:], ordered[:-1], out=fresh_mask[1:])
-        fresh_mask &= ~self._member(self.sorted, ordered)
-        at = np.searchsorted(self.recent, ordered)
+        if len(self.sorted):
+            fresh_mask &= ~self._member(self.sorted, ordered)
+        at = self.recent.searchsorted(ordered)
         if len(self.recent):
-            fresh_mask &= self.recent[np.minimum(at, len(self.recent) - 1)] != ordered
+            fresh_mask &= ~self._member(self.recent, ordered, at)
         new = np.empty(count, dtype=bool)
         new[order] = fresh_mask
-        if fresh_mask.any():
+        if np.count_nonzero(fresh_mask):
             self.recent = insert_sorted(self.recent, at[fresh_mask], ordered[fresh_mask])
             # each batch copies the recent run once, and each merge copies everything: a
             # recent run of about sqrt(2000 n) keeps the sum of both small (measured: a

@@ -3,8 +3,11 @@
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 
 import numpy as np
+
+from .columns import strictly_increasing
 
 _GOLDEN_INT = 0x9E3779B97F4A7C15
 _GOLDEN = np.uint64(_GOLDEN_INT)
@@ -22,11 +25,19 @@ def _mix_int(x: int) -> int:
     return z ^ (z >> 31)
 
 
+@lru_cache(maxsize=1024)
+def _mix_salt(x: int) -> np.uint64:
+    """:func:`mix` of a salt: a few fixed values per engine, hashed several times a batch."""
+    return np.uint64(_mix_int(x))
+
+
 def mix(x: np.ndarray | int) -> np.ndarray:
     """splitmix64: a stateless, well-spread hash; drives every planning 'coin'."""
     if type(x) is int and 0 <= x <= _M64:  # the salts: several per batch, ~9 us each in numpy
-        return np.uint64(_mix_int(x))  # type: ignore[return-value]
-    if np.ndim(x) == 0:  # numpy scalars (their arithmetic warns on overflow): as arrays
+        return _mix_salt(x)  # type: ignore[return-value]
+    # (np.ndim(x) without its wrapper's cost: numpy scalars and other non-sequences)
+    scalar = x.ndim == 0 if isinstance(x, np.ndarray) else not isinstance(x, list | tuple)
+    if scalar:  # numpy scalars (their arithmetic warns on overflow): as arrays
         return mix(np.atleast_1d(np.asarray(x, dtype=np.uint64)))[0]
     # the same steps in place, in one buffer and one temporary (array arithmetic wraps
     # silently): half the time of a fresh array per step (~7 against ~14 us for 500)
@@ -65,8 +76,14 @@ def answers_still_needed(llr: np.ndarray, boundary: float, best_step: float) -> 
     """
     if best_step <= 0:
         return np.ones(len(llr), dtype=np.int64)
-    gap = np.maximum(boundary - np.abs(llr), 0.0)
-    return np.maximum(np.ceil(gap / best_step - 1e-9), 1).astype(np.int64)
+    gap = np.abs(llr)  # max(ceil(max(boundary - |llr|, 0) / best_step - 1e-9), 1), in place
+    np.subtract(boundary, gap, out=gap)
+    np.maximum(gap, 0.0, out=gap)
+    gap /= best_step
+    gap -= 1e-9
+    np.ceil(gap, out=gap)
+    np.maximum(gap, 1, out=gap)
+    return gap.astype(np.int64)
 
 
 def slots(
@@ -83,6 +100,17 @@ def slots(
     return np.maximum(room, 0)
 
 
+def first_slots(cand: np.ndarray, each: np.ndarray, room: int) -> tuple[np.ndarray, int]:
+    """The first ``room`` entries of ``cand`` with each one repeated ``each`` times, and
+    how many candidates they use up entirely.
+
+    Only the candidates up to the first one not used up are repeated: a round looks at
+    a chunk of several times its room, and repeating all of it costs more than the rest.
+    """
+    served = int(each.cumsum().searchsorted(room, side="right"))
+    return cand[:served + 1].repeat(each[:served + 1])[:room], served
+
+
 def slot_ranks(targets: np.ndarray) -> np.ndarray:
     """For each entry, how many earlier entries name the same target (0, 1, 2, ...).
 
@@ -90,10 +118,10 @@ def slot_ranks(targets: np.ndarray) -> np.ndarray:
     starts there (no np.r_ / np.repeat: a few calls fewer per round).
     """
     count = len(targets)
+    if strictly_increasing(targets):  # distinct (the usual round): every rank is 0
+        return np.zeros(count, dtype=np.int64)
     out = np.empty(count, dtype=np.int64)
-    if count == 0:
-        return out
-    order = np.argsort(targets, kind="stable")
+    order = targets.argsort(kind="stable")
     ordered = targets[order]
     run_start = np.empty(count, dtype=bool)
     run_start[0] = True

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from . import planner
-from .codes import ASKING, CHECK, PLACE, Q_EXPIRED, Q_OPEN, UNRESOLVED, WAITING, WHY_NAMES
+from .codes import ASKING, CHECK, PLACE, Q_EXPIRED, Q_OPEN, UNRESOLVED, WHY_NAMES
 from .columns import ONE_I32
 from .ledger import UNPLACED
 from .sprt import weight
@@ -120,13 +120,13 @@ class QuestionsMixin:
             return empty, cand.astype(np.int64)
         cfg = self.config
         led = self.ledger.items
-        st = self.items["status"][cand]
-        cand = cand[((st == WAITING) | (st == ASKING)) & (led["side"][cand] == UNPLACED)]
+        asking = self.items["status"][cand] <= ASKING  # waiting or asking (codes 0 and 1)
+        cand = cand[asking & (led["side"][cand] == UNPLACED)]
         # Questions whose answers never count (every partner already asked of the only
         # source, say) must not go on for ever: twice the ceiling in questions also ends
         # an item's walk.
         worn = self.items["asked"][cand] >= 2 * cfg.item_ceiling
-        if worn.any():
+        if np.count_nonzero(worn):
             out = cand[worn & (self.items["inflight"][cand] == 0)]
             self.items["status"][out] = UNRESOLVED
             self.items["dirty"][out] = True
@@ -134,13 +134,12 @@ class QuestionsMixin:
         need = planner.answers_still_needed(led["llr"][cand], self.boundary, self._best_step())
         each = planner.slots(cand, need, self.items["inflight"][cand], led["count"][cand],
                              cfg.inflight, cfg.item_ceiling)
-        cand, each = cand[each > 0], each[each > 0]
+        some = each > 0
+        cand, each = cand[some], each[some]
         if len(cand) == 0:
             return empty, empty
-        ends = np.cumsum(each)
-        served = int(np.searchsorted(ends, room, side="right"))
-        targets = np.repeat(cand, each)[:room]
-        return targets.astype(np.int64), cand[served:].astype(np.int64)
+        targets, served = planner.first_slots(cand, each, room)
+        return targets.astype(np.int64, copy=False), cand[served:].astype(np.int64, copy=False)
 
     def _nudge(self, idx: np.ndarray) -> None:
         if len(idx):
@@ -162,7 +161,7 @@ class QuestionsMixin:
         size = np.uint64(self._active_pool())
         out = self.pool[((h + k) % size).astype(np.int64)]
         beyond = k >= size
-        if beyond.any():
+        if np.count_nonzero(beyond):
             placed = np.nonzero(self.ledger.item("side") != UNPLACED)[0]
             pick = (planner.mix(h[beyond] ^ k[beyond]) % np.uint64(len(placed))).astype(np.int64)
             out[beyond] = placed[pick]
@@ -220,8 +219,8 @@ class QuestionsMixin:
         lo, n = self.q_low, q.n
         if lo >= n:
             return
-        cut = lo + int(np.searchsorted(q["ts"][lo:n], now_ms - self.config.question_timeout_ms,
-                                       side="right"))
+        cut = lo + int(q["ts"][lo:n].searchsorted(now_ms - self.config.question_timeout_ms,
+                                                  side="right"))
         if cut > lo:
             late = np.nonzero(q["state"][lo:cut] == Q_OPEN)[0]
             self._close_questions(lo + late, Q_EXPIRED)
@@ -231,7 +230,7 @@ class QuestionsMixin:
         step = 256
         while lo < n:
             hi = min(n, lo + step)
-            open_ = np.flatnonzero(state[lo:hi] == Q_OPEN)
+            open_ = (state[lo:hi] == Q_OPEN).nonzero()[0]
             if len(open_):
                 lo += int(open_[0])
                 break
