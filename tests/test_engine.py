@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import base64
 import zlib
 
 import msgpack
@@ -16,7 +17,7 @@ from scipy.stats import binom
 from streamgroup.core import sprt
 from streamgroup.core.codes import Q_EXPIRED, Q_OPEN
 from streamgroup.core.engine import Engine
-from streamgroup.core.types import Answer, AnswerColumns, EngineConfig
+from streamgroup.core.types import Answer, AnswerColumns, EngineConfig, Question
 from streamgroup.errors import EngineInputError
 from streamgroup.sim import Crowd, mixed_sources
 
@@ -266,6 +267,85 @@ def test_timeouts_reissue_questions() -> None:
     again = eng.plan(6000)
     assert {frozenset((q.a, q.b)) for q in again} == {frozenset((q.a, q.b)) for q in first}
     assert eng.stats()["outstanding"] == len(again)
+
+
+def _pairs(questions: list[Question]) -> list[frozenset[str]]:
+    return [frozenset((q.a, q.b)) for q in questions]
+
+
+def test_block_pair_answered_before_its_question_expired_is_not_asked_again() -> None:
+    """A bootstrap pair answered without its qid, or late after its question expired and
+    was asked anew, stays answered when the open question expires: it is not paid for
+    again, and the one source's repeats are duplicates that count nothing."""
+    crowd = Crowd(3, sources=[0.6], seed=1)
+    eng = Engine(EngineConfig(question_timeout_ms=1000))
+    eng.add_items((k, None) for k in crowd.keys)
+    first = eng.plan(0)  # the block: all three pairs
+    assert [q.why for q in first] == ["seed"] * 3
+    no_qid = crowd.answer_now(first[:1])[0]._replace(qid=None)
+    assert eng.add_answers([no_qid], 100) == ["applied"]  # its question stays open
+    second = eng.plan(1000)  # all three expired: only the unanswered two are asked anew
+    assert _pairs(second) == _pairs(first[1:])
+    assert eng.add_answers(crowd.answer_now(first[1:2]), 1500) == ["applied"]  # late
+    third = eng.plan(2000)  # that pair's second question expired too: not asked again
+    assert _pairs(third) == _pairs(first[2:])
+    assert sorted(eng.add_answers(crowd.answer_now(second + third), 2100)) == [
+        "applied", "duplicate", "duplicate"]
+    assert eng.plan(2200) == []
+    st = eng.stats()
+    assert st["phase"] == "run" and st["outstanding"] == 0 and eng.done()
+    assert st["spend"] == 3 and st["bootstrap_spend"] == 6 and st["duplicates"] == 2
+
+
+def test_bootstrap_ends_when_answers_outlive_their_questions() -> None:
+    """Answers slower than the question timeout, some without their qid, some delivered
+    twice, from a few persistent sources: the cold start ends, and the engine never sits
+    in it with nothing asked and nothing left to arrive."""
+    crowd = Crowd(40, sources=[0.6] * 3, seed=0, latency_ms=(0, 2000), duplicate_rate=0.1)
+    rng = np.random.default_rng(0)
+    eng = Engine(EngineConfig(question_timeout_ms=1500))
+    eng.add_items((k, None) for k in crowd.keys)
+    now = 0
+    for _ in range(400):
+        qs = eng.plan(now)
+        assert qs or eng.outstanding or crowd.in_transit or eng.phase == "run", (
+            f"stuck in the cold start at {now} ms")
+        if eng.phase == "run":
+            break
+        crowd.ask(qs, now)
+        now += 100
+        got = crowd.due(now)
+        eng.add_answers([a._replace(qid=None) if rng.random() < 0.1 else a for a in got], now)
+    assert eng.phase == "run" and len(eng.pool) > 0
+
+
+# Written by commit fa71327 (before the fix) after the steps of the test above: three
+# items, one source, pair 0 answered without its qid, everything expired, the three
+# pairs asked again and answered. Pair 0's repeat was a duplicate, so it stayed asked
+# with no question open and the engine waited in its cold start for ever.
+_STUCK_SNAPSHOT = (
+    "U0daMii1L/1gBQO1EAC2nGA8UEuUDoAEudJDhOxG9PxIEeuDAu0T0lpmX6OQs/G11aK/tbHt7v/91iQhu1pQEc5p"
+    "1ZgQ9UxDZGM8yZYpWABPAEsA78mZji4yza6AZHB3HqA6Cpm6upLQPE2M7M+jt+8L1KbcEon8TJKLqiShZG1awxXL"
+    "ggDnAwMLC5DQQx4ijAwaPsAAxoagAMFBgbQAEqIweZIoJ2wlqoh3CLHatIXpuxxMnlAMsTcgRGD8G/2NV+jJNGLk"
+    "BGqttbZtm4DK1NGOVPxRK5OE0kWllCxuR7lcr1DKi9UeNTK3dXEx0ZAlB7EMSGgCxVDKC/YPSuID7W5UG0MdbSxC"
+    "20l8VORLlI9OPB9FkWUbVba4tv5/mu3539ZRper/uorz+R9VimN8F8xRrwQIuvNPCD1ZlkWVqdfWg4ZysqL////t"
+    "7bsTlSkzVqNqKBnP7rbWGtcPYMOB2rTzv7VHnRzpdLuUJ9NRjNOI1aZBlWUZhkjMSEpf0ND5qL8tEdrzSUASPD0U"
+    "V9pdjkopk0AgoAIZKqsHBmbAdVZxwwWOL5QDT7QgoC4BBjyH8Qp7/KBgMiLe8mZpFcGDUwswIXkgzTCUbyRlXK9O"
+    "mLL4t52aTA65YG4olvZjckJUaACHR/mOfWQZsf1ixdoi+4AYKbfstgCxOZ8yc+JtjDc+omddAuGuFNswCuLD/LIL"
+    "aMewfEFSRMFkmBkDP7ADc34j8BM="
+)
+
+
+def test_engine_restored_stuck_in_its_cold_start_resumes_without_new_spend() -> None:
+    """A snapshot saved while a block pair waited, asked, for an answer that could not
+    come resumes: the pair's answer in the ledger completes it, nothing is asked again."""
+    eng = Engine.restore(base64.b64decode(_STUCK_SNAPSHOT))
+    before = eng.stats()
+    assert before["phase"] == "boot" and before["outstanding"] == 0
+    assert eng.plan(10_000) == []
+    after = eng.stats()
+    assert after["phase"] == "run" and eng.done()
+    assert after["spend"] == before["spend"] and after["issued"] == before["issued"]
 
 
 def test_expiry_closes_exactly_the_questions_past_their_timeout() -> None:

@@ -17,19 +17,42 @@ class BlockMixin:
     """Bootstrap of the reference set (part of :class:`~streamgroup.core.engine.Engine`)."""
 
     def _block_mark(self, a: Any, b: Any, value: int) -> None:
+        """Set the block pairs (a[k], b[k]) to ``value`` (0 unasked, 1 asked, 2 answered).
+
+        A pair already answered stays answered. Its question can expire after the pair was
+        answered (late, or by an answer without its qid); asking it again would be wasted,
+        and could never complete it if the same source answered, since that repeat is a
+        duplicate and counts for nothing.
+        """
         pos = self.items["block"]
-        pa, pb = pos[a], pos[b]
+        pa, pb = np.atleast_1d(pos[a]), np.atleast_1d(pos[b])
         ok = (pa >= 0) & (pb >= 0)
-        if np.ndim(ok) == 0:
-            if ok and self.block_state[pa, pb] != 2:
-                self.block_state[pa, pb] = self.block_state[pb, pa] = value
-            return
+        if value != 2:
+            ok[ok] = self.block_state[pa[ok], pb[ok]] != 2
         pa, pb = pa[ok], pb[ok]
         self.block_state[pa, pb] = value
         self.block_state[pb, pa] = value
 
     def _mark_block_answers(self, a: np.ndarray, b: np.ndarray) -> None:
         self._block_mark(a, b, 2)
+
+    def _mark_ledger_pairs(self, state: np.ndarray) -> None:
+        """Mark answered, in ``state``, every block pair with an answer in the ledger."""
+        pos = self.items["block"]
+        la, lb = self.ledger.answer("a"), self.ledger.answer("b")
+        both = (pos[la] >= 0) & (pos[lb] >= 0)
+        state[pos[la[both]], pos[lb[both]]] = 2
+        state[pos[lb[both]], pos[la[both]]] = 2
+
+    def _repair_orphans(self) -> None:
+        """Pairs marked asked while no question is open (only seed questions are open in
+        the bootstrap) wait for an answer that cannot come: an engine restored from a
+        snapshot taken while an expiry had undone an answered pair holds such pairs. Those
+        with an answer in the ledger are answered; the others are asked again."""
+        st = self.block_state
+        if self.outstanding == 0 and (st == 1).any():
+            st[st == 1] = 0
+            self._mark_ledger_pairs(st)
 
     def _extend_block(self, size: int) -> None:
         """Grow the block to ``size`` members: pinned items first, then in arrival order."""
@@ -48,11 +71,7 @@ class BlockMixin:
         state = np.zeros((m, m), dtype=np.int8)
         state[:have, :have] = self.block_state
         np.fill_diagonal(state, 2)
-        # Pairs answered before they were in the block still count as answered.
-        la, lb = self.ledger.answer("a"), self.ledger.answer("b")
-        both = (pos[la] >= 0) & (pos[lb] >= 0)
-        state[pos[la[both]], pos[lb[both]]] = 2
-        state[pos[lb[both]], pos[la[both]]] = 2
+        self._mark_ledger_pairs(state)  # answered before they were in the block: answered
         self.block_state = state
 
     def _plan_block(self, now_ms: int, room: int) -> QuestionColumns:
@@ -64,6 +83,7 @@ class BlockMixin:
             self._extend_block(min(n, max(BLOCK_START, min(pinned, BLOCK_MAX))))
         elif len(self.block) < BLOCK_START and n > len(self.block):
             self._extend_block(min(n, BLOCK_START))
+        self._repair_orphans()
         st = self.block_state
         if (st == 2).all():
             self._solve_block()
