@@ -42,15 +42,20 @@ bottleneck); ``worker_sys_part_plain`` is the part of the worker's CPU spent in 
 kernel (mostly sending and receiving on the socket). ``redis_us_per_answer_*`` splits
 Redis's time by command (from INFO commandstats; ``exec`` includes the commands inside it,
 ``eval`` the appends its scripts make), ``loop_exec_ms_*`` is the mean time Redis spends
-inside one batch transaction (lookups wait behind it), and ``lookup_idle_p99_ms`` is the
-lookup latency of this machine with no worker running.
+inside one batch transaction (lookups wait behind it), ``redis_slow_plain`` lists the
+commands that held Redis for a millisecond or more in the drain windows (SLOWLOG: count
+and longest, in ms), ``lookup_idle_p99_ms`` is the lookup latency of this machine with
+no worker running, and ``lookup_busy_floor_p99_ms`` the same while a spinning process
+keeps every core busy (Redis idle): what the machine alone adds at full load
+(``scripts/bench_machine.py`` shows its pauses).
 
 ``BENCH_PYSPY=PATH`` records a py-spy profile (raw format) of the worker over the drain
 cycles, to ``PATH`` and ``PATH-packed`` (py-spy is a tool to install by hand, not a
 dependency); with ``BENCH_PYSPY_IDLE=1`` the samples include the time it waits (py-spy
 ``--idle``), to see where it waits for Redis. ``BENCH_LOOKUP_NICE=N`` runs the lookup
 process at nice ``N`` (negative: ahead of the worker), to tell time spent waiting for a
-core from time spent waiting for Redis.
+core from time spent waiting for Redis. ``BENCH_REDIS_CPU=N`` pins Redis to CPU ``N`` and
+everything else (the worker, the adapter, the lookups) to the other CPUs.
 """
 
 from __future__ import annotations
