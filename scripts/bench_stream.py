@@ -19,6 +19,11 @@ port, persistence off), with the same batch size everywhere:
   has consumed them; ``--cycles`` windows, summed (after one that fills the cap). The
   adapter is idle in the windows, so it takes neither cores nor Redis time from the
   worker; ``ratio`` is this over raw.
+- ``ratio_paired``: the same with the bare loop run again before each drain window, over
+  as many entries as that window's backlog, while the worker is stopped
+  (``raw_paired_entries_per_s``): both sides of the ratio from the same minute, where
+  ``raw_entries_per_s`` brackets the run from its two ends, minutes apart on a machine
+  whose speed can double between them.
 - ``packed_answers_per_s``: the same with column packs both ways (packed answers in,
   ``question_columns`` packs out), over ``--packed-items`` items.
 - ``lookup_p99_ms``: HGET of random keys of ``{NS}:assign`` from another process, about
@@ -178,6 +183,13 @@ def wait_until(cond: Any, timeout: float, what: str) -> None:
 
 
 def bench_raw(url: str, batch: int, entries: int) -> float:
+    """Entries per second of the bare loop over ``entries`` pre-filled entries."""
+    done, seconds = raw_window(url, batch, entries)
+    return done / seconds
+
+
+def raw_window(url: str, batch: int, entries: int) -> tuple[int, float]:
+    """The bare loop over ``entries`` pre-filled entries: (entries consumed, seconds)."""
     r = redis.Redis.from_url(url)
     stream = "{braw}:answers"
     for lo in range(0, entries, 50_000):
@@ -193,7 +205,8 @@ def bench_raw(url: str, batch: int, entries: int) -> float:
         done += len(ids)
     dt = time.perf_counter() - t0
     r.delete(stream)
-    return done / dt
+    c.close()
+    return done, dt
 
 
 # -- the closed loop ------------------------------------------------------------------------
@@ -477,8 +490,12 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
                              "the backlog was made (run the benchmark in the foreground)")
         return answered
 
+    raw_done, raw_busy = 0, 0.0
     for cycle in range(cycles + 1):  # the first one only fills the cap: not measured
         backlog = pause_and_answer()
+        if cycle and not pack:  # the bare loop, just before the window, the worker stopped
+            got, secs = raw_window(url, batch, backlog)
+            raw_done, raw_busy = raw_done + got, raw_busy + secs
         target = consumed() + backlog
         r.config_resetstat()
         r.slowlog_reset()
@@ -519,6 +536,9 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
     busy = sum(hi - lo for lo, hi in windows)
     out: dict[str, Any] = {
         "rate": done / busy,
+        # the bare loop over as many entries as each window's backlog, run right before
+        # that window (the worker stopped): the same minute as the worker, not minutes off
+        "raw_paired": raw_done / raw_busy if raw_busy else float("nan"),
         "answers_in_windows": done,
         "windows": len(windows),
         "window_s": round(busy / len(windows), 3),
@@ -629,6 +649,8 @@ def main(argv: list[str] | None = None) -> int:
             "raw_entries_per_s": round(raw_rate),
             "worker_entries_per_s": round(plain["rate"]),
             "ratio": round(plain["rate"] / raw_rate, 3),
+            "raw_paired_entries_per_s": round(plain["raw_paired"]),
+            "ratio_paired": round(plain["rate"] / plain["raw_paired"], 3),
             "questions_per_answer_plain": round(plain["questions_per_answer"], 3),
             "lookup_p99_ms": round(plain["lookup"]["p99_ms"], 3),
             "lookup_p50_ms": round(plain["lookup"]["p50_ms"], 3),
@@ -673,6 +695,8 @@ def main(argv: list[str] | None = None) -> int:
         # the worker alone, draining a backlog of answers to its own questions
         "worker_entries_per_s": round(plain["rate"]),
         "ratio": round(plain["rate"] / raw_rate, 3),
+        "raw_paired_entries_per_s": round(plain["raw_paired"]),
+        "ratio_paired": round(plain["rate"] / plain["raw_paired"], 3),
         "questions_per_answer_plain": round(plain["questions_per_answer"], 3),
         "packed_answers_per_s": round(packed["rate"]),
         "packed_over_plain": round(packed["rate"] / plain["rate"], 2),
