@@ -85,6 +85,15 @@ def spawn(url: str, ns: str, **extra: Any) -> subprocess.Popen[bytes]:
     return subprocess.Popen(args, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
 
 
+def wait_started(r: redis.Redis, ns: str, before: bytes | None) -> None:
+    """Wait until a newly spawned worker holds the lease (``before`` is the holder left
+    by the process it replaces). Its signal handlers are in place by then: a SIGTERM that
+    lands while the interpreter is still importing ends it like any process (-15), before
+    it has anything in hand."""
+    lease_key = Keys(ns).lease
+    wait_for(lambda: r.get(lease_key) not in (None, before), 30, "the worker to start")
+
+
 def wait_for(cond: Any, timeout: float, what: str) -> None:
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
@@ -124,7 +133,9 @@ def final_view(r: redis.Redis, url: str, ns: str) -> dict[str, Any]:
 def test_sigkill_at_random_moments_matches_an_uninterrupted_run(redis_url: str) -> None:
     """>= 10 SIGKILLs and restarts over a fixed input: same assignments, counts and spend."""
     r = redis.Redis.from_url(redis_url)
-    crowd, entries = recorded_input()
+    # 300 items: enough input that at least ten kills land while there is work left, with
+    # a worker fast enough to get through many batches in the 25 ms after its first commit
+    crowd, entries = recorded_input(300)
     write_input(r, "ref", crowd, entries)
     write_input(r, "crash", crowd, entries)
     ref = Worker(Settings(redis=redis_url, ns="ref", **{
@@ -143,7 +154,7 @@ def test_sigkill_at_random_moments_matches_an_uninterrupted_run(redis_url: str) 
         else:
             wait_for(lambda s=seq0, p=proc: r.hget(meta_key, "seq") != s or p.poll() is not None,
                      30, "the worker to commit a batch")
-            time.sleep(rng.uniform(0.0, 0.04))
+            time.sleep(rng.uniform(0.0, 0.025))
         assert proc.poll() is None, proc.stderr.read().decode() if proc.stderr else ""
         busy = not consumed(r, "crash")
         proc.send_signal(signal.SIGKILL)
@@ -151,8 +162,10 @@ def test_sigkill_at_random_moments_matches_an_uninterrupted_run(redis_url: str) 
         kills += 1
         during_work += busy
     assert during_work >= 10
+    held = r.get(Keys("crash").lease)
     proc = spawn(redis_url, "crash")
     wait_for(lambda: consumed(r, "crash"), 60, "the last run to consume everything")
+    wait_started(r, "crash", held)
     proc.send_signal(signal.SIGTERM)
     assert proc.wait(30) == 0
 
@@ -198,10 +211,12 @@ def test_closed_loop_with_kills_loses_and_doubles_nothing(redis_url: str) -> Non
             proc.send_signal(signal.SIGKILL)
             proc.wait(10)
             kills += 1
+            held = r.get(k.lease)
             proc = spawn(redis_url, ns, batch=10)
             seq0, armed = r.hget(k.meta, "seq"), None
     assert kills == 10
     wait_for(lambda: consumed(r, ns), 30, "every answer to be consumed")
+    wait_started(r, ns, held)
     proc.send_signal(signal.SIGTERM)
     assert proc.wait(30) == 0
     m = {f.decode(): int(v) for f, v in r.hgetall(k.meta).items() if f != b"epoch"}
