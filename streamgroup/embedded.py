@@ -57,6 +57,11 @@ class EmbeddedRedis:
             raise EmbeddedRedisError("the embedded Redis is not running")
         return f"redis://127.0.0.1:{self.port}/0"
 
+    @property
+    def pid(self) -> int | None:
+        """The redis-server process id (None for the in-process fallback)."""
+        return self._proc.pid if self._proc is not None else None
+
     def start(self) -> EmbeddedRedis:
         kind = self.requested
         if kind == "auto":
