@@ -25,7 +25,7 @@ port, persistence off), with the same batch size everywhere:
   ``raw_entries_per_s`` brackets the run from its two ends, minutes apart on a machine
   whose speed can double between them. The paired windows also share the drain windows'
   background (the lookup process, Redis holding the namespace's data), which the
-  brackets do not: they tend to run 5-15% slower, so ``ratio_paired`` tends to be higher.
+  brackets do not.
 - ``packed_answers_per_s``: the same with column packs both ways (packed answers in,
   ``question_columns`` packs out), over ``--packed-items`` items.
 - ``lookup_p99_ms``: HGET of random keys of ``{NS}:assign`` from another process, about
