@@ -319,6 +319,52 @@ def test_bootstrap_ends_when_answers_outlive_their_questions() -> None:
     assert eng.phase == "run" and len(eng.pool) > 0
 
 
+@pytest.mark.parametrize(("sources", "seed"), [
+    ([0.6], 0),
+    ([0.6], 1),
+    ([0.6, 0.6, 0.0], 2),
+    ([0.6, 0.6, 0.0], 3),
+    ([0.6] * 5 + [0.0, 0.3, -0.4], 4),
+    ([0.6] * 5 + [0.0, 0.3, -0.4], 5),
+])
+def test_run_phase_ends_when_answers_outlive_their_questions(
+        sources: list[float], seed: int) -> None:
+    """After the cold start, under the same messy crowd (latency up to twice the timeout,
+    10% of answers without their qid, 10% delivered twice) from 1, 3 or 8 sources, some
+    careless or contrary, and a snapshot/restore partway through the run phase: every item
+    ends placed or unresolved, and the engine is never left not done with nothing asked,
+    nothing open and nothing on its way (a state that nothing could ever leave). Repeated
+    (pair, source) answers count once."""
+    n, timeout = 90, 1500
+    crowd = Crowd(n, sources=sources, seed=seed, latency_ms=(0, 2 * timeout),
+                  duplicate_rate=0.1)
+    rng = np.random.default_rng(seed)
+    eng = Engine(EngineConfig(question_timeout_ms=timeout, inflight=2, item_ceiling=40,
+                              seed=seed))
+    eng.add_items((k, None) for k in crowd.keys)
+    now, restored = 0, False
+    while not eng.done():
+        assert now < 3_000_000, f"not done after {now} ms: {eng.stats()}"
+        settled = eng.stats()["items"]
+        if not restored and settled["placed"] + settled["unresolved"] >= n // 2:
+            eng, restored = Engine.restore(eng.snapshot()), True  # halfway through the run
+        qs = eng.plan(now)
+        assert qs or eng.outstanding or crowd.in_transit, (
+            f"stuck at {now} ms in phase {eng.phase}: {eng.stats()}")
+        crowd.ask(qs, now)
+        now += 100
+        got = crowd.due(now)
+        eng.add_answers([a._replace(qid=None) if rng.random() < 0.1 else a for a in got], now)
+    assert restored
+    st = eng.stats()
+    assert st["items"]["placed"] + st["items"]["unresolved"] == n and st["duplicates"] > 0
+    led = eng.ledger
+    heard = {(min(a, b), max(a, b), s) for a, b, s in zip(
+        led.answer("a").tolist(), led.answer("b").tolist(), led.answer("src").tolist(),
+        strict=True)}
+    assert len(heard) == led.n_answers == st["spend"]
+
+
 # Written by commit fa71327 (before the fix) after the steps of the test above: three
 # items, one source, pair 0 answered without its qid, everything expired, the three
 # pairs asked again and answered. Pair 0's repeat was a duplicate, so it stayed asked
