@@ -627,6 +627,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--drain-only", action="store_true",
                    help="only the bare loop and the plain drain with lookups (a quicker run, "
                         "for comparing batch sizes)")
+    p.add_argument("--packed", action="store_true",
+                   help="with --drain-only: the packed drain as well (packed_answers_per_s "
+                        "and packed_over_plain from the same run)")
     p.add_argument("--worker-root", default=ROOT,
                    help="checkout whose worker to run (default: this one); the rest of the "
                         "benchmark stays the same, for before/after comparisons")
@@ -646,6 +649,11 @@ def main(argv: list[str] | None = None) -> int:
                                 args.warmup, args.cycles, True, args.drain_items // 2)
             raw2 = bench_raw(srv.url, args.batch, args.raw_entries)
             floor = busy_floor_lookups(srv.url, args.seconds)
+            packed = None
+            if args.packed:
+                redis.Redis.from_url(srv.url).flushall()
+                packed = bench_drain(srv.url, "dp", args.packed_items, args.batch, True,
+                                     args.warmup, args.cycles, False, args.packed_items // 2)
         raw_rate = (raw + raw2) / 2
         quick = {
             "batch": args.batch,
@@ -667,6 +675,16 @@ def main(argv: list[str] | None = None) -> int:
             "redis_slow_plain": plain["redis_slow"],
             "worker_exit_codes": [plain["exit"]],
         }
+        if packed is not None:
+            quick.update({
+                "packed_answers_per_s": round(packed["rate"]),
+                "packed_over_plain": round(packed["rate"] / plain["rate"], 2),
+                "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
+                "redis_cpu_share_packed": round(packed["redis_cpu_share"], 2),
+                "packed_answers_per_cpu_s": round(packed["rate"] / packed["worker_cpu_share"]),
+                "redis_us_per_answer_packed": packed["redis_us_per_answer"],
+                "worker_exit_codes": [plain["exit"], packed["exit"]],
+            })
         print(json.dumps(quick, indent=2) if args.json else quick)
         return 0
     with EmbeddedRedis("redis-server") as srv:
