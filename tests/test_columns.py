@@ -14,6 +14,7 @@ from streamgroup.core.engine import Engine
 from streamgroup.core.keyindex import KeyIndex, cache_size_for
 from streamgroup.core.types import Answer, AnswerColumns, EngineConfig, RecordColumns
 from streamgroup.sim.crowd import Crowd
+from streamgroup.stream import commit
 from streamgroup.stream.commit import (
     DECISION_FIELDS,
     assign_command,
@@ -37,6 +38,13 @@ def test_keys_of_gathers_the_keys_that_were_added(keys: list[str], data: st.Data
     assert index.keys_of(np.arange(len(keys))) == keys
     index.add(["one more"])  # the blob can still grow after a gather
     assert index.keys_of([len(keys)] * 9) == ["one more"] * 9
+    # key_rows: the keys' bytes as rows while every key has one length in bytes
+    rows = index.key_rows(np.array(picks, dtype=np.int64))
+    every = [k.encode() for k in [*keys, "one more"]]
+    if len({len(k) for k in every}) == 1:
+        assert rows is not None and [bytes(r) for r in rows] == [every[i] for i in picks]
+    else:
+        assert rows is None
 
 
 @settings(max_examples=40, deadline=None)
@@ -210,6 +218,47 @@ def test_assign_values_decode_like_the_one_record_form(n: int, seed: int) -> Non
         rc.answers = rc.answers + extra
         assert decision_entries(key, 50, rc, pos) == xadd_entries(
             key, 50, DECISION_FIELDS, decision_values(rc, pos))
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.integers(1, 1200), st.integers(0, 2**32 - 1),
+       st.sampled_from(["shard-%05d", "é-%04d", "%d"]))
+def test_assign_command_from_key_rows_sets_what_the_reference_sets(
+        n: int, seed: int, form: str) -> None:
+    """The numpy form of the batch's HSET (keys of one length in bytes, records grouped by
+    kind of prefix) against hiredis packing the records one by one: the same command with
+    the same field-value pairs; byte for byte when every record has one kind.
+    (``assign_command`` takes the numpy form from ``ROWS_MIN`` records on.)"""
+    rng = np.random.default_rng(seed)
+    index = KeyIndex()
+    index.add([form % i for i in range(2 * n)])
+    idx = np.sort(rng.choice(2 * n, size=n, replace=False))
+    one_kind = rng.random() < 0.3
+    rc = RecordColumns(
+        index.keys_of(idx),
+        np.full(n, 1, dtype=np.int8) if one_kind else rng.integers(-1, 2, n).astype(np.int8),
+        np.full(n, 2, dtype=np.int8) if one_kind
+        else rng.integers(0, len(STATUS_NAMES), n).astype(np.int8),
+        rng.normal(0, 50, n).round(6), rng.integers(0, 128, n).astype(np.int32),
+        rng.integers(0, 128 if seed % 2 else 70_000, n).astype(np.int32),
+        rng.random(n) < 0.3, ("north", "söuth"), STATUS_NAMES, index.key_rows(idx))
+    assert (rc.key_rows is not None) == (form != "%d" or 2 * n <= 10)
+    flat = [x for r in rc.rows() for x in (r.key.encode(), assign_value(r))]
+    want = hiredis.pack_command(("HSET", "{t}:assign", *flat))
+    got = (commit._assign_rows if rc.key_rows is not None else assign_command)(
+        "{t}:assign", rc)
+    if n >= commit.ROWS_MIN:
+        assert assign_command("{t}:assign", rc) == got
+    if (one_kind or rc.key_rows is None) and rc.rev.max() < 128:
+        assert got == want  # (counts of 128 on take a longer form than packb's: see above)
+    reader = hiredis.Reader()
+    reader.feed(got)
+    cmd = reader.gets()
+    assert reader.gets() is False  # one command, nothing left over
+    assert cmd[:2] == [b"HSET", b"{t}:assign"] and len(cmd) == 2 + 2 * n
+    pairs = {k: msgpack.unpackb(v) for k, v in zip(cmd[2::2], cmd[3::2], strict=True)}
+    assert pairs == {k: msgpack.unpackb(v) for k, v in zip(flat[0::2], flat[1::2],
+                                                            strict=True)}
 
 
 def test_engine_column_calls_equal_row_calls() -> None:

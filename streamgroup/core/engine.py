@@ -169,7 +169,8 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         shown = np.where(side == 1, llr, np.where(side == 0, -llr, np.abs(llr))).round(6)
         return RecordColumns(self.keys.keys_of(idx), side, self.items["status"][idx], shown,
                              led["count"][idx], self.items["rev"][idx], led["pinned"][idx],
-                             (self.label(0), self.label(1)), STATUS_NAMES)
+                             (self.label(0), self.label(1)), STATUS_NAMES,
+                             self.keys.key_rows(idx))
 
     def take_changes(self) -> list[Record]:
         """Records changed since the last call (each item once, in item order)."""

@@ -43,6 +43,9 @@ class KeyIndex:
         self._slot_idx = np.full(1, -1, dtype=np.int64)
         self._slot_key = np.empty(1, dtype=object)
         self.blob = bytearray()
+        # the byte length every key has, while they all have one (0: no key yet; -1: they
+        # differ): the blob is then a matrix of one key per row (``key_rows``)
+        self.width = 0
         self.offsets = np.zeros(17, dtype=np.int64)
         self.hashes = np.zeros(16, dtype=np.int64)
         self.table = np.zeros(32, dtype=np.int64)
@@ -83,6 +86,17 @@ class KeyIndex:
             got[miss] = fill
             self._keep(idx[miss], fill)
         return got.tolist()
+
+    def key_rows(self, idx: np.ndarray) -> np.ndarray | None:
+        """The UTF-8 bytes of the keys at ``idx`` as the rows of a uint8 matrix, when every
+        key has the same length in bytes (else None): a copy gathered by numpy, with no
+        string made per key."""
+        if self.width <= 0:
+            return None
+        rows = np.frombuffer(self.blob, dtype=np.uint8).reshape(self.n, self.width)
+        out = rows[idx]  # a copy: the view goes at once (the bytearray must stay growable)
+        del rows
+        return out
 
     def _keep(self, idx: np.ndarray, keys: np.ndarray) -> None:
         """Hold the strings ``keys`` of the indices ``idx`` in keys_of's cache."""
@@ -223,6 +237,9 @@ class KeyIndex:
         encoded = [k.encode("utf-8") for k in keys]
         lengths = np.fromiter((len(e) for e in encoded), dtype=np.int64, count=count)
         self.offsets[start + 1:need + 1] = self.offsets[start] + np.cumsum(lengths)
+        if count and self.width >= 0:
+            lo, hi = int(lengths.min()), int(lengths.max())
+            self.width = lo if lo == hi and self.width in (0, lo) else -1
         self.blob += b"".join(encoded)
         self.hashes[start:need] = h
         self.n = need

@@ -151,6 +151,9 @@ class RecordColumns:
     pinned: Any  # np.ndarray bool
     labels: tuple[str, str]
     status_names: tuple[str, ...]
+    # the keys' UTF-8 bytes as matrix rows when all have one length (KeyIndex.key_rows),
+    # for the commit's formatting; None: only ``keys``
+    key_rows: Any = None
 
     def __len__(self) -> int:
         return len(self.keys)
