@@ -6,7 +6,7 @@ import unicodedata
 
 import msgpack
 import pytest
-from hypothesis import example, given
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from streamgroup.core.types import Answer
@@ -292,15 +292,17 @@ _POISON = st.none() | st.tuples(st.integers(0, 5), st.integers(0, 5), st.one_of(
 def _decoded(d: codec.Decoded) -> tuple:
     """All a decoding gives, the answer columns as the journal writes them (bools stay
     bools)."""
-    c = d.cols
+    c = d.cols if d.keyed is None else d.keyed.columns()
     return (msgpack.packb([c.a, c.b, c.same, c.source, c.qid]), d.aids, list(d.origins),
             d.missing, [(x.fields, x.reason, x.kind, x.origin) for x in d.dead])
 
 
 def _slow(name: str, entries: list) -> tuple:
-    """The entries decoded with the fast path ``name`` turned off."""
+    """The entries decoded with the fast path ``name`` turned off (and the key-row path of
+    column packs, which comes before every other)."""
     with pytest.MonkeyPatch.context() as m:
         m.setattr(codec, name, lambda *args: False)
+        m.setattr(codec, "_key_row_packs", lambda *args: False)
         return _decoded(decode_answers(S, entries))
 
 
@@ -354,6 +356,58 @@ def test_column_pack_fast_path_decodes_like_the_element_by_element_path(
     aids, origins and dead letters, whatever mix of good and bad values it holds."""
     entries = _column_entries(_rows(good, poison), absent)
     assert _decoded(decode_answers(S, entries)) == _slow("_fast_columns", entries)
+
+
+_KEY_FORMS = ["k%04d", "é%03d", "shard-%026d", "x%040d", "é%0120d", "%d"]
+
+
+@settings(max_examples=150)
+@given(n=st.integers(1, 40), form=st.sampled_from(_KEY_FORMS), qid0=st.sampled_from(
+    [0, 1, 7, 95, 99_990, 10**17 - 5]), same=st.sampled_from(["bool", "int"]),
+    absent=st.sets(st.sampled_from(["source", "aid"])), packs=st.integers(1, 3),
+    poison=_POISON)
+def test_key_row_packs_decode_like_the_other_paths(n: int, form: str, qid0: int, same: str,
+                                                   absent: set, packs: int,
+                                                   poison: tuple | None) -> None:
+    """Column packs of keys of one length that answer qids, read by numpy into key rows,
+    decode exactly as the whole-column check and as element by element: same answers,
+    aids, origins and dead letters; a pack that needs a closer look anywhere (a poisoned
+    value, keys of several lengths, qids with a leading zero, ...) leaves them to those."""
+    rows = [[form % (2 * i), form % (2 * i + 1), bool(i % 3) if same == "bool" else i % 2,
+             f"src-{i % 4}", f"{qid0 + i}", f"aid-{i}" if i % 2 else None] for i in range(n)]
+    rows = _rows(rows, poison)
+    entries = [(f"{k}-0".encode(), {b"pack": msgpack.packb(
+        {k: [r[j] for r in rows] for j, k in enumerate(codec.COLUMN_FIELDS)
+         if k not in absent}, use_bin_type=True)}) for k in range(packs)]
+    got = decode_answers(S, entries)
+    assert _decoded(got) == _slow("_fast_columns", entries)
+    with pytest.MonkeyPatch.context() as m:
+        m.setattr(codec, "_key_row_packs", lambda *args: False)
+        assert _decoded(got) == _decoded(decode_answers(S, entries))
+    one_width = len({len((form % i).encode()) for i in range(2 * n)}) == 1
+    if poison is None and one_width and form != "%d":
+        assert got.keyed is not None and not got.dead  # the quick path was taken
+        assert got.keyed.a_rows.shape == (n * packs, len((form % 0).encode()))
+
+
+def test_key_row_packs_leave_odd_packs_to_the_general_path() -> None:
+    """What the key-row path must not take: each of these decodes as the other paths do."""
+    good = {"a": ["k1", "k2"], "b": ["k3", "k4"], "same": [True, False], "qid": ["10", "11"]}
+    odd = [{**good, "qid": ["010", "11"]}, {**good, "qid": ["10", 11]},
+           {**good, "qid": ["01", "11"]}, {**good, "qid": ["1x", "11"]},
+           {**good, "b": ["k3", "k44"]}, {**good, "b": ["k1", "k4"]},
+           {**good, "a": ["k\x7f", "k2"]}, {**good, "a": ["k\x00", "k2"]},
+           {**good, "same": [True, 2]}, {**good, "source": ["s", ""]},
+           {**good, "aid": ["p", "a\nb"]}, {**good, "a": [b"k1", b"k2"]},
+           {k: v for k, v in good.items() if k != "qid"}, {**good, "qid": ["1" * 19] * 2},
+           {**good, "a": ["\x85x", "k2"]}]
+    for data in odd:
+        entries = [(b"1-0", {b"pack": msgpack.packb(data, use_bin_type=True)})]
+        got = decode_answers(S, entries)
+        assert got.keyed is None, data
+        assert _decoded(got) == _slow("_fast_columns", entries)
+    entries = [(b"1-0", {b"pack": msgpack.packb(good, use_bin_type=True)})]
+    assert decode_answers(S, entries).keyed is not None
 
 
 def _column_entries(rows: list, absent: set) -> list:

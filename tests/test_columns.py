@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import hiredis
 import msgpack
 import numpy as np
@@ -12,7 +14,13 @@ from streamgroup.core.codes import STATUS_NAMES
 from streamgroup.core.columns import SortedQueue
 from streamgroup.core.engine import Engine
 from streamgroup.core.keyindex import KeyIndex, cache_size_for
-from streamgroup.core.types import Answer, AnswerColumns, EngineConfig, RecordColumns
+from streamgroup.core.types import (
+    Answer,
+    AnswerColumns,
+    EngineConfig,
+    KeyRowAnswers,
+    RecordColumns,
+)
 from streamgroup.sim.crowd import Crowd
 from streamgroup.stream import commit
 from streamgroup.stream.commit import (
@@ -259,6 +267,79 @@ def test_assign_command_from_key_rows_sets_what_the_reference_sets(
     pairs = {k: msgpack.unpackb(v) for k, v in zip(cmd[2::2], cmd[3::2], strict=True)}
     assert pairs == {k: msgpack.unpackb(v) for k, v in zip(flat[0::2], flat[1::2],
                                                             strict=True)}
+
+
+def _key_rows_of(answers: list[Answer]) -> KeyRowAnswers:
+    def rows(keys: list[str]) -> np.ndarray:
+        return np.frombuffer("".join(keys).encode(), dtype=np.uint8).reshape(len(keys), -1)
+    return KeyRowAnswers(rows([x.a for x in answers]), rows([x.b for x in answers]),
+                         np.array([x.same for x in answers], dtype=bool),
+                         [x.source for x in answers],
+                         np.array([int(x.qid) for x in answers], dtype=np.int64))
+
+
+def test_engine_takes_key_row_answers_as_it_takes_their_text() -> None:
+    """Two engines fed the same answers, one as text columns and one as key rows (the
+    quick check where each answer holds its question's keys as shown; the text checks
+    where one is swapped, names another pair or a qid never issued, repeats a qid, or comes
+    from a new source), end identical, refuse the same batches with the same reason, and
+    the quick check is what most batches take."""
+    crowd = Crowd(1000, seed=9, sources=[0.8, 0.7, 0.9])
+    cfg = EngineConfig(seed=9, question_timeout_ms=3000)  # refused batches are asked again
+    text_e, rows_e = Engine(cfg), Engine(cfg)
+    for e in (text_e, rows_e):
+        e.add_items([(k, None) for k in crowd.keys])
+    quick = {"taken": 0}
+    check = rows_e._check_key_rows
+
+    def counted(k: KeyRowAnswers) -> Any:
+        got = check(k)
+        quick["taken"] += got is not None
+        return got
+    rows_e._check_key_rows = counted  # type: ignore[method-assign]
+    rng = np.random.default_rng(9)
+    now, refused, rounds, asked = 0, 0, 0, []
+    for rnd in range(300):
+        now += 1000
+        qc = text_e.plan_columns(now)
+        assert rows_e.plan_columns(now).rows() == qc.rows()
+        asked += qc.rows()
+        answers = crowd.answer_now(asked[:40])  # a few at a time: many batches
+        del asked[:40]
+        if not answers:
+            continue
+        rounds += 1
+        kind = rnd % 10  # 1 to 5 change something; the rest is as asked
+        k = int(rng.integers(len(answers)))
+        x = answers[k]
+        if kind == 1:  # shown the other way round
+            answers[k] = x._replace(a=x.b, b=x.a)
+        elif kind == 2 and len(answers) > 1:  # a qid answered twice in the batch
+            answers.append(answers[0]._replace(source=crowd.source_names[1]))
+        elif kind == 3:  # a source heard of for the first time
+            answers[k] = x._replace(source=f"new-{rnd}")
+        elif kind == 4:  # a qid never issued: the batch is refused
+            answers[k] = x._replace(qid=str(10**9 + rnd))
+        elif kind == 5 and len(answers) > 1 and answers[0].qid != x.qid:  # another pair
+            answers[k] = x._replace(a=answers[0].a, b=answers[0].b)
+        want = got = None
+        try:
+            want = text_e.add_answer_columns(AnswerColumns.of(answers), now).tolist()
+        except Exception as exc:  # noqa: BLE001 - compared with the other engine's
+            want = repr(exc)
+        try:
+            got = rows_e.add_answer_columns(_key_rows_of(answers), now).tolist()
+        except Exception as exc:  # noqa: BLE001
+            got = repr(exc)
+        assert got == want
+        refused += isinstance(want, str)
+        cols_t, moved_t = text_e.take_update_columns()
+        cols_r, moved_r = rows_e.take_update_columns()
+        assert cols_t.rows() == cols_r.rows() and moved_t == moved_r
+        if text_e.done():
+            break
+    assert text_e.snapshot() == rows_e.snapshot()
+    assert refused >= 20 and quick["taken"] >= rounds // 3
 
 
 def test_engine_column_calls_equal_row_calls() -> None:

@@ -17,6 +17,8 @@ from streamgroup.settings import Settings
 from streamgroup.sim.crowd import Crowd
 from streamgroup.stream.adapter import SimAdapter
 from streamgroup.stream.codec import answer_fields, pack_answers
+from streamgroup.stream.recovery import load_state
+from streamgroup.stream.state import OP_ANSWER_COLUMNS, OP_KEY_ROWS, Batch
 from streamgroup.stream.worker import EXIT_STATE, Worker
 
 pytestmark = pytest.mark.redis
@@ -118,6 +120,39 @@ def test_question_column_packs_close_the_loop_and_read_like_packs_of_maps(
     assert len(rows) == sum(len(p["qid"]) for p in packs)
     assert len(rows) == sum(w.state.engine.stats()["issued"].values())
     assert rows[0] == {k: packs[0][k][0] for k in ("qid", "a", "b", "why", "ts")}
+    w.close()
+
+
+def test_column_packs_of_key_rows_close_the_loop_and_replay_exactly(redis_url: str) -> None:
+    """Column packs of keys of one length (read into key rows, no string per answer) place
+    every item; the journal holds them as key rows, and the state rebuilt from the
+    snapshot and that journal is exactly the running worker's."""
+    r = redis.Redis.from_url(redis_url)
+    crowd = Crowd(200, delta=0.6, sources=[0.6] * 20, seed=3)
+    push_items(r, crowd.keys)
+    cfg = settings(redis_url, pack_questions=True, question_columns=True, snapshot_every=3600)
+    w = Worker(cfg, WorkerMetrics())
+    adapter = SimAdapter(r, NS, crowd, pack=True, columns=True, aid_prefix="sim-")
+
+    def turn(wk: Worker) -> bool:
+        adapter.step()
+        return wk.state is not None and wk.state.engine.stats()["spend"] >= 600
+
+    assert w.run_until(turn, 60)
+    ops = [op for _, f in r.xrange(K.journal) for op, _ in Batch.from_journal(f[b"b"]).ops]
+    assert ops.count(OP_KEY_ROWS) >= 3 and OP_ANSWER_COLUMNS not in ops
+    assert w.state is not None
+    again = load_state(r, K, cfg)
+    assert again.engine.snapshot() == w.state.engine.snapshot() and again.seq == w.state.seq
+
+    def done(wk: Worker) -> bool:
+        adapter.step()
+        return wk.state is not None and wk.state.engine.done()
+
+    assert w.run_until(done, 60)
+    rec = assign(r)
+    assert len(rec) == 200 and errors_vs_truth(crowd, rec) <= 2
+    assert int(meta(r)["applied"]) == w.state.engine.stats()["spend"] == adapter.written
     w.close()
 
 

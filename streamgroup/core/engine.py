@@ -63,6 +63,7 @@ from .types import (
     Answer,
     AnswerColumns,
     EngineConfig,
+    KeyRowAnswers,
     Record,
     RecordColumns,
 )
@@ -329,10 +330,19 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         fresh = self.add_answer_columns(AnswerColumns.of(answers), now_ms)
         return [APPLIED if f else DUPLICATE for f in fresh.tolist()]
 
-    def add_answer_columns(self, answers: AnswerColumns, now_ms: int = 0) -> np.ndarray:
+    def add_answer_columns(self, answers: AnswerColumns | KeyRowAnswers, now_ms: int = 0
+                           ) -> np.ndarray:
         """:meth:`add_answers` on columns: a bool array, True where the answer was applied
-        (False: a duplicate). Same checks, same all-or-nothing refusal."""
-        got = self._check_answers(answers)
+        (False: a duplicate). Same checks, same all-or-nothing refusal. Answers with keys
+        as byte rows take a quick check when each holds its question's keys as shown, and
+        are read as text for the usual checks when not."""
+        got = None
+        if isinstance(answers, KeyRowAnswers):
+            got = self._check_key_rows(answers)
+            if got is None:
+                answers = answers.columns()
+        if got is None:
+            got = self._check_answers(answers)
         self.now_ms = max(self.now_ms, int(now_ms))
         count = len(answers)
         if not count:

@@ -11,7 +11,7 @@ import numpy as np
 from ..errors import EngineInputError
 from . import validate
 from .pairset import MAX_SOURCES
-from .types import Answer, AnswerColumns
+from .types import Answer, AnswerColumns, KeyRowAnswers
 
 _NONE = np.zeros(0, dtype=np.int64)
 
@@ -182,6 +182,35 @@ class IntakeMixin:
             raise EngineInputError(f"answer {pos}: {bad[pos]}")
         same = np.array(flags, dtype=bool) if count else np.zeros(0, dtype=bool)
         return Intake(keys, both, unknown, names, same, wq, qn, src)
+
+    def _check_key_rows(self, answers: KeyRowAnswers) -> Intake | None:
+        """The usual batch of :meth:`_check_answers`, its keys as byte rows: every answer
+        names an issued qid, its keys are byte for byte those its question showed (in the
+        order shown), its two items differ, and every source is known. Then the answers
+        are good and their items and sources are known: the Intake needs no string. None
+        when any of that fails (the caller then checks the text as usual)."""
+        count = len(answers)
+        qn = answers.qn
+        if not count or int(qn.max()) >= self.q.n or int(qn.min()) < 0:
+            return None
+        t, p = self.q["target"][qn], self.q["partner"][qn]
+        every = np.ones(count, dtype=bool)
+        guess = self._pair_guess(qn, t, p, np.arange(count), every, True, count)
+        if np.count_nonzero(guess[:count] == guess[count:]):
+            return None
+        shown = self.keys.key_rows(guess)
+        a_rows, b_rows = answers.a_rows, answers.b_rows
+        if shown is None or shown.shape[1] != a_rows.shape[1]:
+            return None
+        if not (np.array_equal(shown[:count], a_rows) and np.array_equal(shown[count:], b_rows)):
+            return None
+        try:
+            src = np.fromiter(map(self.source_index.__getitem__, answers.source),
+                              dtype=np.int64, count=count)
+        except KeyError:
+            return None
+        return Intake([], guess, _NONE, answers.source, answers.same, np.arange(count), qn,
+                      src)
 
     def _pair_guess(self, qn: np.ndarray, t: np.ndarray, p: np.ndarray, wq: np.ndarray,
                     issued: np.ndarray, every: bool, count: int) -> np.ndarray:

@@ -6,6 +6,8 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any, NamedTuple
 
+import numpy as np
+
 
 @dataclass(frozen=True, slots=True)
 class EngineConfig:
@@ -107,6 +109,51 @@ class AnswerColumns:
     def select(self, positions: Sequence[int]) -> AnswerColumns:
         return AnswerColumns(*([col[k] for k in positions] for col in
                                (self.a, self.b, self.same, self.source, self.qid)))
+
+
+@dataclass(slots=True)
+class KeyRowAnswers:
+    """Answers that each name a qid, with their keys as rows of UTF-8 bytes: what a column
+    pack of keys of one length decodes to without a Python string per key or qid
+    (``codec``), checked by the engine against the keys its questions showed. Row ``k`` is
+    the answer ``Answer(a_rows[k], b_rows[k], same[k], source[k], str(qn[k]))``."""
+
+    a_rows: Any  # np.ndarray (n, width) uint8
+    b_rows: Any  # np.ndarray (n, width) uint8
+    same: Any  # np.ndarray bool
+    source: list[str]
+    qn: Any  # np.ndarray int64: the qids as numbers (written without leading zeros)
+
+    def __len__(self) -> int:
+        return len(self.qn)
+
+    def columns(self) -> AnswerColumns:
+        """The same answers as lists of text (for every path but the quick one)."""
+        return AnswerColumns(self.texts(self.a_rows), self.texts(self.b_rows), self.same.tolist(),
+                             list(self.source), [f"{q}" for q in self.qn.tolist()])
+
+    def rows(self) -> list[Answer]:
+        return self.columns().rows()
+
+    @property
+    def qid(self) -> list[str]:
+        return [f"{q}" for q in self.qn.tolist()]
+
+    @staticmethod
+    def texts(rows: Any) -> list[str]:
+        """The rows of a uint8 matrix as text (UTF-8, no NUL in any row): joined by NUL,
+        decoded and split once (a NUL between rows also proves each row valid alone)."""
+        n, width = rows.shape
+        if n == 0:
+            return []
+        buf = np.zeros((n, width + 1), dtype=np.uint8)
+        buf[:, :width] = rows
+        return buf.tobytes()[:-1].decode("utf-8").split("\0")
+
+    def select(self, positions: Sequence[int]) -> KeyRowAnswers:
+        pos = np.asarray(positions, dtype=np.int64)
+        return KeyRowAnswers(self.a_rows[pos], self.b_rows[pos], self.same[pos],
+                             [self.source[k] for k in pos.tolist()], self.qn[pos])
 
 
 @dataclass(slots=True)

@@ -25,7 +25,7 @@ class SimAdapter:
 
     def __init__(self, client: redis.Redis, ns: str, crowd: Crowd, *, pack: bool = False,
                  group: str = ADAPTER_GROUP, consumer: str = "sim-1", count: int = 5000,
-                 aid_prefix: str | None = None) -> None:
+                 aid_prefix: str | None = None, columns: bool = False) -> None:
         self.client = client
         self.keys = Keys(ns)
         self.crowd = crowd
@@ -34,6 +34,7 @@ class SimAdapter:
         self.consumer = consumer
         self.count = count
         self.aid_prefix = aid_prefix
+        self.columns = columns  # packed answers as column packs (a map of arrays)
         self.written = 0
         self.qids: list[str] = []
         self._ready = False
@@ -77,7 +78,17 @@ class SimAdapter:
         pipe = self.client.pipeline(transaction=False)
         key = self.keys.answers
         n0 = self.written
-        if self.pack:
+        if self.pack and self.columns:
+            for i in range(0, len(answers), MAX_PACK_ANSWERS):
+                part = answers[i:i + MAX_PACK_ANSWERS]
+                cols: dict[str, list[Any]] = {
+                    "a": [a.a for a in part], "b": [a.b for a in part],
+                    "same": [a.same for a in part], "source": [a.source for a in part],
+                    "qid": [a.qid for a in part]}
+                if self.aid_prefix is not None:
+                    cols["aid"] = [f"{self.aid_prefix}{n0 + i + j}" for j in range(len(part))]
+                pipe.xadd(key, {"pack": msgpack.packb(cols, use_bin_type=True)})
+        elif self.pack:
             for i in range(0, len(answers), MAX_PACK_ANSWERS):
                 rows: list[dict[str, Any]] = []
                 for j, a in enumerate(answers[i:i + MAX_PACK_ANSWERS]):

@@ -17,6 +17,7 @@ from ..core.types import (
     APPLIED,
     Answer,
     AnswerColumns,
+    KeyRowAnswers,
     QuestionColumns,
     RecordColumns,
 )
@@ -37,10 +38,12 @@ from .state import (
     OP_ANSWER_COLUMNS,
     OP_ANSWERS,
     OP_ITEMS,
+    OP_KEY_ROWS,
     Batch,
     WorkerState,
     answers_columns_payload,
     answers_payload,
+    key_rows_payload,
 )
 
 
@@ -87,8 +90,9 @@ def _apply_items(state: WorkerState, items: list[tuple[str, str | None]],
     counts["dup:item"] += len(results) - applied
 
 
-def _apply_answers(state: WorkerState, cols: AnswerColumns, aids: list[str | None],
-                   origins: Sequence[Ref], stream: str, now_ms: int, out: Outcome) -> None:
+def _apply_answers(state: WorkerState, cols: AnswerColumns | KeyRowAnswers,
+                   aids: list[str | None], origins: Sequence[Ref], stream: str, now_ms: int,
+                   out: Outcome) -> None:
     counts, batch = out.counts, out.batch
     window = state.aids
     if aids.count(None) != len(aids):  # some answer carries an aid
@@ -109,7 +113,10 @@ def _apply_answers(state: WorkerState, cols: AnswerColumns, aids: list[str | Non
         return
     try:
         applied = state.apply_answer_columns(cols, now_ms)
-        batch.ops.append([OP_ANSWER_COLUMNS, answers_columns_payload(cols)])
+        if isinstance(cols, KeyRowAnswers):
+            batch.ops.append([OP_KEY_ROWS, key_rows_payload(cols)])
+        else:
+            batch.ops.append([OP_ANSWER_COLUMNS, answers_columns_payload(cols)])
         batch.aids.extend(a for a in aids if a is not None)
     except EngineInputError:
         good: list[tuple[Answer, str | None, Ref]] = []
@@ -195,8 +202,9 @@ def process(state: WorkerState, items_stream: str, items: list[Entry],
     if answers:
         da = _decoded(out, "answers", answers_stream, answers,
                       decode_answers(answers_stream, answers))
-        if len(da.cols):
-            _apply_answers(state, da.cols, da.aids, da.origins, answers_stream, now_ms, out)
+        got = da.keyed if da.keyed is not None else da.cols
+        if len(got):
+            _apply_answers(state, got, da.aids, da.origins, answers_stream, now_ms, out)
     out.questions = state.engine.plan_columns(now_ms)
     out.records, moved = state.engine.take_update_columns()
     for k in [k for k, v in counts.items() if not v]:

@@ -35,7 +35,8 @@ from typing import Any
 import msgpack
 import numpy as np
 
-from ..core.types import Answer, AnswerColumns
+from ..core.intake import digits_to_int64
+from ..core.types import Answer, AnswerColumns, KeyRowAnswers
 from ..keys import (
     CONTROL_CHARS,
     MAX_ID_BYTES,
@@ -188,6 +189,9 @@ class Decoded:
 
     items: list[tuple[str, str | None]] = field(default_factory=list)
     cols: AnswerColumns = field(default_factory=AnswerColumns.empty)  # the good answers
+    # or, when the batch is column packs of keys of one length that answer qids, the same
+    # as rows of bytes (``cols`` then stays empty): see _key_row_packs
+    keyed: KeyRowAnswers | None = None
     aids: list[str | None] = field(default_factory=list)  # parallel to cols
     # parallel to answers / items: the entry id, or (entry id, index) inside a pack; turned
     # into the readable "stream id[#index]" only when a dead letter needs it
@@ -350,7 +354,7 @@ _ROW_EID, _ROW_SAME = operator.itemgetter(0), operator.itemgetter(1)  # of _fast
 def decode_answers(stream: str, entries: Sequence[Entry]) -> Decoded:
     """Turn ``{NS}:answers`` entries (plain or packed) into answers and dead letters."""
     out = Decoded()
-    if _fast_answers(entries, out):
+    if _key_row_packs(entries, out) or _fast_answers(entries, out):
         return out
     answers, aids, origins, dead = out.cols, out.aids, out.origins, out.dead
     for eid, fields in as_fields(entries):
@@ -389,6 +393,203 @@ def decode_answers(stream: str, entries: Sequence[Entry]) -> Decoded:
         aids.append(aid)
         origins.append(eid)
     return out
+
+
+def _key_row_packs(entries: Sequence[Entry], out: Decoded) -> bool:
+    """The packed producer's usual batch, without a Python object per answer: every entry a
+    column pack (nothing but its ``pack`` field) whose keys all have one length in bytes
+    and whose every answer names a qid (see _key_row_pack). Returns False, having added
+    nothing, when anything needs the general path (which then decides, as always)."""
+    if not entries:
+        return False
+    parts: list[tuple[bytes, KeyRowAnswers, list[Any] | None]] = []
+    for eid, f in entries:
+        if type(f) is list:
+            if len(f) != 2 or f[0] != b"pack":
+                return False
+            pack = f[1]
+        elif type(f) is dict and len(f) == 1 and b"pack" in f:
+            pack = f[b"pack"]
+        else:
+            return False
+        got = _key_row_pack(pack)
+        if got is None:
+            return False
+        parts.append((eid, *got))
+    if len({p[1].a_rows.shape[1] for p in parts}) != 1:  # keys of different lengths
+        return False
+    if len(parts) == 1:
+        keyed = parts[0][1]
+    else:
+        keyed = KeyRowAnswers(*(np.concatenate([getattr(p[1], c) for p in parts])
+                                for c in ("a_rows", "b_rows", "same")),
+                              list(itertools.chain.from_iterable(p[1].source for p in parts)),
+                              np.concatenate([p[1].qn for p in parts]))
+    out.keyed = keyed
+    for eid, k, aids in parts:
+        out.aids += [None] * len(k) if aids is None else aids
+        out.origins.add_pack(eid, len(k))
+    return True
+
+
+_PACK_LIMITS = {"max_array_len": MAX_PACK_ANSWERS, "max_map_len": MAX_PACK_FIELDS,
+                "max_str_len": MAX_PACK_BYTES, "max_bin_len": MAX_PACK_BYTES,
+                "max_ext_len": 0}
+_DIGITS = np.frombuffer(b"0123456789", dtype=np.uint8)
+
+
+def _key_row_pack(pack: Any) -> tuple[KeyRowAnswers, list[Any] | None] | None:
+    """A column pack read straight into a :class:`KeyRowAnswers` (and its aids, None when
+    it has none), or None when it is anything else or anything in it needs a closer look:
+    keys ``a`` and ``b`` as strings of one byte length (1 to 255 bytes) with ``a != b``,
+    ``same`` as booleans or 0/1, every ``qid`` a number written in 1 to 18 digits without
+    leading zeros, ``source`` (if present) strings, ``aid`` (if present) short texts or nil.
+    The key, qid and flag arrays are located by the msgpack reader and read by numpy."""
+    if type(pack) is not bytes or len(pack) > MAX_PACK_BYTES:
+        return None
+    try:
+        u = msgpack.Unpacker(raw=False, max_buffer_size=len(pack) or 1, **_PACK_LIMITS)
+        u.feed(pack)
+        spans: dict[str, tuple[int, int]] = {}
+        other: dict[str, Any] = {}
+        for _ in range(u.read_map_header()):
+            name = u.unpack()
+            if name in spans or name in other:
+                return None
+            start = u.tell()
+            if name in ("a", "b", "same", "qid"):
+                u.skip()
+                spans[name] = (start, u.tell())
+            elif name in ("source", "aid"):
+                other[name] = u.unpack()
+            else:
+                u.skip()  # other keys are ignored, as in the general path
+        if u.tell() != len(pack) or len(spans) != 4:
+            return None
+    except Exception:  # noqa: BLE001 - anything odd: the general path names the problem
+        return None
+    ga, gb = _str_rows(pack, *spans["a"]), _str_rows(pack, *spans["b"])
+    same, qn = _flags(pack, *spans["same"]), _numbers(pack, *spans["qid"])
+    if ga is None or gb is None or same is None or qn is None:
+        return None
+    (ma, hw), mb = ga, gb[0]
+    n, width = ma.shape
+    if mb.shape != ma.shape or not (len(same) == len(qn) == n):
+        return None
+    if np.count_nonzero(ma.view(f"V{width}") == mb.view(f"V{width}")):  # a is b somewhere
+        return None
+    a, b = ma[:, hw:], mb[:, hw:]
+    source = other.get("source")
+    if source is None:
+        source = [""] * n  # anonymous, as in the general path
+    elif type(source) is not list or len(source) != n or not _short_texts(source):
+        return None
+    aids = other.get("aid")
+    if aids is not None:
+        if type(aids) is not list or len(aids) != n:
+            return None
+        given = [v for v in aids if v is not None]
+        if given and not _short_texts(given):
+            return None
+    return KeyRowAnswers(a, b, same, source, qn), aids
+
+
+def _array_body(buf: bytes, start: int, end: int) -> tuple[int, int] | None:
+    """(element count, offset of the first element) of the msgpack array at ``start``."""
+    h = buf[start]
+    if 0x90 <= h <= 0x9F:
+        return h & 0x0F, start + 1
+    if h == 0xDC:
+        return int.from_bytes(buf[start + 1:start + 3], "big"), start + 3
+    if h == 0xDD:
+        return int.from_bytes(buf[start + 1:start + 5], "big"), start + 5
+    return None
+
+
+def _same_width(buf: bytes, start: int, end: int) -> tuple[np.ndarray, int] | None:
+    """The elements of the array at ``start``, whole (string header, then the bytes), as
+    the rows of a uint8 matrix, with the length of their header (1: fixstr, 2: str8), when
+    every element is a string of one byte length (1 to 255) written with one header."""
+    body = _array_body(buf, start, end)
+    if body is None or body[0] == 0:
+        return None
+    n, at = body
+    head = buf[at]
+    if 0xA1 <= head <= 0xBF:
+        hw, size = 1, head & 0x1F
+    elif head == 0xD9 and at + 1 < end and buf[at + 1] > 0:
+        hw, size = 2, buf[at + 1]
+    else:
+        return None
+    width = hw + size
+    if end - at != n * width:
+        return None
+    m = np.frombuffer(buf, dtype=np.uint8, count=n * width, offset=at).reshape(n, width)
+    if np.count_nonzero(m[:, 0] != head) or (hw == 2 and np.count_nonzero(m[:, 1] != size)):
+        return None
+    return m, hw
+
+
+def _str_rows(buf: bytes, start: int, end: int) -> tuple[np.ndarray, int] | None:
+    """``_same_width`` of strings that are text as the general path accepts it: no control
+    character (a byte below 0x20, or DEL; C1 controls too) and valid UTF-8 in each (checked
+    only when some byte is not ASCII). The checks run over the whole elements at once: a
+    header byte is never below 0x20 nor DEL, except the length byte of a str8 (then a key
+    of 127 bytes takes the general path)."""
+    got = _same_width(buf, start, end)
+    if got is None:
+        return None
+    m, hw = got
+    flat = m.reshape(-1)
+    if np.count_nonzero((flat < 0x20) | (flat == 0x7F)):
+        return None
+    if np.count_nonzero(flat >= 0x80) != np.count_nonzero(m[:, :hw] >= 0x80):
+        try:  # some key is not ASCII
+            texts = KeyRowAnswers.texts(m[:, hw:])
+        except UnicodeDecodeError:
+            return None
+        if has_control("\0".join(texts), nul_ok=True):
+            return None
+    return got
+
+
+def _flags(buf: bytes, start: int, end: int) -> np.ndarray | None:
+    """An array of true/false (or 0/1) as booleans."""
+    body = _array_body(buf, start, end)
+    if body is None or end - body[1] != body[0]:
+        return None
+    v = np.frombuffer(buf, dtype=np.uint8, count=body[0], offset=body[1])
+    yes, no = (v == 0xC3) | (v == 1), (v == 0xC2) | (v == 0)
+    if np.count_nonzero(yes) + np.count_nonzero(no) != len(v):
+        return None
+    return yes
+
+
+def _numbers(buf: bytes, start: int, end: int) -> np.ndarray | None:
+    """An array of qids written as 1 to 18 digits without a leading zero, as numbers: by
+    numpy when they all have one length, else (qids across a power of ten) through the
+    msgpack reader."""
+    got = _same_width(buf, start, end)
+    if got is not None:
+        m, hw = got
+        digits = m[:, hw:]
+        n, width = digits.shape
+        # every byte but the headers a digit (a header byte is 0xA1 or more)
+        if width > 18 or np.count_nonzero(m.reshape(-1) - np.uint8(48) <= 9) != n * width:
+            return None
+        if width > 1 and np.count_nonzero(digits[:, 0] == 48):
+            return None
+        return (digits - 48).astype(np.int64) @ (10 ** np.arange(width - 1, -1, -1,
+                                                                 dtype=np.int64))
+    try:
+        texts = msgpack.unpackb(buf[start:end], raw=False, **_PACK_LIMITS)
+    except Exception:  # noqa: BLE001
+        return None
+    if type(texts) is not list or not texts or set(map(type, texts)) != {str}:
+        return None
+    if any(len(t) > 1 and t[0] == "0" for t in texts):
+        return None
+    return digits_to_int64(texts)
 
 
 def _unpack_pack(pack: bytes) -> list[Any] | ColumnPack:

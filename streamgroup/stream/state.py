@@ -20,9 +20,10 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import msgpack
+import numpy as np
 
 from ..core.engine import Engine
-from ..core.types import Answer, AnswerColumns, EngineConfig
+from ..core.types import Answer, AnswerColumns, EngineConfig, KeyRowAnswers
 from ..errors import StateError
 
 SNAPSHOT_VERSION = 1
@@ -33,6 +34,9 @@ DEFAULT_AID_WINDOW = 100_000
 OP_ITEMS = "i"
 OP_ANSWERS = "a"  # payload: one [a, b, same, source, qid] row per answer
 OP_ANSWER_COLUMNS = "A"  # payload: [a-list, b-list, same-list, source-list, qid-list]
+# payload: [key width, a rows, b rows (bytes), same (bytes of 0/1), source-list, qids (bytes
+# of little-endian int64)]: KeyRowAnswers, as the column packs of keys of one length came
+OP_KEY_ROWS = "K"
 
 
 
@@ -97,6 +101,19 @@ def answers_columns_payload(cols: AnswerColumns) -> list[list[Any]]:
     return [cols.a, cols.b, cols.same, cols.source, cols.qid]
 
 
+def key_rows_payload(k: KeyRowAnswers) -> list[Any]:
+    return [k.a_rows.shape[1], k.a_rows.tobytes(), k.b_rows.tobytes(),
+            k.same.astype(np.uint8).tobytes(), k.source, k.qn.astype("<i8").tobytes()]
+
+
+def key_rows_from_payload(payload: Sequence[Any]) -> KeyRowAnswers:
+    width, a, b, same, source, qn = payload
+    return KeyRowAnswers(np.frombuffer(a, dtype=np.uint8).reshape(-1, width),
+                         np.frombuffer(b, dtype=np.uint8).reshape(-1, width),
+                         np.frombuffer(same, dtype=np.uint8).astype(bool), list(source),
+                         np.frombuffer(qn, dtype="<i8").astype(np.int64))
+
+
 def answers_from_payload(rows: Sequence[Sequence[Any]]) -> list[Answer]:
     return [Answer(r[0], r[1], bool(r[2]), r[3], r[4]) for r in rows]
 
@@ -123,7 +140,7 @@ class WorkerState:
     def apply_answers(self, answers: list[Answer], now_ms: int) -> list[str]:
         return self.engine.add_answers(answers, now_ms)
 
-    def apply_answer_columns(self, cols: AnswerColumns, now_ms: int) -> Any:
+    def apply_answer_columns(self, cols: AnswerColumns | KeyRowAnswers, now_ms: int) -> Any:
         return self.engine.add_answer_columns(cols, now_ms)
 
     def replay(self, batch: Batch) -> None:
@@ -137,6 +154,8 @@ class WorkerState:
                 a, b, same, source, qid = payload
                 self.engine.add_answer_columns(AnswerColumns(a, b, same, source, qid),
                                                batch.now_ms)
+            elif op == OP_KEY_ROWS:
+                self.engine.add_answer_columns(key_rows_from_payload(payload), batch.now_ms)
             elif op == OP_ANSWERS:
                 self.engine.add_answers(answers_from_payload(payload), batch.now_ms)
             else:
