@@ -326,6 +326,12 @@ class Worker:
                 self._had_lease = True
                 self._next_renew = time.monotonic() + self.settings.lease_ttl / 3
                 return
+            if self._epoch is None:
+                # a standby: the namespace is in use, so its state exists; remember whose it
+                # is, so that a Redis that comes back empty is refused, not started afresh
+                epoch = client.get(self.keys.epoch)
+                if epoch is not None:
+                    self._epoch = epoch.decode()
             if time.monotonic() >= said:
                 self._log.warning("another worker holds the namespace; waiting for it",
                                   holder=other, lease_ttl=self.settings.lease_ttl)
