@@ -633,11 +633,10 @@ class _Stopped(Exception):
 def main(argv: list[str] | None = None) -> int:
     """``python -m streamgroup.stream.worker --redis URL --ns NS [--name value ...]``."""
     import argparse
-    import os
-    import signal
     import sys
     from dataclasses import fields
 
+    from ..commands.run import install_signal_handlers
     from ..settings import load_settings
 
     p = argparse.ArgumentParser(prog="python -m streamgroup.stream.worker")
@@ -646,16 +645,7 @@ def main(argv: list[str] | None = None) -> int:
     args = p.parse_args(argv)
     settings = load_settings(vars(args), env={})
     worker = Worker(settings)
-    hits = {"n": 0}
-
-    def on_signal(signum: int, _frame: Any) -> None:
-        hits["n"] += 1
-        if hits["n"] > 1:
-            os._exit(128 + signum)
-        worker.request_stop()
-
-    signal.signal(signal.SIGTERM, on_signal)
-    signal.signal(signal.SIGINT, on_signal)
+    install_signal_handlers(worker.request_stop, grace=settings.grace)
     tune_gc()
     code = worker.run()
     sys.stdout.flush()
