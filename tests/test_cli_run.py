@@ -93,6 +93,22 @@ def test_second_signal_exits_at_once() -> None:
         signal.signal(signal.SIGINT, old_int)
 
 
+def test_a_stop_not_done_within_the_grace_period_exits_at_once() -> None:
+    """After the first signal, the hard exit comes by itself once `grace` is over."""
+    calls: list[object] = []
+    old_term, old_int = signal.getsignal(signal.SIGTERM), signal.getsignal(signal.SIGINT)
+    try:
+        install_signal_handlers(lambda: calls.append("stop"), calls.append, grace=0.2)
+        os.kill(os.getpid(), signal.SIGTERM)
+        deadline = time.monotonic() + 5
+        while len(calls) < 2 and time.monotonic() < deadline:
+            time.sleep(0.01)
+        assert calls == ["stop", 128 + signal.SIGTERM]
+    finally:
+        signal.signal(signal.SIGTERM, old_term)
+        signal.signal(signal.SIGINT, old_int)
+
+
 def test_busy_metrics_port_is_a_user_error(redis_url: str, capsys) -> None:
     """A metrics address already in use: one line, exit 2, before the worker starts."""
     with socket.socket() as s:

@@ -15,6 +15,7 @@ import redis
 
 from streamgroup.keys import Keys
 from streamgroup.stream import lease
+from tests.redisproc import RedisProc
 from tests.test_crash import ROOT, WORKER_FLAGS, consumed, recorded_input, wait_for, write_input
 
 pytestmark = [pytest.mark.redis]
@@ -110,3 +111,32 @@ def test_a_restart_under_the_same_name_does_not_wait_for_the_lease(redis_url: st
     wait_for(lambda: consumed(r, "again"), 60, "the restarted worker to finish")
     proc.send_signal(signal.SIGTERM)
     assert proc.wait(15) == 0
+
+
+def test_a_waiting_worker_refuses_a_namespace_whose_data_was_lost(tmp_path: Path) -> None:
+    """Redis comes back empty while a second worker waits for the lease: the waiting one
+    saw the namespace in use, so it exits 3 like the holder instead of starting over."""
+    server = RedisProc().start()  # its own server: this test restarts it without its data
+    procs: list[subprocess.Popen[bytes]] = []
+    try:
+        r = server.client()
+        crowd, entries = recorded_input(n=150, seed=8)
+        write_input(r, "gone", crowd, entries)
+        k = Keys("gone")
+        procs.append(spawn(server.url, "gone", tmp_path / "a.log", batch=2, consumer="w-a"))
+        wait_for(lambda: int(r.hget(k.meta, "seq") or 0) >= 3, 30, "the first worker to commit")
+        procs.append(spawn(server.url, "gone", tmp_path / "b.log", batch=2, consumer="w-b"))
+        wait_for(lambda: "another worker holds the namespace" in (tmp_path / "b.log").read_text()
+                 or procs[1].poll() is not None, 30, "the second worker to wait")
+        assert procs[1].poll() is None
+        server.restart()  # no persistence: every key is gone
+        wait_for(lambda: all(p.poll() is not None for p in procs), 10, "both workers to stop")
+        assert [p.returncode for p in procs] == [3, 3]
+        assert "refusing to start over" in (tmp_path / "b.log").read_text()
+        assert server.client().keys("*") == []  # nothing was created afresh
+    finally:
+        for p in procs:
+            if p.poll() is None:
+                p.kill()
+                p.wait(10)
+        server.cleanup()

@@ -16,7 +16,7 @@ from streamgroup.serve.metrics import WorkerMetrics
 from streamgroup.settings import Settings
 from streamgroup.sim.crowd import Crowd
 from streamgroup.stream.adapter import SimAdapter
-from streamgroup.stream.codec import answer_fields, pack_answers
+from streamgroup.stream.codec import answer_fields, pack_answer_columns, pack_answers
 from streamgroup.stream.recovery import load_state
 from streamgroup.stream.state import OP_ANSWER_COLUMNS, OP_KEY_ROWS, Batch
 from streamgroup.stream.worker import EXIT_STATE, Worker
@@ -397,13 +397,16 @@ def test_inputs_are_trimmed_only_once_every_group_acknowledged(redis_url: str) -
     w.close()
 
 
-def test_big_packs_are_split_into_batches_of_bounded_answers(redis_url: str) -> None:
-    """Packs read together are processed a few at a time, under the answer cap, all once."""
+@pytest.mark.parametrize("packer", [pack_answers, pack_answer_columns])
+def test_big_packs_are_split_into_batches_of_bounded_answers(redis_url: str, packer: Any
+                                                             ) -> None:
+    """Packs read together are processed a few at a time, under the answer cap, all once
+    (column packs too: their answers count, not the entry)."""
     r = redis.Redis.from_url(redis_url)
     keys = [f"shard-{i:06d}" for i in range(80)]
     push_items(r, keys)
     for p in range(10):
-        r.xadd(K.answers, {"pack": pack_answers([
+        r.xadd(K.answers, {"pack": packer([
             Answer(keys[j], keys[j + 1 + p], j % 2 == 0, f"s{p}") for j in range(30)])})
     w = Worker(settings(redis_url))
     w.start()
@@ -497,6 +500,13 @@ def test_answers_total_counts_packs_and_plain_entries() -> None:
     plain = [[b"1-0", [b"a", b"x", b"b", b"y", b"same", b"1", b"source", b"s", b"qid", b"4"]]]
     packed = [[b"2-0", [b"pack", pack_answers([Answer("p", "q", True, "s", None)] * 3)]]]
     gone = [[b"3-0", None]]
-    for batch in (plain * 5, plain + packed, packed, plain + gone, gone, []):
+    columns = [[b"4-0", [b"pack", pack_answer_columns([Answer("p", "q", True, "s")] * 40)]]]
+    for batch in (plain * 5, plain + packed, packed, plain + gone, gone, [], columns):
         assert answers_total(batch) == sum(map(_answers_in, batch))
     assert answers_total(plain * 5 + packed) == 8
+    assert answers_total(plain + columns) == 41
+    # the columns' order does not matter; a broken pack counts one (the codec rejects it)
+    later = msgpack.packb({"source": ["s"] * 7, "same": [1] * 7, "a": ["p"] * 7,
+                           "b": ["q"] * 7})
+    assert _answers_in([b"5-0", [b"pack", later]]) == 7
+    assert _answers_in([b"6-0", [b"pack", b"\x83\xa1a"]]) == 1

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import signal
+import time
 
 import pytest
 import redis
@@ -33,6 +34,35 @@ def test_sigterm_commits_the_batch_in_hand_and_exits_zero(redis_url: str) -> Non
     assert not r.exists(k.journal) and r.exists(k.snapshot)
     proc = spawn(redis_url, "sig", batch=50)
     wait_for(lambda: consumed(r, "sig"), 60, "the restarted worker to finish the stream")
+    proc.send_signal(signal.SIGTERM)
+    assert proc.wait(15) == 0
+    assert int(r.hget(k.meta, "entries:answers")) == total
+
+
+def test_a_stop_that_cannot_finish_ends_after_the_grace_period(redis_url: str) -> None:
+    """SIGTERM while Redis does not answer: the worker leaves once `grace` is over (not
+    after its socket timeouts), and a restart applies what it had in hand, once."""
+    r = redis.Redis.from_url(redis_url)
+    crowd, entries = recorded_input(n=150, seed=3)
+    write_input(r, "hang", crowd, entries)
+    k = Keys("hang")
+    total = r.xlen(k.answers)
+    proc = spawn(redis_url, "hang", batch=5, grace=1)
+    try:
+        wait_for(lambda: int(r.hget(k.meta, "seq") or 0) >= 3 or proc.poll() is not None, 30,
+                 "the worker to commit batches")
+        r.execute_command("CLIENT", "PAUSE", 5000, "ALL")  # the worker's commands hang
+        time.sleep(0.2)
+        t0 = time.monotonic()
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(10) == 128 + signal.SIGTERM
+        assert time.monotonic() - t0 < 4  # the grace period, not 10 s of socket timeout
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(10)
+    proc = spawn(redis_url, "hang", batch=50)  # (it waits for the pause to end)
+    wait_for(lambda: consumed(r, "hang"), 60, "the restarted worker to finish the stream")
     proc.send_signal(signal.SIGTERM)
     assert proc.wait(15) == 0
     assert int(r.hget(k.meta, "entries:answers")) == total

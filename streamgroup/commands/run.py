@@ -7,9 +7,9 @@ over silently; 4 another worker took the namespace's lease; 1 an unexpected erro
 (logged with its traceback).
 
 Signals: the first SIGTERM or SIGINT asks the worker to stop (it commits the batch in hand
-within the grace period and exits 0); a second one exits at once. A hard exit is safe by
-design: whatever was not committed is still pending in its stream and is applied once by
-the next run.
+within the grace period and exits 0; once the grace period is over, it exits at once); a
+second one exits at once. A hard exit is safe by design: whatever was not committed is
+still pending in its stream and is applied once by the next run.
 """
 
 from __future__ import annotations
@@ -19,6 +19,7 @@ import os
 import signal
 import socket
 import sys
+import threading
 from collections.abc import Callable
 from dataclasses import fields
 from types import FrameType
@@ -39,21 +40,32 @@ STREAMGROUP_REDIS=rediss://:secret@redis.internal:6380/0 streamgroup run --confi
 
 
 def install_signal_handlers(stop: Callable[[], None],
-                            hard_exit: Callable[[int], None] = os._exit) -> None:
-    """First SIGTERM/SIGINT: ``stop()`` (the worker drains); second: ``hard_exit`` now.
+                            hard_exit: Callable[[int], None] = os._exit,
+                            grace: float | None = None) -> None:
+    """First SIGTERM/SIGINT: ``stop()`` (the worker drains); second, or ``grace`` seconds
+    after the first without the worker having ended: ``hard_exit`` now.
 
-    The handler only sets state or leaves; it never raises into the loop.
+    The handler only sets state or leaves; it never raises into the loop. (A drain can
+    hang on a Redis that does not answer: the grace timer bounds it; what it cuts short is
+    still pending and is applied once by the next run.)
     """
     seen = {"n": 0}
+
+    def leave(why: str, signum: int) -> None:
+        os.write(2, f"streamgroup run: {why}, exiting now\n".encode())
+        hard_exit(128 + signum)
 
     def handler(signum: int, _frame: FrameType | None) -> None:
         seen["n"] += 1
         if seen["n"] == 1:
             stop()
+            if grace is not None:
+                timer = threading.Timer(grace, leave, (f"no clean stop within the grace "
+                                                       f"period ({grace:g} s)", signum))
+                timer.daemon = True
+                timer.start()
         else:
-            os.write(2, f"streamgroup run: second {signal.Signals(signum).name}, "
-                        "exiting now\n".encode())
-            hard_exit(128 + signum)
+            leave(f"second {signal.Signals(signum).name}", signum)
 
     signal.signal(signal.SIGTERM, handler)
     signal.signal(signal.SIGINT, handler)
@@ -86,6 +98,6 @@ def run(args: argparse.Namespace) -> int:
 
     configure_logging(settings.log_level, settings.log_format, sys.stderr)
     worker = Worker(settings)
-    install_signal_handlers(worker.request_stop)
+    install_signal_handlers(worker.request_stop, grace=settings.grace)
     tune_gc()
     return int(worker.run())

@@ -31,15 +31,17 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
+import msgpack
 import redis
 import structlog
 
 from ..errors import StateError
-from ..keys import GROUP, Keys
+from ..keys import GROUP, MAX_PACK_ANSWERS, Keys
 from ..serve.metrics import WorkerMetrics
 from ..settings import Settings
 from . import lease, recovery
 from .batch import Outcome, process
+from .codec import MAX_PACK_FIELDS
 from .commit import Caps, CommitError, CommitPlan, build_commit, execute, receive, send
 from .progress import Progress
 from .state import WorkerState
@@ -69,7 +71,8 @@ def tune_gc() -> None:
 
 
 def _answers_in(entry: Any) -> int:
-    """Answers in one raw entry: 1, or the length of a pack's msgpack array header (cheap)."""
+    """Answers in one raw entry: 1, or the length of a pack's msgpack array header (cheap),
+    or for a column pack (a map) the length of its first answer column."""
     f = entry[1]
     pack = f[1] if f and len(f) == 2 and f[0] == b"pack" else None
     if not pack:
@@ -81,7 +84,30 @@ def _answers_in(entry: Any) -> int:
         return int.from_bytes(pack[1:3], "big")
     if head == 0xDD and len(pack) >= 5:
         return int.from_bytes(pack[1:5], "big")
-    return 1  # not an array: the codec will reject it
+    if 0x80 <= head <= 0x8F or head in (0xDE, 0xDF):
+        return _column_answers(pack)
+    return 1  # neither: the codec will reject it
+
+
+_COLUMN_KEYS = ("a", "b", "same")
+
+
+def _column_answers(pack: bytes) -> int:
+    """The length of a column pack's ``a``, ``b`` or ``same`` array, whichever comes first
+    (the codec requires them of one length), read from the headers only; 1 if there is none
+    or the pack is broken (the codec will reject it)."""
+    unpacker = msgpack.Unpacker(raw=False, strict_map_key=False, max_buffer_size=len(pack),
+                                max_map_len=MAX_PACK_FIELDS, max_array_len=MAX_PACK_ANSWERS,
+                                max_ext_len=0)
+    try:
+        unpacker.feed(pack)
+        for _ in range(unpacker.read_map_header()):
+            if unpacker.unpack() in _COLUMN_KEYS:
+                return max(1, unpacker.read_array_header())
+            unpacker.skip()
+    except Exception:  # noqa: BLE001 - msgpack raises several unrelated types
+        pass
+    return 1
 
 
 def answers_total(entries: Sequence[Any]) -> int:
@@ -300,6 +326,12 @@ class Worker:
                 self._had_lease = True
                 self._next_renew = time.monotonic() + self.settings.lease_ttl / 3
                 return
+            if self._epoch is None:
+                # a standby: the namespace is in use, so its state exists; remember whose it
+                # is, so that a Redis that comes back empty is refused, not started afresh
+                epoch = client.get(self.keys.epoch)
+                if epoch is not None:
+                    self._epoch = epoch.decode()
             if time.monotonic() >= said:
                 self._log.warning("another worker holds the namespace; waiting for it",
                                   holder=other, lease_ttl=self.settings.lease_ttl)
@@ -601,11 +633,10 @@ class _Stopped(Exception):
 def main(argv: list[str] | None = None) -> int:
     """``python -m streamgroup.stream.worker --redis URL --ns NS [--name value ...]``."""
     import argparse
-    import os
-    import signal
     import sys
     from dataclasses import fields
 
+    from ..commands.run import install_signal_handlers
     from ..settings import load_settings
 
     p = argparse.ArgumentParser(prog="python -m streamgroup.stream.worker")
@@ -614,16 +645,7 @@ def main(argv: list[str] | None = None) -> int:
     args = p.parse_args(argv)
     settings = load_settings(vars(args), env={})
     worker = Worker(settings)
-    hits = {"n": 0}
-
-    def on_signal(signum: int, _frame: Any) -> None:
-        hits["n"] += 1
-        if hits["n"] > 1:
-            os._exit(128 + signum)
-        worker.request_stop()
-
-    signal.signal(signal.SIGTERM, on_signal)
-    signal.signal(signal.SIGINT, on_signal)
+    install_signal_handlers(worker.request_stop, grace=settings.grace)
     tune_gc()
     code = worker.run()
     sys.stdout.flush()
