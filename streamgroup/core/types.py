@@ -167,21 +167,24 @@ class QuestionColumns:
         parts = self.parts
         if len(parts) == 1 and isinstance(parts[0], tuple):
             return parts[0][j]  # the lists given
-        col = self._cols[j]
-        if col is None:
-            col = []
+        if self._cols[j] is None:
+            made = (1, 2) if j in (1, 2) else (j,)  # a and b together: one gather of keys
+            cols: dict[int, list[Any]] = {k: [] for k in made}
             for p in parts:
                 if isinstance(p, tuple):
-                    col += p[j]
+                    for k in made:
+                        cols[k] += p[k]
                 elif j == 0:
-                    col += [f"{n}" for n in p.qid.tolist()]  # (f-strings: quicker than str)
+                    cols[0] += [f"{n}" for n in p.qid.tolist()]  # (f-strings: quicker than str)
                 elif j <= 2:
-                    keys = p.keys.keys_of(p.shown)  # one gather for a and b
-                    col += keys[:len(p)] if j == 1 else keys[len(p):]
+                    keys = p.keys.keys_of(p.shown)
+                    cols[1] += keys[:len(p)]
+                    cols[2] += keys[len(p):]
                 else:
-                    col += [p.why if j == 3 else p.ts_ms] * len(p)
-            self._cols[j] = col
-        return col
+                    cols[j] += [p.why if j == 3 else p.ts_ms] * len(p)
+            for k in made:
+                self._cols[k] = cols[k]
+        return self._cols[j]
 
     @property
     def qid(self) -> list[str]:
