@@ -7,6 +7,7 @@ from typing import Any
 import hiredis
 import msgpack
 import numpy as np
+import pytest
 from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
@@ -19,8 +20,11 @@ from streamgroup.core.types import (
     AnswerColumns,
     EngineConfig,
     KeyRowAnswers,
+    Question,
+    QuestionColumns,
     RecordColumns,
 )
+from streamgroup.keys import Keys
 from streamgroup.sim.crowd import Crowd
 from streamgroup.stream import commit
 from streamgroup.stream.commit import (
@@ -367,3 +371,175 @@ def test_engine_column_calls_equal_row_calls() -> None:
     assert AnswerColumns.of(answers).rows() == answers
     assert AnswerColumns.of([]).rows() == [] and Answer("a", "b", True) in AnswerColumns.of(
         [Answer("a", "b", True)]).rows()
+
+
+# -- question column packs, written from the engine's arrays ------------------------------
+
+def _keys_of_width(width: int, count: int, wide: bool, seed: int) -> list[str]:
+    """Up to ``count`` different keys of ``width`` bytes of UTF-8 each; with ``wide``, some
+    of their characters take two bytes (é) or three (€)."""
+    rng = np.random.default_rng(seed)
+    chars = ["a", "b", "c", "z", "0", "-"] + (["é", "€"] if wide else [])
+    out: set[str] = set()
+    for _ in range(4 * count):
+        key, left = "", width
+        while left:
+            c = chars[int(rng.integers(len(chars)))]
+            if len(c.encode()) <= left:
+                key, left = key + c, left - len(c.encode())
+        out.add(key)
+        if len(out) == count:
+            break
+    return sorted(out)
+
+
+def _question_groups(keys: list[str], index: KeyIndex, start: int,
+                     groups: list[tuple[int, str, int]], seed: int
+                     ) -> tuple[QuestionColumns, dict[str, list]]:
+    """Columns made of one engine-like group per (count, why, ts), with consecutive qids
+    from ``start`` and items at random; and the same questions as plain lists, built
+    without QuestionColumns (the reference)."""
+    rng = np.random.default_rng(seed)
+    qc = QuestionColumns.empty()
+    ref: dict[str, list] = {"qid": [], "a": [], "b": [], "why": [], "ts": []}
+    for count, why, ts in groups:
+        shown = rng.integers(0, len(keys), 2 * count)
+        qid = np.arange(start, start + count, dtype=np.int64)
+        start += count
+        qc.extend(QuestionColumns.issued(qid, index.add(keys)[shown], index, why, ts))
+        ref["qid"] += [str(q) for q in range(start - count, start)]
+        ref["a"] += [keys[k] for k in shown[:count].tolist()]
+        ref["b"] += [keys[k] for k in shown[count:].tolist()]
+        ref["why"] += [why] * count
+        ref["ts"] += [ts] * count
+    return qc, ref
+
+
+def _packed_slice(ref: dict[str, list], i: int, j: int) -> bytes:
+    return msgpack.packb({k: v[i:j] for k, v in ref.items()}, use_bin_type=True)
+
+
+QID_STARTS = [0, 1, 5, 9, 90, 99, 9_990, 9_999, 99_999, 999_990, 2**31 - 7, 2**32 - 9,
+              10**12 - 3, 10**18 - 20]  # around powers of ten (digit counts) and dtypes
+TIMES = [0, 1, 127, 128, 255, 256, 65_535, 65_536, 2**32 - 1, 2**32, 1_764_000_000_000]
+
+
+@settings(max_examples=50, deadline=None)
+@given(first=st.integers(1, 25_000),
+       more=st.lists(st.tuples(st.integers(1, 300), st.sampled_from(["seed", "place", "check"]),
+                               st.sampled_from(TIMES)), max_size=4),
+       why=st.sampled_from(["seed", "place", "check", "plaçe"]), ts=st.sampled_from(TIMES),
+       start=st.sampled_from(QID_STARTS) | st.integers(0, 10**15),
+       width=st.sampled_from([1, 5, 12, 31, 32, 33, 200, 255, 256]), wide=st.booleans(),
+       seed=st.integers(0, 2**32 - 1), data=st.data())
+@example(first=15, more=[], why="place", ts=1_764_000_000_000, start=0, width=12, wide=False,
+         seed=0, data=None)
+@example(first=16, more=[(1, "check", 5)], why="seed", ts=0, start=9, width=31, wide=True,
+         seed=1, data=None)
+@example(first=10_000, more=[(300, "check", 2**32)], why="place", ts=65_536, start=99_999,
+         width=32, wide=True, seed=2, data=None)
+def test_question_column_pack_is_what_msgpack_packs(
+        first: int, more: list, why: str, ts: int, start: int, width: int, wide: bool,
+        seed: int, data: st.DataObject | None) -> None:
+    """The column pack written from the engine's arrays is, byte for byte, msgpack-python's
+    packb of the columns as lists, for any count, qids across powers of ten, keys of any
+    one length in bytes (ASCII or not), several groups of different why and time, and any
+    slice of them."""
+    keys = _keys_of_width(width, 50, wide and width > 1, seed)
+    index = KeyIndex()
+    qc, ref = _question_groups(keys, index, start, [(first, why, ts), *more], seed)
+    n = len(qc)
+    assert n == len(ref["qid"])
+    cuts = [(0, n), (0, min(n, commit.MAX_PACK_ANSWERS))]
+    if data is not None:
+        i = data.draw(st.integers(0, n - 1))
+        cuts.append((i, data.draw(st.integers(i + 1, n))))
+    for i, j in cuts:
+        want = _packed_slice(ref, i, j)
+        assert commit._question_column_rows(qc, i, j) == want  # the numpy form, not None
+        assert commit.question_column_pack(qc, i, j) == want
+    # the lists, made when read, are the reference's
+    assert (qc.qid, qc.a, qc.b, qc.why, qc.ts_ms) == tuple(ref.values())
+    assert qc.rows() == list(map(Question, *ref.values()))
+
+
+@pytest.mark.parametrize("n", [1, 15, 16, 31, 32, 65_535, 65_536])
+def test_question_column_pack_array_headers(n: int) -> None:
+    """Array lengths at msgpack's header boundaries (fixarray, array16, array32)."""
+    keys = _keys_of_width(9, 300, True, n)
+    qc, ref = _question_groups(keys, KeyIndex(), 99_990, [(n, "place", 1_764_000_000_000)], n)
+    assert commit._question_column_rows(qc, 0, n) == _packed_slice(ref, 0, n)
+
+
+def test_question_column_pack_falls_back_to_msgpack() -> None:
+    """Keys of different lengths in bytes, columns given as lists, or qids the fast form does
+    not write: no numpy form (None), and the pack is msgpack's packb of the lists."""
+    keys = ["shard-1", "shard-22", "shärd-3", "s4"]
+    index = KeyIndex()
+    qc, ref = _question_groups(keys, index, 7, [(40, "place", 5), (3, "check", 6)], 0)
+    assert index.key_rows(np.arange(4)) is None
+    assert commit._question_column_rows(qc, 0, 43) is None
+    assert commit.question_column_pack(qc, 0, 43) == _packed_slice(ref, 0, 43)
+    # a part given as lists, next to a group
+    keys = _keys_of_width(8, 20, False, 0)
+    index = KeyIndex()
+    qc, ref = _question_groups(keys, index, 0, [(30, "seed", 5)], 1)
+    assert commit._question_column_rows(qc, 0, 30) is not None
+    qc.extend(QuestionColumns(["30"], [keys[0]], [keys[1]], ["place"], [6]))
+    for k, v in zip(ref, ("30", keys[0], keys[1], "place", 6), strict=True):
+        ref[k].append(v)
+    assert commit._question_column_rows(qc, 0, 31) is None
+    assert commit.question_column_pack(qc, 0, 31) == _packed_slice(ref, 0, 31)
+    assert commit.question_column_pack(qc, 0, 30) == _packed_slice(ref, 0, 30)
+    # negative numbers (never a qid of the engine's): their text has a sign
+    odd = QuestionColumns.issued(np.array([-1, 2]), np.array([0, 1, 2, 3]), index, "place", 1)
+    assert commit._question_column_rows(odd, 0, 2) is None
+    assert commit.question_column_pack(odd, 0, 2) == msgpack.packb(
+        {"qid": ["-1", "2"], "a": keys[0:2], "b": keys[2:4], "why": ["place"] * 2,
+         "ts": [1, 1]}, use_bin_type=True)
+
+
+def test_question_columns_of_groups_behave_as_lists() -> None:
+    """len, extend, equality and rows of columns made of groups and of lists alike; a group
+    makes its lists only when read."""
+    keys = _keys_of_width(6, 30, True, 3)
+    index = KeyIndex()
+    qc, ref = _question_groups(keys, index, 98, [(3, "seed", 5), (4, "place", 5)], 2)
+    assert len(qc) == 7 and qc._cols == [None] * 5  # nothing made yet
+    as_lists = QuestionColumns(*(list(v) for v in ref.values()))
+    assert qc == as_lists and qc.rows() == as_lists.rows()
+    qc.extend(QuestionColumns.empty())
+    qc.extend(as_lists)
+    assert len(qc) == 14 and qc.qid == ref["qid"] * 2 and qc.ts_ms == ref["ts"] * 2
+    assert QuestionColumns.issued(np.arange(0), np.arange(0), index, "seed", 1).parts == []
+    assert len(QuestionColumns.empty()) == 0 and QuestionColumns.empty().qid == []
+
+
+def test_engine_questions_pack_as_their_lists() -> None:
+    """The engine's questions (bootstrap block, then placement: several groups in a batch)
+    pack from their arrays exactly as msgpack packs their lists, and build_commit writes the
+    same entries either way."""
+    crowd = Crowd(3000, seed=5)
+    eng = Engine(EngineConfig(seed=5, max_outstanding=4000))
+    eng.add_items([(k, None) for k in crowd.keys])
+    keys = Keys("tq")
+    now, fast = 0, 0
+    for _ in range(30):
+        now += 1000
+        qc = eng.plan_columns(now)
+        if len(qc):
+            assert all(isinstance(p, QuestionColumns.Group) for p in qc.parts)
+            fast += len(qc) >= commit.QUESTION_ROWS_MIN
+            lists = QuestionColumns(*(list(c) for c in (qc.qid, qc.a, qc.b, qc.why, qc.ts_ms)))
+            for i in range(0, len(qc), 1500):
+                want = msgpack.packb(commit._question_column_map(lists, i, i + 1500),
+                                     use_bin_type=True)
+                assert commit.question_column_pack(qc, i, i + 1500) == want
+            for cols in (True, False):
+                plans = [commit.build_commit(
+                    keys, commit.Caps(), records=None, decisions=[], questions=q, dead=[],
+                    journal=None, snapshot=None, meta={}, acks={}, group="g",
+                    pack_questions=True, question_columns=cols) for q in (qc, lists)]
+                assert plans[0].packed() == plans[1].packed()
+        eng.add_answers(crowd.answer_now(qc.rows()), now)
+    assert fast >= 2

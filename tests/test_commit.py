@@ -7,16 +7,19 @@ from __future__ import annotations
 import time
 
 import hiredis
+import numpy as np
 import pytest
 import redis
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from redis._parsers import _HiredisParser, _RESP2Parser
 
+from streamgroup.client import decode_questions
+from streamgroup.core.keyindex import KeyIndex
 from streamgroup.core.types import QuestionColumns
-from streamgroup.keys import QUESTION_FIELDS, Keys
+from streamgroup.keys import MAX_PACK_ANSWERS, QUESTION_FIELDS, Keys
 from streamgroup.settings import Settings
-from streamgroup.stream import recovery
+from streamgroup.stream import commit, recovery
 from streamgroup.stream.commit import (
     DECISION_FIELDS,
     Caps,
@@ -257,3 +260,29 @@ def test_question_entries_pack_what_hiredis_packs(rows: list, one_time: bool) ->
         hiredis.pack_command(("XADD", "{tc}:q", "*", "qid", q, "a", a, "b", b, "why", w,
                               "ts", t))
         for q, a, b, w, t in zip(qc.qid, qc.a, qc.b, qc.why, qc.ts_ms, strict=True))
+
+
+def test_question_column_packs_from_arrays_read_back_as_the_questions(redis_url: str) -> None:
+    """A batch's questions as the engine issues them (arrays; two groups, qids across a
+    power of ten, non-ASCII keys of one length in bytes), committed as column packs of at
+    most MAX_PACK_ANSWERS questions: read back from Redis, they are the questions."""
+    index = KeyIndex()
+    index.add([f"kiln-é{i:05d}" for i in range(5000)])
+    rng = np.random.default_rng(7)
+    qc = QuestionColumns.empty()
+    start = 99_990
+    for count, why, ts in ((10_200, "place", 1_764_000_000_000), (300, "check", 1_764_000_050)):
+        qc.extend(QuestionColumns.issued(np.arange(start, start + count),
+                                         rng.integers(0, 5000, 2 * count), index, why, ts))
+        start += count
+    assert len(qc) >= commit.QUESTION_ROWS_MIN
+    assert commit._question_column_rows(qc, 0, 10) is not None  # the numpy form applies
+    plan = build_commit(K, Caps(questions=0), records=None, decisions=[], questions=qc, dead=[],
+                        journal=None, snapshot=None, meta={}, acks={}, group="g",
+                        pack_questions=True, question_columns=True)
+    r = _client(redis_url)
+    assert len(_commit(r, plan.commands)) == 2  # two packs: 10,000 and 500 questions
+    entries = redis.Redis.from_url(redis_url).xrange(K.questions)
+    got = [q for _, f in entries for q in decode_questions(f)]
+    assert [len(decode_questions(f)) for _, f in entries] == [MAX_PACK_ANSWERS, 500]
+    assert got == [dict(zip(QUESTION_FIELDS, q, strict=True)) for q in qc.rows()]

@@ -193,13 +193,12 @@ class QuestionsMixin:
             first_ms[pairs[first_ms[pairs] < 0]] = now_ms
         self._touch(np.asarray(targets, dtype=np.int64))
         swap = self._shown_swapped(qids)
-        first = np.where(swap, partners, targets)
-        second = np.where(swap, targets, partners)
-        keys = self.keys.keys_of(np.concatenate([first, second]))  # one gather for both
-        # (an f-string per qid: about two thirds of the time of map(str, ...))
-        return QuestionColumns([f"{n}" for n in range(start, start + count)],
-                               keys[:count], keys[count:], [WHY_NAMES[why]] * count,
-                               [now_ms] * count)
+        shown = np.concatenate([np.where(swap, partners, targets),  # as a, then as b
+                                np.where(swap, targets, partners)]).astype(np.int64, copy=False)
+        # arrays: the key and qid strings are made only if someone reads them (the commit
+        # writes column packs without them)
+        return QuestionColumns.issued(qids.astype(np.int64, copy=False), shown, self.keys,
+                                      WHY_NAMES[why], now_ms)
 
     def _shown_swapped(self, qids: np.ndarray) -> np.ndarray:
         """Whether each question shows its partner as ``a`` (a coin per qid): how ``_issue``

@@ -156,29 +156,111 @@ class KeyRowAnswers:
                              [self.source[k] for k in pos.tolist()], self.qn[pos])
 
 
-@dataclass(slots=True)
 class QuestionColumns:
-    """Questions as parallel lists (row ``k`` is one :class:`Question`)."""
+    """Questions as parallel columns (row ``k`` is one :class:`Question`), read as the lists
+    ``qid``, ``a``, ``b``, ``why`` and ``ts_ms``.
 
-    qid: list[str]
-    a: list[str]
-    b: list[str]
-    why: list[str]
-    ts_ms: list[int]
+    The columns are held in parts, one per :meth:`extend`: either the five lists given
+    to the constructor, or a :class:`QuestionColumns.Group` of arrays as the engine issues
+    them. A group's lists are made only when a column is first read (then kept); the
+    commit writes column packs straight from the arrays (``stream.commit``), with no string
+    made per question.
+    """
 
-    def __len__(self) -> int:
-        return len(self.qid)
+    @dataclass(frozen=True, slots=True, eq=False)
+    class Group:
+        """Questions issued together: their numbers (``qid`` is the decimal text of each),
+        the indices in ``keys`` of the items they show, those shown as ``a`` then those
+        shown as ``b`` (``shown`` is twice as long as ``qid``), and one why and time."""
+
+        qid: Any  # np.ndarray int64
+        shown: Any  # np.ndarray int64
+        keys: Any  # the KeyIndex of the items: keys_of, key_rows
+        why: str
+        ts_ms: int
+
+        def __len__(self) -> int:
+            return len(self.qid)
+
+    __slots__ = ("parts", "_cols")
+
+    def __init__(self, qid: list[str], a: list[str], b: list[str], why: list[str],
+                 ts_ms: list[int]) -> None:
+        self.parts: list[tuple[list[Any], ...] | QuestionColumns.Group] = (
+            [(qid, a, b, why, ts_ms)] if len(qid) else [])
+        self._cols: list[list[Any] | None] = [None] * 5  # the columns made so far
+
+    @classmethod
+    def issued(cls, qid: Any, shown: Any, keys: Any, why: str,
+               ts_ms: int) -> QuestionColumns:
+        """The columns of one :class:`QuestionColumns.Group` (see there)."""
+        out = cls.empty()
+        if len(qid):
+            out.parts.append(cls.Group(qid, shown, keys, why, ts_ms))
+        return out
 
     @classmethod
     def empty(cls) -> QuestionColumns:
         return cls([], [], [], [], [])
 
+    def __len__(self) -> int:
+        return sum(len(p[0]) if isinstance(p, tuple) else len(p) for p in self.parts)
+
     def extend(self, other: QuestionColumns) -> None:
-        self.qid += other.qid
-        self.a += other.a
-        self.b += other.b
-        self.why += other.why
-        self.ts_ms += other.ts_ms
+        self.parts += other.parts
+        self._cols = [None] * 5
+
+    def _column(self, j: int) -> list[Any]:
+        parts = self.parts
+        if len(parts) == 1 and isinstance(parts[0], tuple):
+            return parts[0][j]  # the lists given
+        if self._cols[j] is None:
+            made = (1, 2) if j in (1, 2) else (j,)  # a and b together: one gather of keys
+            cols: dict[int, list[Any]] = {k: [] for k in made}
+            for p in parts:
+                if isinstance(p, tuple):
+                    for k in made:
+                        cols[k] += p[k]
+                elif j == 0:
+                    cols[0] += [f"{n}" for n in p.qid.tolist()]  # (f-strings: quicker than str)
+                elif j <= 2:
+                    keys = p.keys.keys_of(p.shown)
+                    cols[1] += keys[:len(p)]
+                    cols[2] += keys[len(p):]
+                else:
+                    cols[j] += [p.why if j == 3 else p.ts_ms] * len(p)
+            for k in made:
+                self._cols[k] = cols[k]
+        return self._cols[j]
+
+    @property
+    def qid(self) -> list[str]:
+        return self._column(0)
+
+    @property
+    def a(self) -> list[str]:
+        return self._column(1)
+
+    @property
+    def b(self) -> list[str]:
+        return self._column(2)
+
+    @property
+    def why(self) -> list[str]:
+        return self._column(3)
+
+    @property
+    def ts_ms(self) -> list[int]:
+        return self._column(4)
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, QuestionColumns):
+            return NotImplemented
+        return all(self._column(j) == other._column(j) for j in range(5))
+
+    def __repr__(self) -> str:
+        return (f"QuestionColumns(qid={self.qid!r}, a={self.a!r}, b={self.b!r}, "
+                f"why={self.why!r}, ts_ms={self.ts_ms!r})")
 
     def rows(self) -> list[Question]:
         return list(map(Question, self.qid, self.a, self.b, self.why, self.ts_ms))
