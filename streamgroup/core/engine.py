@@ -171,7 +171,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         return RecordColumns(self.keys.keys_of(idx), side, self.items["status"][idx], shown,
                              led["count"][idx], self.items["rev"][idx], led["pinned"][idx],
                              (self.label(0), self.label(1)), STATUS_NAMES,
-                             self.keys.key_rows(idx))
+                             self.keys, idx)
 
     def take_changes(self) -> list[Record]:
         """Records changed since the last call (each item once, in item order)."""

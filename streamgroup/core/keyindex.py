@@ -93,10 +93,11 @@ class KeyIndex:
         string made per key."""
         if self.width <= 0:
             return None
-        rows = np.frombuffer(self.blob, dtype=np.uint8).reshape(self.n, self.width)
+        # one element of `width` bytes per key: a gather of blocks, not of single bytes
+        rows = np.frombuffer(self.blob, dtype=f"V{self.width}", count=self.n)
         out = rows[idx]  # a copy: the view goes at once (the bytearray must stay growable)
         del rows
-        return out
+        return out.view(np.uint8).reshape(len(out), self.width)
 
     def _keep(self, idx: np.ndarray, keys: np.ndarray) -> None:
         """Hold the strings ``keys`` of the indices ``idx`` in keys_of's cache."""

@@ -280,9 +280,15 @@ class RecordColumns:
     pinned: Any  # np.ndarray bool
     labels: tuple[str, str]
     status_names: tuple[str, ...]
-    # the keys' UTF-8 bytes as matrix rows when all have one length (KeyIndex.key_rows),
-    # for the commit's formatting; None: only ``keys``
-    key_rows: Any = None
+    # where ``keys`` came from (a KeyIndex and the records' indices in it), for the
+    # commit's formatting from the keys' bytes (:meth:`key_rows`); None: only ``keys``
+    key_index: Any = None
+    at: Any = None
+
+    def key_rows(self) -> Any:
+        """The keys' UTF-8 bytes as the rows of a uint8 matrix, when every key of the index
+        has one length (``KeyIndex.key_rows``: gathered on request); else None."""
+        return None if self.key_index is None else self.key_index.key_rows(self.at)
 
     def __len__(self) -> int:
         return len(self.keys)

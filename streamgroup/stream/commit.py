@@ -153,11 +153,12 @@ def assign_command(key: str, rc: RecordColumns) -> bytes:
     :func:`resp_command` writes it, with no bytes object made per value: a record is its
     key's length line, the key, its value's length line and prefix (one per kind of
     prefix, the tails being of one width) and its tail with the closing CRLF, all joined
-    once. When the keys all have one length in bytes (``rc.key_rows``), the records are
+    once. When the keys all have one length in bytes (``rc.key_rows()``), the records are
     written by numpy instead, as rows of one width per kind of prefix: then the fields
     come grouped by kind of prefix (in order within each), which a hash does not mind."""
-    if rc.key_rows is not None and len(rc) >= ROWS_MIN:
-        return _assign_rows(key, rc)
+    keys = rc.key_rows() if len(rc) >= ROWS_MIN else None
+    if keys is not None:
+        return _assign_rows(key, rc, keys)
     keys = list(map(str.encode, rc.keys))
     prefixes, code, tails = _assign_parts(rc, b"\r\n")
     width = len(tails[0]) - 2 if tails else 0
@@ -175,10 +176,10 @@ def assign_command(key: str, rc: RecordColumns) -> bytes:
 ROWS_MIN = 1000
 
 
-def _assign_rows(key: str, rc: RecordColumns) -> bytes:
-    """assign_command for keys of one length in bytes: per kind of prefix, one uint8 matrix
-    whose rows are whole records (key length line, key, value length line, prefix, tail)."""
-    keys = rc.key_rows
+def _assign_rows(key: str, rc: RecordColumns, keys: np.ndarray) -> bytes:
+    """assign_command for keys of one length in bytes (``keys``: their bytes as rows): per
+    kind of prefix, one uint8 matrix whose rows are whole records (key length line, key,
+    value length line, prefix, tail)."""
     n, kw = keys.shape
     prefixes, code, tail = _assign_tails(rc, b"\r\n")
     width = tail.shape[1] - 2
