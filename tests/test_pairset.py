@@ -7,7 +7,7 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from streamgroup.core.columns import first_occurrence, insert_sorted
+from streamgroup.core.columns import first_occurrence, insert_sorted, uniq
 from streamgroup.core.pairset import PairSet
 
 
@@ -53,3 +53,13 @@ def test_first_occurrence_marks_what_np_unique_returns(values: list[int], ascend
     want = np.zeros(len(x), dtype=bool)
     want[np.unique(x, return_index=True)[1]] = True
     assert first_occurrence(x).tolist() == want.tolist()
+
+
+@given(st.lists(st.integers(0, 3000), max_size=400), st.sampled_from([np.int64, np.int32]))
+def test_uniq_returns_what_np_unique_returns(values: list[int], dtype: type) -> None:
+    """Both paths of uniq (a bitmap for values dense in their range, a sort otherwise)
+    against numpy's np.unique (the reference), as int64."""
+    x = np.array(values, dtype=dtype)
+    got = uniq(x)
+    assert got.dtype == np.int64 and got.tolist() == np.unique(x).tolist()
+    assert uniq(x * 1000).tolist() == np.unique(x * 1000).tolist()  # sparse: the sort
