@@ -168,7 +168,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         side = led["side"][idx]
         llr = led["llr"][idx]
         shown = np.where(side == 1, llr, np.where(side == 0, -llr, np.abs(llr))).round(6)
-        return RecordColumns(self.keys.keys_of(idx), side, self.items["status"][idx], shown,
+        return RecordColumns(None, side, self.items["status"][idx], shown,
                              led["count"][idx], self.items["rev"][idx], led["pinned"][idx],
                              (self.label(0), self.label(1)), STATUS_NAMES,
                              self.keys, idx)

@@ -269,9 +269,13 @@ class QuestionColumns:
 @dataclass(slots=True)
 class RecordColumns:
     """Records as columns: keys, plus numpy arrays; ``side`` is a slot (0, 1, or -1 for
-    none) into ``labels``, ``status`` an index into :data:`codes.STATUS_NAMES`."""
+    none) into ``labels``, ``status`` an index into :data:`codes.STATUS_NAMES`.
 
-    keys: list[str]
+    The keys are given as a list, or (``keys`` None) by where they live: a KeyIndex and the
+    records' indices in it, read only as far as someone asks (:meth:`key_texts`,
+    :meth:`key_rows`): a batch's HSET written from the keys' bytes needs no string."""
+
+    keys: list[str] | None
     side: Any  # np.ndarray int8
     status: Any  # np.ndarray int8
     llr: Any  # np.ndarray float64
@@ -280,25 +284,31 @@ class RecordColumns:
     pinned: Any  # np.ndarray bool
     labels: tuple[str, str]
     status_names: tuple[str, ...]
-    # where ``keys`` came from (a KeyIndex and the records' indices in it), for the
-    # commit's formatting from the keys' bytes (:meth:`key_rows`); None: only ``keys``
     key_index: Any = None
-    at: Any = None
+    at: Any = None  # np.ndarray int64: the records' indices in key_index
+
+    def key_texts(self, positions: Sequence[int] | None = None) -> list[str]:
+        """The keys of the records at ``positions`` (default: every record), in order."""
+        if self.keys is not None:
+            keys = self.keys
+            return keys if positions is None else list(map(keys.__getitem__, positions))
+        at = self.at if positions is None else self.at[np.asarray(positions, dtype=np.int64)]
+        return self.key_index.keys_of(at)
 
     def key_rows(self) -> Any:
-        """The keys' UTF-8 bytes as the rows of a uint8 matrix, when every key of the index
-        has one length (``KeyIndex.key_rows``: gathered on request); else None."""
+        """The keys' UTF-8 bytes as the rows of a uint8 matrix, when they come from a
+        KeyIndex whose keys all have one length (``KeyIndex.key_rows``); else None."""
         return None if self.key_index is None else self.key_index.key_rows(self.at)
 
     def __len__(self) -> int:
-        return len(self.keys)
+        return len(self.side)
 
     def rows(self, positions: Iterable[int] | None = None) -> list[Record]:
         names = (*self.labels, None)
         st = self.status_names
-        pos = range(len(self.keys)) if positions is None else list(positions)
-        keys = self.keys
+        pos = list(range(len(self.side)) if positions is None else positions)
+        keys = self.key_texts(pos)
         side, status, llr = self.side.tolist(), self.status.tolist(), self.llr.tolist()
         cnt, rev, pin = self.answers.tolist(), self.rev.tolist(), self.pinned.tolist()
-        return [Record(keys[k], names[side[k]], st[status[k]], llr[k], cnt[k], rev[k], pin[k])
-                for k in pos]
+        return [Record(key, names[side[k]], st[status[k]], llr[k], cnt[k], rev[k], pin[k])
+                for key, k in zip(keys, pos, strict=True)]

@@ -159,7 +159,7 @@ def assign_command(key: str, rc: RecordColumns) -> bytes:
     keys = rc.key_rows() if len(rc) >= ROWS_MIN else None
     if keys is not None:
         return _assign_rows(key, rc, keys)
-    keys = list(map(str.encode, rc.keys))
+    keys = list(map(str.encode, rc.key_texts()))
     prefixes, code, tails = _assign_parts(rc, b"\r\n")
     width = len(tails[0]) - 2 if tails else 0
     leads = [b"\r\n$%d\r\n%s" % (len(p) + width, p) for p in prefixes]
@@ -213,7 +213,7 @@ def decision_values(rc: RecordColumns, positions: Sequence[int]) -> list[Any]:
     names = (*rc.labels, "")
     n = len(idx)
     vals: list[Any] = [None] * (6 * n)
-    vals[0::6] = map(rc.keys.__getitem__, idx.tolist())
+    vals[0::6] = rc.key_texts(idx.tolist())
     vals[1::6] = map(names.__getitem__, rc.side[idx].tolist())
     vals[2::6] = map(rc.status_names.__getitem__, rc.status[idx].tolist())
     vals[3::6] = list(map(repr, rc.llr[idx].astype(np.float64).tolist()))
@@ -533,7 +533,7 @@ def decision_entries(key: str, cap: int, rc: RecordColumns,
     is seven pieces of one join, and only its key and llr are measured."""
     idx = np.asarray(positions, dtype=np.int64)
     leads = _field_leads(key, DECISION_FIELDS)
-    keys = list(map(rc.keys.__getitem__, idx.tolist()))
+    keys = rc.key_texts(idx.tolist())
     llrs = list(map(repr, rc.llr[idx].astype(np.float64).tolist()))
     kinds = ((rc.side[idx].astype(np.int64) + 1) * len(rc.status_names)
              + rc.status[idx]).tolist()
