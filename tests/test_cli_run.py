@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import contextlib
 import os
 import signal
 import socket
 import subprocess
 import sys
 import time
+from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
@@ -72,41 +74,44 @@ def test_run_places_items_then_stops_cleanly_on_sigterm(redis_url: str, tmp_path
             proc.wait(5)
 
 
-def test_second_signal_exits_at_once() -> None:
-    """First SIGTERM only asks the worker to stop; the second calls the hard exit."""
-    calls: list[object] = []
+@contextlib.contextmanager
+def _handlers_restored() -> Iterator[None]:
+    """The process's SIGTERM and SIGINT handlers as they were, once the block is done."""
     old_term, old_int = signal.getsignal(signal.SIGTERM), signal.getsignal(signal.SIGINT)
     try:
-        install_signal_handlers(lambda: calls.append("stop"), lambda code: calls.append(code))
-        os.kill(os.getpid(), signal.SIGTERM)
-        deadline = time.monotonic() + 5
-        while not calls and time.monotonic() < deadline:
-            time.sleep(0.01)
-        assert calls == ["stop"]
-        os.kill(os.getpid(), signal.SIGINT)
-        deadline = time.monotonic() + 5
-        while len(calls) < 2 and time.monotonic() < deadline:
-            time.sleep(0.01)
-        assert calls == ["stop", 128 + signal.SIGINT]
+        yield
     finally:
         signal.signal(signal.SIGTERM, old_term)
         signal.signal(signal.SIGINT, old_int)
+
+
+def _wait_for_calls(calls: list[object], count: int) -> None:
+    deadline = time.monotonic() + 5
+    while len(calls) < count and time.monotonic() < deadline:
+        time.sleep(0.01)
+
+
+def test_second_signal_exits_at_once() -> None:
+    """First SIGTERM only asks the worker to stop; the second calls the hard exit."""
+    calls: list[object] = []
+    with _handlers_restored():
+        install_signal_handlers(lambda: calls.append("stop"), lambda code: calls.append(code))
+        os.kill(os.getpid(), signal.SIGTERM)
+        _wait_for_calls(calls, 1)
+        assert calls == ["stop"]
+        os.kill(os.getpid(), signal.SIGINT)
+        _wait_for_calls(calls, 2)
+        assert calls == ["stop", 128 + signal.SIGINT]
 
 
 def test_a_stop_not_done_within_the_grace_period_exits_at_once() -> None:
     """After the first signal, the hard exit comes by itself once `grace` is over."""
     calls: list[object] = []
-    old_term, old_int = signal.getsignal(signal.SIGTERM), signal.getsignal(signal.SIGINT)
-    try:
+    with _handlers_restored():
         install_signal_handlers(lambda: calls.append("stop"), calls.append, grace=0.2)
         os.kill(os.getpid(), signal.SIGTERM)
-        deadline = time.monotonic() + 5
-        while len(calls) < 2 and time.monotonic() < deadline:
-            time.sleep(0.01)
+        _wait_for_calls(calls, 2)
         assert calls == ["stop", 128 + signal.SIGTERM]
-    finally:
-        signal.signal(signal.SIGTERM, old_term)
-        signal.signal(signal.SIGINT, old_int)
 
 
 def test_busy_metrics_port_is_a_user_error(redis_url: str, capsys) -> None:

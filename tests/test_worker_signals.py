@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import signal
+import subprocess
 import time
 
 import pytest
@@ -14,16 +15,24 @@ from tests.test_crash import consumed, recorded_input, spawn, wait_for, write_in
 pytestmark = [pytest.mark.redis, pytest.mark.slow]
 
 
+def _started(url: str, ns: str, seed: int, batches: int, **flags: object
+             ) -> tuple[redis.Redis, Keys, int, subprocess.Popen[bytes]]:
+    """A recorded input of 150 items in ``ns`` and a worker (batches of 5) that has
+    committed ``batches`` of it: (client, keys, answer entries in all, the worker)."""
+    r = redis.Redis.from_url(url)
+    crowd, entries = recorded_input(n=150, seed=seed)
+    write_input(r, ns, crowd, entries)
+    k = Keys(ns)
+    total = r.xlen(k.answers)
+    proc = spawn(url, ns, batch=5, **flags)
+    wait_for(lambda: int(r.hget(k.meta, "seq") or 0) >= batches or proc.poll() is not None,
+             30, "the worker to commit batches")
+    return r, k, total, proc
+
+
 def test_sigterm_commits_the_batch_in_hand_and_exits_zero(redis_url: str) -> None:
     """After SIGTERM mid-stream: exit 0, nothing left pending, journal folded into a snapshot."""
-    r = redis.Redis.from_url(redis_url)
-    crowd, entries = recorded_input(n=150, seed=2)
-    write_input(r, "sig", crowd, entries)
-    k = Keys("sig")
-    total = r.xlen(k.answers)
-    proc = spawn(redis_url, "sig", batch=5, snapshot_every=3600)
-    wait_for(lambda: int(r.hget(k.meta, "seq") or 0) >= 20 or proc.poll() is not None, 30,
-             "the worker to commit batches")
+    r, k, total, proc = _started(redis_url, "sig", 2, 20, snapshot_every=3600)
     proc.send_signal(signal.SIGTERM)
     assert proc.wait(15) == 0
     read = int(r.hget(k.meta, "entries:answers") or 0)
@@ -42,15 +51,8 @@ def test_sigterm_commits_the_batch_in_hand_and_exits_zero(redis_url: str) -> Non
 def test_a_stop_that_cannot_finish_ends_after_the_grace_period(redis_url: str) -> None:
     """SIGTERM while Redis does not answer: the worker leaves once `grace` is over (not
     after its socket timeouts), and a restart applies what it had in hand, once."""
-    r = redis.Redis.from_url(redis_url)
-    crowd, entries = recorded_input(n=150, seed=3)
-    write_input(r, "hang", crowd, entries)
-    k = Keys("hang")
-    total = r.xlen(k.answers)
-    proc = spawn(redis_url, "hang", batch=5, grace=1)
+    r, k, total, proc = _started(redis_url, "hang", 3, 3, grace=1)
     try:
-        wait_for(lambda: int(r.hget(k.meta, "seq") or 0) >= 3 or proc.poll() is not None, 30,
-                 "the worker to commit batches")
         r.execute_command("CLIENT", "PAUSE", 5000, "ALL")  # the worker's commands hang
         time.sleep(0.2)
         t0 = time.monotonic()

@@ -494,7 +494,7 @@ def _key_row_pack(pack: Any) -> tuple[KeyRowAnswers, list[Any] | None] | None:
     return KeyRowAnswers(a, b, same, source, qn), aids
 
 
-def _array_body(buf: bytes, start: int, end: int) -> tuple[int, int] | None:
+def _array_body(buf: bytes, start: int) -> tuple[int, int] | None:
     """(element count, offset of the first element) of the msgpack array at ``start``."""
     h = buf[start]
     if 0x90 <= h <= 0x9F:
@@ -510,7 +510,7 @@ def _same_width(buf: bytes, start: int, end: int) -> tuple[np.ndarray, int] | No
     """The elements of the array at ``start``, whole (string header, then the bytes), as
     the rows of a uint8 matrix, with the length of their header (1: fixstr, 2: str8), when
     every element is a string of one byte length (1 to 255) written with one header."""
-    body = _array_body(buf, start, end)
+    body = _array_body(buf, start)
     if body is None or body[0] == 0:
         return None
     n, at = body
@@ -555,7 +555,7 @@ def _str_rows(buf: bytes, start: int, end: int) -> tuple[np.ndarray, int] | None
 
 def _flags(buf: bytes, start: int, end: int) -> np.ndarray | None:
     """An array of true/false (or 0/1) as booleans."""
-    body = _array_body(buf, start, end)
+    body = _array_body(buf, start)
     if body is None or end - body[1] != body[0]:
         return None
     v = np.frombuffer(buf, dtype=np.uint8, count=body[0], offset=body[1])
