@@ -201,8 +201,9 @@ class Decoded:
 
     @property
     def answers(self) -> list[Answer]:
-        """The good answers as rows (tests and slow paths; the worker uses ``cols``)."""
-        return self.cols.rows()
+        """The good answers as rows (tests and slow paths; the worker uses ``cols`` or
+        ``keyed``)."""
+        return self.keyed.rows() if self.keyed is not None else self.cols.rows()
 
 
 def _scalar_text(v: Any) -> str:
