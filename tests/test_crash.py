@@ -178,17 +178,23 @@ def test_sigkill_at_random_moments_matches_an_uninterrupted_run(redis_url: str) 
         assert got[part] == want[part], part
 
 
-def test_closed_loop_with_kills_loses_and_doubles_nothing(redis_url: str) -> None:
-    """The worker asks, the crowd answers, the worker is killed 10 times: all still right."""
+@pytest.mark.parametrize("packed", [False, True], ids=["plain", "column-packs"])
+def test_closed_loop_with_kills_loses_and_doubles_nothing(redis_url: str, packed: bool) -> None:
+    """The worker asks, the crowd answers, the worker is killed 10 times: all still right.
+    Packed: questions out and answers in as column packs (keys of one length, a qid and an
+    aid on every answer: read as key rows and journaled as such)."""
     r = redis.Redis.from_url(redis_url)
-    ns = "loop"
+    ns = "loop-packed" if packed else "loop"
+    flags: dict[str, Any] = {"batch": 10}
+    if packed:
+        flags.update(pack_questions=True, question_columns=True)
     k = Keys(ns)
-    crowd = Crowd(200, delta=0.6, sources=[0.6] * 20, seed=4)
+    crowd = Crowd(1000 if packed else 200, delta=0.6, sources=[0.6] * 20, seed=4)
     pipe = r.pipeline(transaction=False)
     for key in crowd.keys:
         pipe.xadd(k.items, {"key": key})
     pipe.execute()
-    adapter = SimAdapter(r, ns, crowd, aid_prefix="sim-")
+    adapter = SimAdapter(r, ns, crowd, aid_prefix="sim-", pack=packed, columns=packed)
     rng = random.Random(3)
 
     def done() -> bool:
@@ -197,7 +203,7 @@ def test_closed_loop_with_kills_loses_and_doubles_nothing(redis_url: str) -> Non
             msgpack.unpackb(v)["status"] in ("placed", "unresolved") for v in recs)
 
     kills = 0
-    proc = spawn(redis_url, ns, batch=10)
+    proc = spawn(redis_url, ns, **flags)
     seq0, armed = r.hget(k.meta, "seq"), None
     deadline = time.monotonic() + 120
     while not done():
@@ -212,7 +218,7 @@ def test_closed_loop_with_kills_loses_and_doubles_nothing(redis_url: str) -> Non
             proc.wait(10)
             kills += 1
             held = r.get(k.lease)
-            proc = spawn(redis_url, ns, batch=10)
+            proc = spawn(redis_url, ns, **flags)
             seq0, armed = r.hget(k.meta, "seq"), None
     assert kills == 10
     wait_for(lambda: consumed(r, ns), 30, "every answer to be consumed")
@@ -221,13 +227,15 @@ def test_closed_loop_with_kills_loses_and_doubles_nothing(redis_url: str) -> Non
     assert proc.wait(30) == 0
     m = {f.decode(): int(v) for f, v in r.hgetall(k.meta).items() if f != b"epoch"}
     # nothing lost: every answer written was read once; nothing doubled: none counted twice
-    assert m["entries:answers"] == adapter.written
+    if not packed:  # (a pack is one entry of many answers)
+        assert m["entries:answers"] == adapter.written
     assert m["applied"] + m.get("dup:qid", 0) + m.get("dup:pair_source", 0) == adapter.written
     assert len(set(adapter.qids)) == len(adapter.qids)  # no question was published twice
     recs = {f.decode(): msgpack.unpackb(v) for f, v in r.hgetall(k.assign).items()}
     placed = [key for key, v in recs.items() if v["status"] == "placed"]
     agree = sum((recs[key]["side"] == "1") == bool(crowd.side_of(key)) for key in placed)
-    assert min(agree, len(placed) - agree) <= 2  # alpha = 1e-3 over 200 items
+    # alpha = 1e-3: about 0.2 wrong expected over 200 items, 1 over 1000
+    assert min(agree, len(placed) - agree) <= 2 + len(crowd.keys) // 200
     w = Worker(Settings(redis=redis_url, ns=ns, consumer="probe", metrics_addr=""))
     w.start()
     assert w.state.engine.stats()["spend"] == m["applied"]
