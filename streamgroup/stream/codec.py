@@ -436,7 +436,6 @@ def _key_row_packs(entries: Sequence[Entry], out: Decoded) -> bool:
 _PACK_LIMITS = {"max_array_len": MAX_PACK_ANSWERS, "max_map_len": MAX_PACK_FIELDS,
                 "max_str_len": MAX_PACK_BYTES, "max_bin_len": MAX_PACK_BYTES,
                 "max_ext_len": 0}
-_DIGITS = np.frombuffer(b"0123456789", dtype=np.uint8)
 
 
 def _key_row_pack(pack: Any) -> tuple[KeyRowAnswers, list[Any] | None] | None:
