@@ -194,8 +194,8 @@ class IntakeMixin:
         if not count or int(qn.max()) >= self.q.n or int(qn.min()) < 0:
             return None
         t, p = self.q["target"][qn], self.q["partner"][qn]
-        every = np.ones(count, dtype=bool)
-        guess = self._pair_guess(qn, t, p, np.arange(count), every, True, count)
+        wq = np.arange(count)
+        guess = self._pair_guess(qn, t, p, wq, np.ones(count, dtype=bool), True, count)
         if np.count_nonzero(guess[:count] == guess[count:]):
             return None
         shown = self.keys.key_rows(guess)
@@ -209,8 +209,7 @@ class IntakeMixin:
                               dtype=np.int64, count=count)
         except KeyError:
             return None
-        return Intake([], guess, _NONE, answers.source, answers.same, np.arange(count), qn,
-                      src)
+        return Intake([], guess, _NONE, answers.source, answers.same, wq, qn, src)
 
     def _pair_guess(self, qn: np.ndarray, t: np.ndarray, p: np.ndarray, wq: np.ndarray,
                     issued: np.ndarray, every: bool, count: int) -> np.ndarray:

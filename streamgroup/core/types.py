@@ -129,8 +129,8 @@ class KeyRowAnswers:
 
     def columns(self) -> AnswerColumns:
         """The same answers as lists of text (for every path but the quick one)."""
-        return AnswerColumns(self.texts(self.a_rows), self.texts(self.b_rows), self.same.tolist(),
-                             list(self.source), [f"{q}" for q in self.qn.tolist()])
+        return AnswerColumns(self.texts(self.a_rows), self.texts(self.b_rows),
+                             self.same.tolist(), list(self.source), self.qid)
 
     def rows(self) -> list[Answer]:
         return self.columns().rows()

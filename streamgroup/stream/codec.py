@@ -495,15 +495,38 @@ def _key_row_pack(pack: Any) -> tuple[KeyRowAnswers, list[Any] | None] | None:
 
 
 def _array_body(buf: bytes, start: int) -> tuple[int, int] | None:
-    """(element count, offset of the first element) of the msgpack array at ``start``."""
+    """(element count, offset of the first element) of the msgpack array at ``start``, or
+    None when none starts there (or its header is cut short)."""
     h = buf[start]
     if 0x90 <= h <= 0x9F:
         return h & 0x0F, start + 1
-    if h == 0xDC:
+    if h == 0xDC and len(buf) >= start + 3:
         return int.from_bytes(buf[start + 1:start + 3], "big"), start + 3
-    if h == 0xDD:
+    if h == 0xDD and len(buf) >= start + 5:
         return int.from_bytes(buf[start + 1:start + 5], "big"), start + 5
     return None
+
+
+def pack_answer_count(pack: bytes) -> int:
+    """Answers in a ``pack`` field, from its headers only: the length of a pack of maps (an
+    array), or of a column pack's ``a``, ``b`` or ``same`` array, whichever comes first (the
+    codec requires them of one length); 1 for anything else (the codec will reject it)."""
+    body = _array_body(pack, 0)
+    if body is not None:
+        return body[0]
+    if not (0x80 <= pack[0] <= 0x8F or pack[0] in (0xDE, 0xDF)):
+        return 1
+    unpacker = msgpack.Unpacker(raw=False, strict_map_key=False, max_buffer_size=len(pack),
+                                **_PACK_LIMITS)
+    try:
+        unpacker.feed(pack)
+        for _ in range(unpacker.read_map_header()):
+            if unpacker.unpack() in ("a", "b", "same"):
+                return max(1, unpacker.read_array_header())
+            unpacker.skip()
+    except Exception:  # noqa: BLE001 - msgpack raises several unrelated types
+        pass
+    return 1
 
 
 def _same_width(buf: bytes, start: int, end: int) -> tuple[np.ndarray, int] | None:

@@ -31,17 +31,16 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-import msgpack
 import redis
 import structlog
 
 from ..errors import StateError
-from ..keys import GROUP, MAX_PACK_ANSWERS, Keys
+from ..keys import GROUP, Keys
 from ..serve.metrics import WorkerMetrics
 from ..settings import Settings
 from . import lease, recovery
 from .batch import Outcome, process
-from .codec import MAX_PACK_FIELDS
+from .codec import pack_answer_count
 from .commit import Caps, CommitError, CommitPlan, build_commit, execute, receive, send
 from .progress import Progress
 from .state import WorkerState
@@ -71,43 +70,10 @@ def tune_gc() -> None:
 
 
 def _answers_in(entry: Any) -> int:
-    """Answers in one raw entry: 1, or the length of a pack's msgpack array header (cheap),
-    or for a column pack (a map) the length of its first answer column."""
+    """Answers in one raw entry: 1, or those of its pack (``codec.pack_answer_count``)."""
     f = entry[1]
     pack = f[1] if f and len(f) == 2 and f[0] == b"pack" else None
-    if not pack:
-        return 1
-    head = pack[0]
-    if 0x90 <= head <= 0x9F:
-        return head & 0x0F
-    if head == 0xDC and len(pack) >= 3:
-        return int.from_bytes(pack[1:3], "big")
-    if head == 0xDD and len(pack) >= 5:
-        return int.from_bytes(pack[1:5], "big")
-    if 0x80 <= head <= 0x8F or head in (0xDE, 0xDF):
-        return _column_answers(pack)
-    return 1  # neither: the codec will reject it
-
-
-_COLUMN_KEYS = ("a", "b", "same")
-
-
-def _column_answers(pack: bytes) -> int:
-    """The length of a column pack's ``a``, ``b`` or ``same`` array, whichever comes first
-    (the codec requires them of one length), read from the headers only; 1 if there is none
-    or the pack is broken (the codec will reject it)."""
-    unpacker = msgpack.Unpacker(raw=False, strict_map_key=False, max_buffer_size=len(pack),
-                                max_map_len=MAX_PACK_FIELDS, max_array_len=MAX_PACK_ANSWERS,
-                                max_ext_len=0)
-    try:
-        unpacker.feed(pack)
-        for _ in range(unpacker.read_map_header()):
-            if unpacker.unpack() in _COLUMN_KEYS:
-                return max(1, unpacker.read_array_header())
-            unpacker.skip()
-    except Exception:  # noqa: BLE001 - msgpack raises several unrelated types
-        pass
-    return 1
+    return pack_answer_count(pack) if pack else 1
 
 
 def answers_total(entries: Sequence[Any]) -> int:
