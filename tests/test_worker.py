@@ -492,6 +492,64 @@ def test_replay_keeps_the_later_of_two_journal_entries_for_one_batch(redis_url: 
     w2.close()
 
 
+def test_replay_reads_compressed_and_plain_journal_entries(redis_url: str) -> None:
+    """Journal entries of 4 KiB and more are stored zstd-compressed; a journal that mixes
+    them with plain msgpack entries (written by a worker from before) replays to the same
+    state, and an entry that is cut short stops the start with a StateError."""
+    import zstandard
+
+    from streamgroup.stream.state import JOURNAL_COMPRESS_FROM, ZSTD_MAGIC
+
+    r, w = _run_steps(redis_url, 120, seed=5, steps=30, batch=20, snapshot_every=3600)
+    want = w.state.engine.stats(), w.state.seq, dict(w.state.counters)
+    w.close()
+    stored = [f[b"b"] for _, f in r.xrange(K.journal)]
+    assert len(stored) > 4
+    assert all(b.startswith(ZSTD_MAGIC) or len(b) < JOURNAL_COMPRESS_FROM for b in stored)
+    plain = [zstandard.ZstdDecompressor().decompress(b) if b.startswith(ZSTD_MAGIC) else b
+             for b in stored]
+    mixed = [zstandard.ZstdCompressor(level=1).compress(b) if i % 2 else b
+             for i, b in enumerate(plain)]
+    r.delete(K.journal)
+    for b in mixed:
+        r.xadd(K.journal, {"b": b})
+    w2 = Worker(settings(redis_url, batch=20, snapshot_every=3600))
+    w2.start()
+    assert (w2.state.engine.stats(), w2.state.seq, dict(w2.state.counters)) == want
+    w2.close()
+    r.delete(K.journal)
+    r.xadd(K.journal, {"b": mixed[1][:-8]})
+    with pytest.raises(StateError, match="does not decompress"):
+        load_state(r, K, settings(redis_url, batch=20))
+
+
+def test_large_journal_entries_are_compressed() -> None:
+    """A batch of 2,000 key-row answers takes about a sixth of its msgpack size in the
+    journal and reads back the same; a small batch stays plain msgpack."""
+    import numpy as np
+
+    from streamgroup.core.types import KeyRowAnswers
+    from streamgroup.stream.state import OP_KEY_ROWS, ZSTD_MAGIC, key_rows_payload
+
+    n = 2000
+    rows = np.frombuffer("".join(f"shard-{i:06d}" for i in range(2 * n)).encode(),
+                         dtype=np.uint8).reshape(2 * n, 12)
+    k = KeyRowAnswers(rows[:n], rows[n:], np.arange(n) % 3 == 0,
+                      [f"src-{i % 50:03d}" for i in range(n)], np.arange(n, dtype=np.int64))
+    big = Batch(7, 1000, [[OP_KEY_ROWS, key_rows_payload(k)]], [f"a{i}" for i in range(n)])
+    data = big.journal_bytes()
+    raw = msgpack.packb({"v": 1, "s": 7, "t": 1000, "ops": big.ops, "aids": big.aids,
+                         "c": {}}, use_bin_type=True)
+    assert data.startswith(ZSTD_MAGIC) and len(data) < len(raw) / 3
+    back = Batch.from_journal(data)
+    assert (back.seq, back.aids) == (7, big.aids)
+    assert msgpack.packb(back.ops, use_bin_type=True) == msgpack.packb(big.ops,
+                                                                        use_bin_type=True)
+    small = Batch(8, 1000, [["i", [["x", None]]]])
+    assert small.journal_bytes() == msgpack.packb(
+        {"v": 1, "s": 8, "t": 1000, "ops": small.ops, "aids": [], "c": {}}, use_bin_type=True)
+
+
 def test_answers_total_counts_packs_and_plain_entries() -> None:
     """The backlog cap counts a pack's answers; the shortcut for batches without packs
     gives what counting entry by entry gives."""
