@@ -118,6 +118,7 @@ def fill_items(r: redis.Redis, stream: str, n: int, chunk: int = 50_000) -> None
 
 
 WORKER_ROOT = ROOT  # --worker-root: run the worker from another checkout (before/after)
+SNAPSHOT_EVERY = 30.0  # --snapshot-every: the worker's snapshot_every (its default)
 
 
 def spawn_worker(url: str, ns: str, **flags: Any) -> subprocess.Popen[bytes]:
@@ -359,7 +360,7 @@ def start_crowd_run(url: str, ns: str, n: int, batch: int, pack: bool, max_outst
     k = Keys(ns)
     crowd = Crowd(n, delta=0.6, sources=[0.6] * 50, seed=1)
     fill_items(r, k.items, n)
-    proc = spawn_worker(url, ns, batch=batch, block_ms=100, snapshot_every=30,
+    proc = spawn_worker(url, ns, batch=batch, block_ms=100, snapshot_every=SNAPSHOT_EVERY,
                         pack_questions=pack, max_outstanding=max_outstanding,
                         **({"question_columns": True} if pack else {}))
     wait_until(lambda: int(r.hget(k.meta, "items_applied") or 0) >= n, 600,
@@ -633,10 +634,15 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--worker-root", default=ROOT,
                    help="checkout whose worker to run (default: this one); the rest of the "
                         "benchmark stays the same, for before/after comparisons")
+    p.add_argument("--snapshot-every", type=float, default=30.0,
+                   help="the worker's snapshot_every in seconds (default: its own default, "
+                        "30); a small value puts snapshots into every drain window, to "
+                        "measure what they cost")
     p.add_argument("--lookup-child", nargs=5, help=argparse.SUPPRESS)
     args = p.parse_args(argv)
-    global WORKER_ROOT
+    global WORKER_ROOT, SNAPSHOT_EVERY
     WORKER_ROOT = os.path.abspath(args.worker_root)
+    SNAPSHOT_EVERY = args.snapshot_every
     if args.lookup_child:
         url, ns, n, secs, rate = args.lookup_child
         lookup_child(url, ns, int(n), float(secs), float(rate))

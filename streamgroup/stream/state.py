@@ -24,6 +24,7 @@ import numpy as np
 import zstandard
 
 from ..core.engine import Engine
+from ..core.snapshot import msgpack_pieces
 from ..core.types import Answer, AnswerColumns, EngineConfig, KeyRowAnswers
 from ..errors import StateError
 
@@ -187,12 +188,10 @@ class WorkerState:
 
     # -- snapshots ----------------------------------------------------------------------
     def snapshot_bytes(self, now_ms: int) -> bytes:
-        return msgpack.packb(
+        return b"".join(msgpack_pieces(  # (the engine's part is large: joined, not packed)
             {"v": SNAPSHOT_VERSION, "epoch": self.epoch, "seq": self.seq, "t": now_ms,
              "engine": self.engine.snapshot(), "aids": self.aids.items(),
-             "counters": dict(self.counters)},
-            use_bin_type=True,
-        )
+             "counters": dict(self.counters)}))
 
     @staticmethod
     def from_snapshot(data: bytes, epoch: str, aid_window: int) -> WorkerState:
