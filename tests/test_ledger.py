@@ -7,7 +7,14 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from streamgroup.core import noise
-from streamgroup.core.evidence import _GH_W, _GH_Z, answer_weights, decision_error
+from streamgroup.core.evidence import (
+    _GH_W,
+    _GH_Z,
+    answer_weights,
+    decision_error,
+    partner_shrink,
+    signed_weights,
+)
 from streamgroup.core.ledger import UNPLACED, Ledger
 
 N_REF, N_TGT, N_SRC = 6, 5, 3
@@ -118,6 +125,10 @@ def test_answer_weights_are_bit_for_bit_the_formula(rows: list[tuple[float, floa
     w, s = answer_weights(delta, se, eps)
     assert w.tobytes() == want_w.tobytes() and s.tobytes() == want_s.tobytes()
     assert delta.tolist() == [r[0] for r in rows] and eps.tolist() == [r[2] for r in rows]
+    # a recount signs the shrink with each vote instead of signing w and s afterwards
+    sign = np.where(np.arange(len(rows)) % 3 == 1, -1.0, 1.0)
+    w, s = signed_weights(delta, se, partner_shrink(eps) * sign)
+    assert w.tobytes() == (want_w * sign).tobytes() and s.tobytes() == (want_s * sign).tobytes()
 
 
 def test_recount_equals_the_answer_by_answer_sum() -> None:

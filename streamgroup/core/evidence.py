@@ -26,17 +26,33 @@ def answer_weights(
     ``s`` is how far the step could move if the source's bias were one standard error
     off; decisions integrate over it so that a young estimate is used cautiously.
     """
-    # The same operations in the same order as
-    #     shrink = 1 - 2 clip(eps, 0, 0.5);  d = clip(delta shrink, -C, C)
-    #     w = log1p(d) - log1p(-d);  s = |shrink 2 / (1 - d d)| se
-    # written into a few buffers: a recount runs this over every answer, and fresh
-    # temporaries of that size cost more than the arithmetic.
+    return signed_weights(delta, se, partner_shrink(partner_eps))
+
+
+def partner_shrink(eps: np.ndarray) -> np.ndarray:
+    """1 - 2 clip(eps, 0, 1/2): the factor by which a partner's chance ``eps`` of being on
+    the wrong side shrinks an answer's bias (a new array)."""
     # (np.clip as maximum then minimum: the same values, without np.clip's Python wrapper;
     # only the sign of a zero eps may differ, and 1 - 2 eps is 1 either way)
-    shrink = np.maximum(partner_eps, 0.0)
+    shrink = np.maximum(eps, 0.0)
     np.minimum(shrink, 0.5, out=shrink)
     shrink *= 2.0
-    np.subtract(1.0, shrink, out=shrink)
+    return np.subtract(1.0, shrink, out=shrink)
+
+
+def signed_weights(delta: np.ndarray, se: np.ndarray, shrink: np.ndarray
+                   ) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`answer_weights` from the partners' :func:`partner_shrink`, each times the
+    sign of its answer's vote (+1 or -1); both results come out times that sign, bit for
+    bit: w is odd in d (a clip and a difference of two log1p, each exact under negation)
+    and s has no sign of its own. ``shrink`` is used as a buffer.
+    """
+    # The same operations in the same order as
+    #     d = clip(delta shrink, -C, C);  w = log1p(d) - log1p(-d);  s = shrink 2 / (1 - d d) se
+    # written into a few buffers: a recount runs this over every answer, and fresh
+    # temporaries of that size cost more than the arithmetic. Signing the shrink saves a
+    # recount the passes that took the sign of an unsigned w and s, and those that made
+    # the shrink of every answer rather than of every partner.
     d = np.multiply(delta, shrink)
     np.maximum(d, -_CLIP, out=d)
     np.minimum(d, _CLIP, out=d)
@@ -47,7 +63,6 @@ def answer_weights(
     np.subtract(1.0, tmp, out=tmp)
     s = np.multiply(shrink, 2.0, out=shrink)
     s /= tmp
-    np.abs(s, out=s)
     s *= se
     return w, s
 

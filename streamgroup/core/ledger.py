@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 
 from .columns import ONE_I32, Columns
-from .evidence import answer_weights, reference_eps
+from .evidence import partner_shrink, reference_eps, signed_weights
 
 UNPLACED = -1
 
@@ -136,17 +136,18 @@ class Ledger:
         those of different sources do not."""
         partner, s = pairs.partner, pairs.src
         if trust_partners:
-            eps = np.zeros(len(partner))
+            shrink = pairs.sign.copy()  # (a shrink of 1)
         elif len(partner) > self.n_items:
             # a pass over every answer: each item's discount once, then gathered (the
             # same values, with one exp per item instead of one per answer)
-            eps = reference_eps(self.item("llr"), self.item("pinned"))[partner]
+            shrink = partner_shrink(reference_eps(self.item("llr"), self.item("pinned"))
+                                    ).take(partner)
+            shrink *= pairs.sign
         else:
-            eps = reference_eps(self.items["llr"][partner], self.items["pinned"][partner])
-        w, spread = answer_weights(delta[s], se[s], eps)
-        w *= pairs.sign
-        spread *= pairs.sign
-        return w, spread
+            shrink = partner_shrink(reference_eps(self.items["llr"][partner],
+                                                  self.items["pinned"][partner]))
+            shrink *= pairs.sign
+        return signed_weights(delta.take(s), se.take(s), shrink)
 
     def _contributions(self, idx: np.ndarray | slice, delta: np.ndarray, se: np.ndarray,
                        trust_partners: bool = False
