@@ -45,8 +45,10 @@ The machine is shared (2 cores for Redis, the worker, the adapter and the lookup
 and whatever else runs there), so the rates move with the load: ``worker_cpu_share_*``
 says how much of a core the worker got (``redis_cpu_share_*`` what Redis took), and
 ``*_per_cpu_s`` divides by it (the rate a dedicated core would give, if the worker is the
-bottleneck); ``worker_sys_part_plain`` is the part of the worker's CPU spent in the
-kernel (mostly sending and receiving on the socket). ``redis_us_per_answer_*`` splits
+bottleneck); ``worker_sys_part_*`` is the part of the worker's CPU spent in the kernel
+(mostly sending and receiving on the socket), and ``snapshots_in_windows`` counts the
+snapshots written in the drain windows (each a pause of the worker: 0.1-0.3 s at these
+sizes). ``redis_us_per_answer_*`` splits
 Redis's time by command (from INFO commandstats; ``exec`` includes the commands inside it,
 ``eval`` the appends its scripts make), ``loop_exec_ms_*`` is the mean time Redis spends
 inside one batch transaction (lookups wait behind it), ``redis_slow_plain`` lists the
@@ -493,7 +495,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
                              "the backlog was made (run the benchmark in the foreground)")
         return answered
 
-    raw_done, raw_busy = 0, 0.0
+    raw_done, raw_busy, snapshots = 0, 0.0, 0
     for cycle in range(cycles + 1):  # the first one only fills the cap: not measured
         backlog = pause_and_answer()
         if cycle and not pack:  # the bare loop, just before the window, the worker stopped
@@ -521,6 +523,8 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         r_cpu += redis_cpu(r) - rc0
         for name, v in r.info("commandstats").items():
             usec[name.removeprefix("cmdstat_")] += v["usec"]
+            if name == "cmdstat_rename":  # the snapshot script renames each one in place
+                snapshots += v["calls"]
         lat = r.info("latencystats")  # Redis's own percentiles of each command, this window
         for name in ("exec", "xreadgroup"):
             got = lat.get(f"latency_percentiles_usec_{name}", {})
@@ -551,6 +555,9 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         "worker_cpu_share": cpu / busy,
         "redis_cpu_share": r_cpu / busy,
         "worker_sys_part": sys_cpu / cpu if cpu else 0.0,  # of its CPU, in the kernel
+        # snapshots written in the windows: each is a pause of the worker (a window holds
+        # one when the journal outgrows its bound or snapshot_every comes round)
+        "snapshots": snapshots,
         "redis_us_per_answer": us_per_answer(usec, done),
         # how long Redis itself takes for one batch's read and transaction (it serves no
         # lookup meanwhile): the median over the windows of each window's percentile
@@ -686,6 +693,8 @@ def main(argv: list[str] | None = None) -> int:
                 "packed_answers_per_s": round(packed["rate"]),
                 "packed_over_plain": round(packed["rate"] / plain["rate"], 2),
                 "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
+                "worker_sys_part_packed": round(packed["worker_sys_part"], 2),
+                "snapshots_in_windows": [plain["snapshots"], packed["snapshots"]],
                 "redis_cpu_share_packed": round(packed["redis_cpu_share"], 2),
                 "packed_answers_per_cpu_s": round(packed["rate"] / packed["worker_cpu_share"]),
                 "redis_us_per_answer_packed": packed["redis_us_per_answer"],
@@ -739,6 +748,8 @@ def main(argv: list[str] | None = None) -> int:
         "worker_sys_part_plain": round(plain["worker_sys_part"], 2),
         "redis_cpu_share_plain": round(plain["redis_cpu_share"], 2),
         "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
+        "worker_sys_part_packed": round(packed["worker_sys_part"], 2),
+        "snapshots_in_windows": [plain["snapshots"], packed["snapshots"]],
         "redis_cpu_share_packed": round(packed["redis_cpu_share"], 2),
         # per second of the worker's own CPU time: what a dedicated core would give
         "worker_entries_per_cpu_s": round(plain["rate"] / plain["worker_cpu_share"]),
