@@ -41,21 +41,22 @@ port, persistence off), with the same batch size everywhere:
   ``--items`` items (after start-up), per item; ``redis_bytes_per_item``: growth of Redis's
   ``used_memory`` for the namespace after those items are in and a snapshot is written.
 
-The machine is shared (2 cores for Redis, the worker, the adapter and the lookup process,
-and whatever else runs there), so the rates move with the load: ``worker_cpu_share_*``
-says how much of a core the worker got (``redis_cpu_share_*`` what Redis took), and
-``*_per_cpu_s`` divides by it (the rate a dedicated core would give, if the worker is the
-bottleneck); ``worker_sys_part_*`` is the part of the worker's CPU spent in the kernel
-(mostly sending and receiving on the socket), and ``snapshots_in_windows`` counts the
-snapshots written in the drain windows (each a pause of the worker: 0.1-0.3 s at these
-sizes). ``redis_us_per_answer_*`` splits
-Redis's time by command (from INFO commandstats; ``exec`` includes the commands inside it,
-``eval`` the appends its scripts make), ``loop_exec_ms_*`` is the mean time Redis spends
-inside one batch transaction (lookups wait behind it), ``redis_slow_plain`` lists the
-commands that held Redis for a millisecond or more in the drain windows (SLOWLOG: count
-and longest, in ms), ``lookup_idle_p99_ms`` is the lookup latency of this machine with
-no worker running, and ``lookup_busy_floor_p99_ms`` the same while a spinning process
-keeps every core busy (Redis idle): what the machine alone adds at full load
+The machine is shared (2 cores for Redis, the worker, the adapter and the lookup
+process, and whatever else runs there), so the rates move with the load:
+``worker_cpu_share_*`` says how much of a core the worker got (``redis_cpu_share_*``
+what Redis took), and ``*_per_cpu_s`` divides by it (the rate a dedicated core would
+give, if the worker is the bottleneck); ``worker_sys_part_*`` is the part of the
+worker's CPU spent in the kernel (mostly sending and receiving on the socket), and
+``snapshots_in_windows`` counts the snapshots written in the drain windows (each a pause
+of the worker: 0.1-0.3 s at these sizes); ``worker_faults_per_answer`` counts the
+worker's minor page faults in them. ``redis_us_per_answer_*`` splits Redis's time by
+command (from INFO commandstats; ``exec`` includes the commands inside it, ``eval`` the
+appends its scripts make), ``loop_exec_ms_*`` is the mean time Redis spends inside one
+batch transaction (lookups wait behind it), ``redis_slow_plain`` lists the commands that
+held Redis for a millisecond or more in the drain windows (SLOWLOG: count and longest,
+in ms), ``lookup_idle_p99_ms`` is the lookup latency of this machine with no worker
+running, and ``lookup_busy_floor_p99_ms`` the same while a spinning process keeps every
+core busy (Redis idle): what the machine alone adds at full load
 (``scripts/bench_machine.py`` shows its pauses).
 
 ``BENCH_PYSPY=PATH`` records a py-spy profile (raw format) of the worker over the drain
@@ -145,6 +146,11 @@ def _proc_stat(pid: int) -> list[str]:
     """The fields of /proc/PID/stat after the command name (field 3, the state, first)."""
     with open(f"/proc/{pid}/stat") as fh:
         return fh.read().rsplit(")", 1)[1].split()
+
+
+def minor_faults(pid: int) -> int:
+    """Page faults of the process so far that needed no disk (each a trip to the kernel)."""
+    return int(_proc_stat(pid)[7])
 
 
 def cpu_seconds(pid: int) -> float:
@@ -495,7 +501,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
                              "the backlog was made (run the benchmark in the foreground)")
         return answered
 
-    raw_done, raw_busy, snapshots = 0, 0.0, 0
+    raw_done, raw_busy, snapshots, faults = 0, 0.0, 0, 0
     for cycle in range(cycles + 1):  # the first one only fills the cap: not measured
         backlog = pause_and_answer()
         if cycle and not pack:  # the bare loop, just before the window, the worker stopped
@@ -505,7 +511,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         r.config_resetstat()
         r.slowlog_reset()
         rc0 = redis_cpu(r)
-        (u0, s0), t0 = cpu_split(proc.pid), time.monotonic()
+        (u0, s0), f0, t0 = cpu_split(proc.pid), minor_faults(proc.pid), time.monotonic()
         proc.send_signal(signal.SIGCONT)
         deadline = time.monotonic() + 300
         while consumed() < target:
@@ -518,6 +524,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
             continue
         backlogs.append(backlog)
         u1, s1 = cpu_split(proc.pid)
+        faults += minor_faults(proc.pid) - f0
         cpu += u1 + s1 - u0 - s0
         sys_cpu += s1 - s0
         r_cpu += redis_cpu(r) - rc0
@@ -558,6 +565,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         # snapshots written in the windows: each is a pause of the worker (a window holds
         # one when the journal outgrows its bound or snapshot_every comes round)
         "snapshots": snapshots,
+        "faults_per_answer": faults / done,
         "redis_us_per_answer": us_per_answer(usec, done),
         # how long Redis itself takes for one batch's read and transaction (it serves no
         # lookup meanwhile): the median over the windows of each window's percentile
@@ -695,6 +703,8 @@ def main(argv: list[str] | None = None) -> int:
                 "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
                 "worker_sys_part_packed": round(packed["worker_sys_part"], 2),
                 "snapshots_in_windows": [plain["snapshots"], packed["snapshots"]],
+                "worker_faults_per_answer": [round(plain["faults_per_answer"], 3),
+                                             round(packed["faults_per_answer"], 3)],
                 "redis_cpu_share_packed": round(packed["redis_cpu_share"], 2),
                 "packed_answers_per_cpu_s": round(packed["rate"] / packed["worker_cpu_share"]),
                 "redis_us_per_answer_packed": packed["redis_us_per_answer"],
@@ -750,6 +760,8 @@ def main(argv: list[str] | None = None) -> int:
         "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
         "worker_sys_part_packed": round(packed["worker_sys_part"], 2),
         "snapshots_in_windows": [plain["snapshots"], packed["snapshots"]],
+        "worker_faults_per_answer": [round(plain["faults_per_answer"], 3),
+                                     round(packed["faults_per_answer"], 3)],
         "redis_cpu_share_packed": round(packed["redis_cpu_share"], 2),
         # per second of the worker's own CPU time: what a dedicated core would give
         "worker_entries_per_cpu_s": round(plain["rate"] / plain["worker_cpu_share"]),
