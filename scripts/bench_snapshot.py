@@ -31,7 +31,8 @@ ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 sys.path.insert(0, ROOT)
 
 from streamgroup.core.engine import Engine  # noqa: E402
-from streamgroup.core.snapshot import SNAPSHOT_MAGIC, capture, msgpack_pieces  # noqa: E402
+from streamgroup.core.packing import msgpack_pieces  # noqa: E402
+from streamgroup.core.snapshot import SNAPSHOT_MAGIC, capture  # noqa: E402
 from streamgroup.core.types import AnswerColumns, EngineConfig  # noqa: E402
 from streamgroup.sim.crowd import Crowd  # noqa: E402
 

@@ -624,6 +624,23 @@ def pin(srv: EmbeddedRedis) -> None:
     os.sched_setaffinity(0, set(range(os.cpu_count() or 1)) - {int(cpu)})
 
 
+def packed_fields(plain: dict[str, Any], packed: dict[str, Any]) -> dict[str, Any]:
+    """The packed drain's figures, beside the plain one's (the quick and full runs')."""
+    return {
+        "packed_answers_per_s": round(packed["rate"]),
+        "packed_over_plain": round(packed["rate"] / plain["rate"], 2),
+        "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
+        "worker_sys_part_packed": round(packed["worker_sys_part"], 2),
+        "snapshots_in_windows": [plain["snapshots"], packed["snapshots"]],
+        "worker_faults_per_answer": [round(plain["faults_per_answer"], 3),
+                                     round(packed["faults_per_answer"], 3)],
+        "redis_cpu_share_packed": round(packed["redis_cpu_share"], 2),
+        # per second of the worker's own CPU time: what a dedicated core would give
+        "packed_answers_per_cpu_s": round(packed["rate"] / packed["worker_cpu_share"]),
+        "redis_us_per_answer_packed": packed["redis_us_per_answer"],
+    }
+
+
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     p.add_argument("--items", type=int, default=1_000_000, help="items for the memory part")
@@ -698,16 +715,7 @@ def main(argv: list[str] | None = None) -> int:
         }
         if packed is not None:
             quick.update({
-                "packed_answers_per_s": round(packed["rate"]),
-                "packed_over_plain": round(packed["rate"] / plain["rate"], 2),
-                "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
-                "worker_sys_part_packed": round(packed["worker_sys_part"], 2),
-                "snapshots_in_windows": [plain["snapshots"], packed["snapshots"]],
-                "worker_faults_per_answer": [round(plain["faults_per_answer"], 3),
-                                             round(packed["faults_per_answer"], 3)],
-                "redis_cpu_share_packed": round(packed["redis_cpu_share"], 2),
-                "packed_answers_per_cpu_s": round(packed["rate"] / packed["worker_cpu_share"]),
-                "redis_us_per_answer_packed": packed["redis_us_per_answer"],
+                **packed_fields(plain, packed),
                 "worker_exit_codes": [plain["exit"], packed["exit"]],
             })
         print(json.dumps(quick, indent=2) if args.json else quick)
@@ -744,8 +752,7 @@ def main(argv: list[str] | None = None) -> int:
         "raw_paired_entries_per_s": round(plain["raw_paired"]),
         "ratio_paired": round(plain["rate"] / plain["raw_paired"], 3),
         "questions_per_answer_plain": round(plain["questions_per_answer"], 3),
-        "packed_answers_per_s": round(packed["rate"]),
-        "packed_over_plain": round(packed["rate"] / plain["rate"], 2),
+        **packed_fields(plain, packed),
         "questions_per_answer_packed": round(packed["questions_per_answer"], 3),
         "lookup_p99_ms": round(plain["lookup"]["p99_ms"], 3),
         "lookup_p50_ms": round(plain["lookup"]["p50_ms"], 3),
@@ -757,17 +764,9 @@ def main(argv: list[str] | None = None) -> int:
         "worker_cpu_share_plain": round(plain["worker_cpu_share"], 2),
         "worker_sys_part_plain": round(plain["worker_sys_part"], 2),
         "redis_cpu_share_plain": round(plain["redis_cpu_share"], 2),
-        "worker_cpu_share_packed": round(packed["worker_cpu_share"], 2),
-        "worker_sys_part_packed": round(packed["worker_sys_part"], 2),
-        "snapshots_in_windows": [plain["snapshots"], packed["snapshots"]],
-        "worker_faults_per_answer": [round(plain["faults_per_answer"], 3),
-                                     round(packed["faults_per_answer"], 3)],
-        "redis_cpu_share_packed": round(packed["redis_cpu_share"], 2),
         # per second of the worker's own CPU time: what a dedicated core would give
         "worker_entries_per_cpu_s": round(plain["rate"] / plain["worker_cpu_share"]),
-        "packed_answers_per_cpu_s": round(packed["rate"] / packed["worker_cpu_share"]),
         "redis_us_per_answer_plain": plain["redis_us_per_answer"],
-        "redis_us_per_answer_packed": packed["redis_us_per_answer"],
         "redis_ms_plain": plain["redis_ms"],
         "redis_slow_plain": plain["redis_slow"],
         # the closed loop: the simulated crowd adapter runs beside the worker, on the same

@@ -259,7 +259,8 @@ def test_snapshot_pieces_are_msgpack_byte_for_byte(state: object) -> None:
     """The snapshot is fed to zstd in pieces, big bytes values uncopied; joined, the pieces
     are what msgpack itself writes (map, array and bin headers of every size class), and
     they decompress and unpack to the state (reference: the msgpack package)."""
-    from streamgroup.core.snapshot import SNAPSHOT_MAGIC, encode, msgpack_pieces
+    from streamgroup.core.packing import msgpack_pieces
+    from streamgroup.core.snapshot import SNAPSHOT_MAGIC, encode
 
     want = msgpack.packb(state, use_bin_type=True)
     assert b"".join(msgpack_pieces(state)) == want

@@ -13,6 +13,7 @@ from ..errors import EngineInputError
 from .columns import SortedQueue
 from .keyindex import KeyIndex
 from .ledger import Ledger
+from .packing import msgpack_pieces
 from .pairset import PairSet
 from .types import EngineConfig
 
@@ -69,47 +70,6 @@ def encode(state: dict[str, Any]) -> bytes:
     pieces = msgpack_pieces(state)
     zc = zstandard.ZstdCompressor(level=1).compressobj(size=sum(map(len, pieces)))
     return b"".join([SNAPSHOT_MAGIC, *map(zc.compress, pieces), zc.flush()])
-
-
-BIG_PIECE = 1 << 16  # bytes values from this size on are pieces of their own
-
-
-def msgpack_pieces(obj: Any) -> list[bytes]:
-    """``msgpack.packb(obj, use_bin_type=True)`` as pieces whose concatenation is exactly
-    those bytes; bytes values of ``BIG_PIECE`` or more are pieces of their own (not
-    copied). Maps and lists are walked; anything else is packed by msgpack."""
-    pieces: list[bytes] = []
-    head = bytearray()
-
-    def walk(x: Any) -> None:
-        nonlocal head
-        if isinstance(x, dict):
-            head += _header(len(x), 0x80, b"\xde", b"\xdf")
-            for k, v in x.items():
-                walk(k)
-                walk(v)
-        elif isinstance(x, list | tuple):
-            head += _header(len(x), 0x90, b"\xdc", b"\xdd")
-            for v in x:
-                walk(v)
-        elif isinstance(x, bytes) and len(x) >= BIG_PIECE:
-            head += b"\xc6" + len(x).to_bytes(4, "big")
-            pieces.append(bytes(head))
-            pieces.append(x)
-            head = bytearray()
-        else:
-            head += msgpack.packb(x, use_bin_type=True)
-
-    walk(obj)
-    pieces.append(bytes(head))
-    return pieces
-
-
-def _header(n: int, fix: int, h16: bytes, h32: bytes) -> bytes:
-    """A msgpack map or array header for ``n`` members (fix form below 16)."""
-    if n < 16:
-        return bytes((fix | n,))
-    return h16 + n.to_bytes(2, "big") if n < 1 << 16 else h32 + n.to_bytes(4, "big")
 
 
 def load(cls: type[Engine], data: bytes) -> Engine:

@@ -48,6 +48,7 @@ import msgpack
 import numpy as np
 import redis
 
+from ..core.packing import array_head, str_head
 from ..core.types import QuestionColumns, Record, RecordColumns
 from ..errors import StreamgroupError
 from ..keys import MAX_ID_BYTES, MAX_KEY_BYTES, MAX_PACK_ANSWERS, QUESTION_FIELDS, Keys
@@ -426,37 +427,17 @@ def _question_column_rows(qc: QuestionColumns, i: int, j: int) -> bytes | None:
     if qids is None:
         return None
     m, width = j - i, rows.shape[1]
-    head = _str_head(width)
+    head = str_head(width)
     shown = np.empty((2 * m, len(head) + width), dtype=np.uint8)  # a's rows, then b's
     shown[:, :len(head)] = np.frombuffer(head, dtype=np.uint8)
     # the keys as one field of a record per row: a copy of about half the time of the
     # same copy into the uint8 columns
     fields = np.dtype([("head", f"V{len(head)}"), ("key", f"V{width}")])
     shown.view(fields).reshape(2 * m)["key"] = rows.view(f"V{width}").reshape(2 * m)
-    count = _array_head(m)
+    count = array_head(m)
     return b"".join([b"\x85\xa3qid", count, *qids, b"\xa1a", count, shown[:m],
                      b"\xa1b", count, shown[m:], b"\xa3why", count, *whys,
                      b"\xa2ts", count, *times])
-
-
-def _array_head(n: int) -> bytes:
-    """msgpack's header of an array of ``n`` elements."""
-    if n < 16:
-        return bytes([0x90 | n])
-    if n < 1 << 16:
-        return b"\xdc" + n.to_bytes(2, "big")
-    return b"\xdd" + n.to_bytes(4, "big")
-
-
-def _str_head(size: int) -> bytes:
-    """msgpack's header of a str of ``size`` bytes (with str8, as use_bin_type=True)."""
-    if size < 32:
-        return bytes([0xA0 | size])
-    if size < 1 << 8:
-        return b"\xd9" + bytes([size])
-    if size < 1 << 16:
-        return b"\xda" + size.to_bytes(2, "big")
-    return b"\xdb" + size.to_bytes(4, "big")
 
 
 _POW10 = 10 ** np.arange(19, dtype=np.int64)  # 1 to 10**18

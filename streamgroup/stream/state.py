@@ -24,7 +24,7 @@ import numpy as np
 import zstandard
 
 from ..core.engine import Engine
-from ..core.snapshot import msgpack_pieces
+from ..core.packing import msgpack_pieces
 from ..core.types import Answer, AnswerColumns, EngineConfig, KeyRowAnswers
 from ..errors import StateError
 
