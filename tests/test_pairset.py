@@ -33,6 +33,45 @@ def test_add_new_marks_the_first_of_each_unseen_key(batches: list[list[int]],
         assert pairs.recent.tolist() == sorted(pairs.recent.tolist())
 
 
+def test_the_filter_never_hides_a_member_as_the_set_grows() -> None:
+    """Past the first filter (8,192 keys) it is rebuilt larger, and keys sharing a byte of
+    it in one batch must all be marked: every repeat is still caught, across rebuilds,
+    merges and a save and reload, checked against a Python set."""
+    rng = np.random.default_rng(7)
+    pairs = PairSet()
+    seen: set[int] = set()
+    offered: list[int] = []
+    for k in range(40):
+        fresh = rng.integers(0, 1 << 62, 3000, dtype=np.int64).tolist()
+        again = [offered[i] for i in rng.integers(0, len(offered), 300)] if offered else []
+        batch = fresh + again + fresh[:50]  # repeats of earlier batches and of this one
+        want = []
+        for key in batch:
+            want.append(key not in seen)
+            seen.add(key)
+        got = pairs.add_new(np.array(batch, dtype=np.uint64))
+        assert got.tolist() == want, k
+        offered += fresh
+        # rebuilt as the set grows: at least 8 bits a key (else nearly every key is a maybe)
+        assert pairs._filter.size * 8 >= 8 * len(pairs)
+        if k == 25:
+            pairs = PairSet.from_bytes(pairs.to_bytes())
+    assert len(pairs) == len(seen) > 8 * 8192
+    probe = np.array(offered[::7] + rng.integers(0, 1 << 62, 500, dtype=np.int64).tolist(),
+                     dtype=np.uint64)
+    assert pairs.contains(probe).tolist() == [int(x) in seen for x in probe]
+
+
+def test_a_tiny_filter_with_every_byte_shared_still_marks_every_key() -> None:
+    """With a filter of 8 bytes, a batch of keys puts many bits into each byte at once."""
+    pairs = PairSet()
+    pairs._filter = np.zeros(8, dtype=np.uint8)
+    pairs._shift = np.uint64(64 - 6)
+    keys = np.arange(1, 41, dtype=np.uint64) * np.uint64(0x1234567)
+    pairs._mark(keys)
+    assert pairs._maybe(keys).all()
+
+
 @settings(max_examples=200, deadline=None)
 @given(st.lists(st.integers(0, 10**6), max_size=50, unique=True),
        st.lists(st.integers(0, 10**6), max_size=50))

@@ -425,7 +425,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
     def nbytes(self) -> int:
         """Approximate memory held by the arrays and the key store (not the key cache)."""
         return (self.ledger.nbytes() + self.items.nbytes() + self.q.nbytes()
-                + self.keys.nbytes() + self.seen.sorted.nbytes + self.seen.recent.nbytes
+                + self.keys.nbytes() + self.seen.nbytes
                 + self.pool.nbytes + self.block_state.nbytes)
 
 

@@ -40,12 +40,14 @@ def partner_shrink(eps: np.ndarray) -> np.ndarray:
     return np.subtract(1.0, shrink, out=shrink)
 
 
-def signed_weights(delta: np.ndarray, se: np.ndarray, shrink: np.ndarray
+def signed_weights(delta: np.ndarray, se: np.ndarray, shrink: np.ndarray,
+                   out: tuple[np.ndarray, np.ndarray] | None = None
                    ) -> tuple[np.ndarray, np.ndarray]:
     """:func:`answer_weights` from the partners' :func:`partner_shrink`, each times the
     sign of its answer's vote (+1 or -1); both results come out times that sign, bit for
     bit: w is odd in d (a clip and a difference of two log1p, each exact under negation)
-    and s has no sign of its own. ``shrink`` is used as a buffer.
+    and s has no sign of its own. ``shrink`` is used as a buffer, and ``out`` (w, s), if
+    given, receives the results (slices of larger arrays: see ``Ledger._weigh``).
     """
     # The same operations in the same order as
     #     d = clip(delta shrink, -C, C);  w = log1p(d) - log1p(-d);  s = shrink 2 / (1 - d d) se
@@ -56,12 +58,12 @@ def signed_weights(delta: np.ndarray, se: np.ndarray, shrink: np.ndarray
     d = np.multiply(delta, shrink)
     np.maximum(d, -_CLIP, out=d)
     np.minimum(d, _CLIP, out=d)
-    w = np.log1p(d)
+    w = np.log1p(d, out=None if out is None else out[0])
     tmp = np.negative(d)
     w -= np.log1p(tmp, out=tmp)
     np.multiply(d, d, out=tmp)
     np.subtract(1.0, tmp, out=tmp)
-    s = np.multiply(shrink, 2.0, out=shrink)
+    s = np.multiply(shrink, 2.0, out=shrink if out is None else out[1])
     s /= tmp
     s *= se
     return w, s

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .ledger import Ledger
+from .ledger import WEIGH_CHUNK, Ledger
 
 PRIOR = 2.0  # pseudo-answers that shrink a young source's bias towards 0
 SE_NEW = 1.0  # standard error of a source never fitted
@@ -47,16 +47,24 @@ def hard_posterior(ledger: Ledger) -> np.ndarray:
 def m_step(ledger: Ledger, n_sources: int, p: np.ndarray | None = None) -> NoiseFit:
     """One M-step over every answer that counts for at least one endpoint."""
     counted = ledger.answer("direction") != 0
-    a = ledger.answer("a")[counted]
-    b = ledger.answer("b")[counted]
-    src = ledger.answer("src")[counted]
-    x = ledger.answer("same")[counted].astype(np.float64)
+    a, b, src, same = (ledger.answer(name) for name in ("a", "b", "src", "same"))
+    if np.count_nonzero(counted) < len(counted):  # (at scale every answer counts: views)
+        a, b, src, same = a[counted], b[counted], src[counted], same[counted]
     if p is None:
         p = side_posterior(ledger)
     lean = 2.0 * p - 1.0  # per item, then gathered: the same values as per answer
-    r = lean[a] * lean[b]  # expected relation sign: +1 same, -1 different
-    agree = np.bincount(src, weights=x * r, minlength=n_sources)
-    info = np.bincount(src, weights=r * r, minlength=n_sources)
+    # r = lean[a] lean[b] is the expected relation sign (+1 same, -1 different); x r and
+    # r r are built in chunks whose temporaries stay in the cache, elementwise (the same
+    # values), and each summed in one bincount (the same order of addition)
+    xr, rr = np.empty(len(a)), np.empty(len(a))
+    for lo in range(0, len(a), WEIGH_CHUNK):
+        part = slice(lo, lo + WEIGH_CHUNK)
+        r = lean.take(a[part])
+        r *= lean.take(b[part])
+        np.multiply(same[part], r, out=xr[part])
+        np.multiply(r, r, out=rr[part])
+    agree = np.bincount(src, weights=xr, minlength=n_sources)
+    info = np.bincount(src, weights=rr, minlength=n_sources)
     total = np.bincount(src, minlength=n_sources).astype(np.float64)
     delta = np.clip(agree / (total + PRIOR), -0.995, 0.995)
     se = np.sqrt(np.maximum(1.0 - delta**2, 0.05) / (info + PRIOR))
