@@ -32,8 +32,9 @@ class Columns:
         if need > cap:
             new_cap = max(need, cap + cap // 4)  # 25% headroom: memory over copy cost
             for k, (dt, fill) in self.fields.items():
-                arr = np.full(new_cap, fill, dtype=dt)
+                arr = np.empty(new_cap, dtype=dt)  # each byte written once, not twice
                 arr[:start] = self.data[k][:start]
+                arr[start:] = fill
                 self.data[k] = arr
         self.n = need
         return np.arange(start, need)
