@@ -151,8 +151,11 @@ class PairSet:
 
     def merge(self) -> None:
         if len(self.recent):
-            # both runs are sorted and disjoint: a stable sort merges them in linear time
-            self.sorted = np.sort(np.concatenate([self.sorted, self.recent]), kind="stable")
+            # both runs are sorted and disjoint: a stable sort merges them in linear time,
+            # in place (np.sort would copy the joined runs once more)
+            joined = np.concatenate([self.sorted, self.recent])
+            joined.sort(kind="stable")
+            self.sorted = joined
             self.recent = np.zeros(0, dtype=np.uint64)
 
     def to_bytes(self) -> bytes:
