@@ -36,7 +36,7 @@ import streamgroup.stream.state as state_mod  # noqa: E402
 from streamgroup.core.types import EngineConfig  # noqa: E402
 from streamgroup.keys import GROUP, Keys  # noqa: E402
 from streamgroup.sim.crowd import Crowd  # noqa: E402
-from streamgroup.stream.worker import tune_gc  # noqa: E402
+from streamgroup.stream.worker import keep_memory, tune_gc  # noqa: E402
 
 PHASES = collections.Counter[str]()
 
@@ -70,10 +70,14 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--default-gc", action="store_true",
                    help="keep CPython's garbage collector thresholds (the worker raises them: "
                         "streamgroup.stream.worker.tune_gc)")
+    p.add_argument("--return-memory", action="store_true",
+                   help="let the allocator give freed memory back to the kernel (the worker "
+                        "keeps it: streamgroup.stream.worker.keep_memory)")
     p.add_argument("--json", action="store_true")
     args = p.parse_args(argv)
     if not args.default_gc:
         tune_gc()
+    kept = False if args.return_memory else keep_memory()
     for owner, name in ((batch_mod, "decode_answers"), (state_mod.WorkerState,
                         "apply_answer_columns"), (engine_mod.Engine, "plan_columns"),
                         (engine_mod.Engine, "take_update_columns"), (engine_mod.Engine,
@@ -150,6 +154,7 @@ def main(argv: list[str] | None = None) -> int:
     result = {
         "mode": ("packed (maps)" if args.row_packs else "packed (columns)") if args.packed
         else "plain",
+        "memory_kept": kept,
         "answers": totals["answers"],
         "us_per_answer": round((totals["process"] + totals["build"] + totals["pack"]) / n * 1e6,
                                2),

@@ -122,12 +122,13 @@ def fill_items(r: redis.Redis, stream: str, n: int, chunk: int = 50_000) -> None
 
 WORKER_ROOT = ROOT  # --worker-root: run the worker from another checkout (before/after)
 SNAPSHOT_EVERY = 30.0  # --snapshot-every: the worker's snapshot_every (its default)
+EXTRA_FLAGS: dict[str, Any] = {}  # --return-memory: keep_memory false
 
 
 def spawn_worker(url: str, ns: str, **flags: Any) -> subprocess.Popen[bytes]:
     args = [sys.executable, "-m", "streamgroup.stream.worker", "--redis", url, "--ns", ns,
             "--consumer", "bench", "--metrics-addr", "", "--log-level", "warning"]
-    for k, v in flags.items():
+    for k, v in {**EXTRA_FLAGS, **flags}.items():
         args += ["--" + k.replace("_", "-"), str(v)]
     env = {**os.environ, "PYTHONPATH": WORKER_ROOT}
     return subprocess.Popen(args, cwd=WORKER_ROOT, stdout=subprocess.DEVNULL, env=env)
@@ -670,11 +671,16 @@ def main(argv: list[str] | None = None) -> int:
                    help="the worker's snapshot_every in seconds (default: its own default, "
                         "30); a small value puts snapshots into every drain window, to "
                         "measure what they cost")
+    p.add_argument("--return-memory", action="store_true",
+                   help="run the worker with keep_memory false (freed memory goes back to "
+                        "the kernel), to measure what keeping it is worth")
     p.add_argument("--lookup-child", nargs=5, help=argparse.SUPPRESS)
     args = p.parse_args(argv)
     global WORKER_ROOT, SNAPSHOT_EVERY
     WORKER_ROOT = os.path.abspath(args.worker_root)
     SNAPSHOT_EVERY = args.snapshot_every
+    if args.return_memory:
+        EXTRA_FLAGS["keep_memory"] = "false"
     if args.lookup_child:
         url, ns, n, secs, rate = args.lookup_child
         lookup_child(url, ns, int(n), float(secs), float(rate))

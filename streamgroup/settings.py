@@ -54,6 +54,7 @@ class Settings:
     dead_maxlen: int = 100_000
     history_every: float = 5.0  # seconds between progress samples in {NS}:history
     lease_ttl: float = 15.0  # seconds a worker's hold on the namespace lasts unless renewed
+    keep_memory: bool = True  # keep freed memory in the process (stream.worker.keep_memory)
 
     def __post_init__(self) -> None:
         def bad(name: str, why: str) -> ConfigError:

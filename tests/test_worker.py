@@ -568,3 +568,38 @@ def test_answers_total_counts_packs_and_plain_entries() -> None:
                            "b": ["q"] * 7})
     assert _answers_in([b"5-0", [b"pack", later]]) == 7
     assert _answers_in([b"6-0", [b"pack", b"\x83\xa1a"]]) == 1
+
+
+_RSS_AFTER_FREE = """
+import sys
+import numpy as np
+from streamgroup.stream.worker import keep_memory
+kept = keep_memory() if sys.argv[1] == "keep" else False
+def rss():
+    with open("/proc/self/status") as fh:
+        return next(int(x.split()[1]) for x in fh if x.startswith("VmRSS:")) // 1024
+before = rss()
+a = np.ones(64 << 17)  # 64 MiB, written
+del a
+print(kept, rss() - before)
+"""
+
+
+@pytest.mark.skipif(not __import__("os").path.exists("/proc/self/status"),
+                    reason="reads /proc (Linux)")
+def test_keep_memory_holds_what_a_batch_frees() -> None:
+    """With keep_memory (glibc), 64 MiB written and freed stay in the process, ready for
+    the next batch; without it the allocator hands them back to the kernel at once."""
+    import subprocess
+    import sys
+
+    out = {}
+    for mode in ("keep", "give"):
+        run = subprocess.run([sys.executable, "-c", _RSS_AFTER_FREE, mode], check=True,
+                             capture_output=True, text=True)
+        kept, grown = run.stdout.split()
+        out[mode] = (kept, int(grown))
+    if out["keep"][0] != "True":
+        pytest.skip("not glibc: keep_memory has nothing to set")
+    assert out["keep"][1] >= 60, out
+    assert out["give"][1] < 16, out

@@ -94,10 +94,10 @@ def run(args: argparse.Namespace) -> int:
         client.redis.ping()
     check_metrics_addr(settings.metrics_addr)
     from ..logs import configure_logging
-    from ..stream.worker import Worker, tune_gc
+    from ..stream.worker import Worker, tune_process
 
     configure_logging(settings.log_level, settings.log_format, sys.stderr)
     worker = Worker(settings)
     install_signal_handlers(worker.request_stop, grace=settings.grace)
-    tune_gc()
+    tune_process(settings)
     return int(worker.run())
