@@ -131,22 +131,31 @@ def test_answer_weights_are_bit_for_bit_the_formula(rows: list[tuple[float, floa
     assert w.tobytes() == (want_w * sign).tobytes() and s.tobytes() == (want_s * sign).tobytes()
 
 
+def _random_ledger(r: np.random.Generator, n_items: int, n_ans: int, n_src: int,
+                   p_same: float, llr_sd: float = 0.0
+                   ) -> tuple[Ledger, slice, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Items some placed (some pinned), with evidence if ``llr_sd``, and random answers
+    between distinct items: (ledger, their rows, a, b, src, same)."""
+    led = Ledger()
+    led.add_items(n_items)
+    led.items["side"][:n_items] = r.integers(-1, 2, n_items)
+    led.items["pinned"][:n_items] = r.random(n_items) < 0.2
+    if llr_sd:
+        led.items["llr"][:n_items] = r.normal(0, llr_sd, n_items)
+    a = r.integers(0, n_items, n_ans)
+    b = (a + r.integers(1, n_items, n_ans)) % n_items
+    src = r.integers(0, n_src, n_ans)
+    same = r.random(n_ans) < p_same
+    return led, led.append_answers(a, b, src, same), a, b, src, same
+
+
 def test_recount_equals_the_answer_by_answer_sum() -> None:
     """A full recount (one pass over every answer, each item's discount computed once)
     and counting the same answers in small batches both give, to rounding, the sum
     written answer by answer from the formula in core/evidence.py."""
-    rng = np.random.default_rng(5)
     n_items, n_ans = 40, 400
-    led = Ledger()
-    led.add_items(n_items)
-    led.items["side"][:n_items] = rng.integers(-1, 2, n_items)
-    led.items["pinned"][:n_items] = rng.random(n_items) < 0.2
-    led.items["llr"][:n_items] = rng.normal(0, 4, n_items)
-    a = rng.integers(0, n_items, n_ans)
-    b = (a + rng.integers(1, n_items, n_ans)) % n_items
-    src = rng.integers(0, 3, n_ans)
-    same = rng.random(n_ans) < 0.5
-    rows = led.append_answers(a, b, src, same)
+    led, rows, a, b, src, same = _random_ledger(np.random.default_rng(5), n_items, n_ans, 3,
+                                                0.5, llr_sd=4)
     llr0 = led.item("llr").copy()  # the partners' evidence both passes discount by
     led.recompute(DELTA, SE)
     full = led.item("llr").copy()
@@ -196,15 +205,8 @@ def test_fit_sharing_its_pairs_equals_full_recounts(seed: int, iterations: int,
     n_items, n_ans, n_src = 30, 200, 4
     ledgers = []
     for _ in range(2):
-        led = Ledger()
-        led.add_items(n_items)
-        r = np.random.default_rng(seed)
-        led.items["side"][:n_items] = r.integers(-1, 2, n_items)
-        led.items["pinned"][:n_items] = r.random(n_items) < 0.2
-        a = r.integers(0, n_items, n_ans)
-        b = (a + r.integers(1, n_items, n_ans)) % n_items
-        led.append_answers(a, b, r.integers(0, n_src, n_ans), r.random(n_ans) < 0.6)
-        ledgers.append(led)
+        ledgers.append(_random_ledger(np.random.default_rng(seed), n_items, n_ans, n_src,
+                                      0.6)[0])
     delta, se = rng.uniform(-0.5, 0.9, n_src), rng.uniform(0.01, 0.3, n_src)
     got = noise.fit(ledgers[0], delta, se, iterations=iterations, cold=cold)
     want = _plain_fit(ledgers[1], delta, se, iterations, cold)
@@ -255,15 +257,8 @@ def test_a_recount_in_chunks_is_bit_for_bit_one_pass(seed: int, chunk: int,
     sums = []
     for size in (chunk, 1 << 40):
         r = np.random.default_rng(seed)
-        n_items, n_ans, n_src = 40, 300, 5
-        led = Ledger()
-        led.add_items(n_items)
-        led.items["side"][:n_items] = r.integers(-1, 2, n_items)
-        led.items["pinned"][:n_items] = r.random(n_items) < 0.2
-        led.items["llr"][:n_items] = r.normal(0, 3, n_items)
-        a = r.integers(0, n_items, n_ans)
-        b = (a + r.integers(1, n_items, n_ans)) % n_items
-        led.append_answers(a, b, r.integers(0, n_src, n_ans), r.random(n_ans) < 0.6)
+        n_src = 5
+        led = _random_ledger(r, 40, 300, n_src, 0.6, llr_sd=3)[0]
         delta, se = r.uniform(-0.5, 0.9, n_src), r.uniform(0.01, 0.3, n_src)
         saved = ledger_mod.WEIGH_CHUNK
         ledger_mod.WEIGH_CHUNK = size
