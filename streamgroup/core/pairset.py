@@ -22,7 +22,8 @@ def pair_keys(a: np.ndarray, b: np.ndarray, src: np.ndarray) -> np.ndarray:
 
 
 # Fibonacci hashing (multiplicative, by 2**64 over the golden ratio; Knuth, TAOCP vol. 3,
-# section 6.4; the constant from memory, checked: round(2**64 / 1.6180339887...), odd)
+# section 6.4; the constant from memory, checked: 2**64 / 1.6180339887... is
+# 11400714819323198485.95, whose integer part is this odd number)
 _HASH = np.uint64(0x9E3779B97F4A7C15)
 FILTER_MIN_BITS = 1 << 16
 FILTER_BITS_PER_KEY = 32  # at a rebuild; it is rebuilt when it falls to 8 (4 times the keys)
@@ -135,7 +136,7 @@ class PairSet:
         if np.count_nonzero(fresh):
             new[first[fresh]] = True
             fresh_keys = distinct[fresh]
-            if (len(self) + len(fresh_keys)) * 8 > self._filter.size * 8:  # < 8 bits a key
+            if len(self) + len(fresh_keys) > self._filter.size:  # under 8 bits a key
                 self._refilter(len(fresh_keys))
             self._mark(fresh_keys)
             self.recent = insert_sorted(self.recent, self.recent.searchsorted(fresh_keys),
