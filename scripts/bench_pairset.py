@@ -40,7 +40,7 @@ class SearchAll(PairSet):
             fresh_mask &= ~self._member(self.sorted, ordered)
         at = self.recent.searchsorted(ordered)
         if len(self.recent):
-            fresh_mask &= ~self._member(self.recent, ordered, at)
+            fresh_mask &= ~(self.recent.take(at, mode="clip") == ordered)
         new = np.empty(count, dtype=bool)
         new[order] = fresh_mask
         if np.count_nonzero(fresh_mask):

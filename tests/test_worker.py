@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import os
+import subprocess
+import sys
 import time
 from typing import Any
 
@@ -585,14 +588,10 @@ print(kept, rss() - before)
 """
 
 
-@pytest.mark.skipif(not __import__("os").path.exists("/proc/self/status"),
-                    reason="reads /proc (Linux)")
+@pytest.mark.skipif(not os.path.exists("/proc/self/status"), reason="reads /proc (Linux)")
 def test_keep_memory_holds_what_a_batch_frees() -> None:
     """With keep_memory (glibc), 64 MiB written and freed stay in the process, ready for
     the next batch; without it the allocator hands them back to the kernel at once."""
-    import subprocess
-    import sys
-
     out = {}
     for mode in ("keep", "give"):
         run = subprocess.run([sys.executable, "-c", _RSS_AFTER_FREE, mode], check=True,

@@ -31,13 +31,14 @@ FILTER_BITS_PER_KEY = 32  # at a rebuild; it is rebuilt when it falls to 8 (4 ti
 
 class PairSet:
     """Two sorted uint64 arrays: a large settled one and a small recent one that is merged
-    into it geometrically (8 bytes per member, all checks vectorised), and a one-hash bit
-    filter in front of them (1 to 4 bytes per member).
+    into it geometrically (8 bytes per member, all checks vectorised), and a Bloom filter
+    with one hash in front of them (1 to 4 bytes per member).
 
     Nearly every key offered is new, and a binary search of a few million sorted keys
     costs 150-250 ns per key in cache misses; the filter says "certainly new" for all but
-    3-12% of new keys (its false positives) in a few ns, so only those and the repeats
-    are searched for (``scripts/bench_pairset.py``).
+    3-12% of new keys (its false positives, 1 - exp(-n / m) for n keys in m bits: the
+    usual formula for one hash) in a few ns, so only those and the repeats are searched
+    for (``scripts/bench_pairset.py``).
     """
 
     def __init__(self) -> None:
@@ -54,13 +55,11 @@ class PairSet:
         return self.sorted.nbytes + self.recent.nbytes + self._filter.nbytes
 
     @staticmethod
-    def _member(arr: np.ndarray, keys: np.ndarray, at: np.ndarray | None = None
-                ) -> np.ndarray:
-        """Whether each of ``keys`` is in the sorted ``arr`` (``at``: their places in it,
-        when known)."""
+    def _member(arr: np.ndarray, keys: np.ndarray) -> np.ndarray:
+        """Whether each of ``keys`` is in the sorted ``arr``."""
         if len(arr) == 0:
             return np.zeros(len(keys), dtype=bool)
-        return arr.take(arr.searchsorted(keys) if at is None else at, mode="clip") == keys
+        return arr.take(arr.searchsorted(keys), mode="clip") == keys
 
     # -- the filter -------------------------------------------------------------------
     def _slots(self, keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -98,11 +97,13 @@ class PairSet:
 
     # -- the set ----------------------------------------------------------------------
     def contains(self, keys: np.ndarray) -> np.ndarray:
+        """Whether each key is a member: the filter first, then a search of the few it
+        cannot rule out."""
         keys = np.asarray(keys, dtype=np.uint64)
         out = self._maybe(keys)
         idx = out.nonzero()[0]
         if len(idx):
-            cand = keys[idx]
+            cand = keys.take(idx)
             out[idx] = self._member(self.sorted, cand) | self._member(self.recent, cand)
         return out
 
@@ -126,12 +127,7 @@ class PairSet:
         distinct = ordered.take(starts)  # sorted
         first = order.take(starts) if len(starts) == count else (
             np.minimum.reduceat(order, starts))  # the earliest of each run
-        fresh = np.ones(len(distinct), dtype=bool)
-        maybe = self._maybe(distinct).nonzero()[0]  # the only keys that need a search
-        if len(maybe):
-            cand = distinct.take(maybe)
-            known = self._member(self.sorted, cand) | self._member(self.recent, cand)
-            fresh[maybe[known]] = False
+        fresh = ~self.contains(distinct)
         new = np.zeros(count, dtype=bool)
         if np.count_nonzero(fresh):
             new[first[fresh]] = True
