@@ -62,7 +62,10 @@ core busy (Redis idle): what the machine alone adds at full load
 ``BENCH_PYSPY=PATH`` records a py-spy profile (raw format) of the worker over the drain
 cycles, to ``PATH`` and ``PATH-packed`` (py-spy is a tool to install by hand, not a
 dependency); with ``BENCH_PYSPY_IDLE=1`` the samples include the time it waits (py-spy
-``--idle``), to see where it waits for Redis. ``BENCH_LOOKUP_NICE=N`` runs the lookup
+``--idle``), to see where it waits for Redis. ``BENCH_PERF=PATH`` records
+``perf record -g`` of the worker and Redis inside the drain windows only (perf's control
+fifo; to ``PATH`` and ``PATH-packed``; read with ``perf report -i PATH --sort comm,sym``).
+``BENCH_LOOKUP_NICE=N`` runs the lookup
 process at nice ``N`` (negative: ahead of the worker), to tell time spent waiting for a
 core from time spent waiting for Redis. ``BENCH_REDIS_CPU=N`` pins Redis to CPU ``N`` and
 everything else (the worker, the adapter, the lookups) to the other CPUs.
@@ -75,10 +78,12 @@ import collections
 import json
 import os
 import random
+import shutil
 import signal
 import statistics
 import subprocess
 import sys
+import tempfile
 import time
 from typing import Any
 
@@ -441,6 +446,41 @@ def bench_loop(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
     return out
 
 
+class WindowPerf:
+    """``perf record -g`` of some processes, counting only while enabled (a tool on the
+    PATH, not a dependency): the drain windows alone, with call graphs into the kernel."""
+
+    def __init__(self, path: str, pids: list[int]) -> None:
+        self.dir = tempfile.mkdtemp(prefix="bench-perf-")
+        self.ctl, self.ack = os.path.join(self.dir, "ctl"), os.path.join(self.dir, "ack")
+        os.mkfifo(self.ctl)
+        os.mkfifo(self.ack)
+        self.proc = subprocess.Popen(
+            ["perf", "record", "-g", "-D", "-1", "--control", f"fifo:{self.ctl},{self.ack}",
+             "-p", ",".join(map(str, pids)), "-o", path],
+            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        self.ctl_fh = open(self.ctl, "w")  # noqa: SIM115 (kept open across the windows)
+        self.ack_fh = open(self.ack)  # noqa: SIM115
+
+    def _say(self, word: str) -> None:
+        self.ctl_fh.write(word + "\n")
+        self.ctl_fh.flush()
+        self.ack_fh.readline()
+
+    def enable(self) -> None:
+        self._say("enable")
+
+    def disable(self) -> None:
+        self._say("disable")
+
+    def close(self) -> None:
+        self.proc.send_signal(signal.SIGINT)
+        self.proc.wait(60)
+        self.ctl_fh.close()
+        self.ack_fh.close()
+        shutil.rmtree(self.dir, ignore_errors=True)
+
+
 def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
                 cycles: int, lookups: bool, max_outstanding: int) -> dict[str, Any]:
     """The worker alone, as the bare loop is alone: it drains a backlog of answers to its
@@ -471,6 +511,9 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
                                 *(["--idle"] if os.environ.get("BENCH_PYSPY_IDLE") else [])],
                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         time.sleep(1.0)
+    perf = WindowPerf(os.environ["BENCH_PERF"] + ("-packed" if pack else ""),
+                      [proc.pid, int(r.info("server")["process_id"])]
+                      ) if os.environ.get("BENCH_PERF") else None
     windows: list[tuple[float, float]] = []
     backlogs: list[int] = []
     cpu = r_cpu = sys_cpu = 0.0
@@ -512,6 +555,8 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         r.config_resetstat()
         r.slowlog_reset()
         rc0 = redis_cpu(r)
+        if perf is not None and cycle:
+            perf.enable()
         (u0, s0), f0, t0 = cpu_split(proc.pid), minor_faults(proc.pid), time.monotonic()
         proc.send_signal(signal.SIGCONT)
         deadline = time.monotonic() + 300
@@ -521,6 +566,8 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
                                  f"{target} answer entries in 300 s")
             time.sleep(0.002)
         t1 = time.monotonic()
+        if perf is not None and cycle:
+            perf.disable()
         if cycle == 0:
             continue
         backlogs.append(backlog)
@@ -542,6 +589,8 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
         windows.append((t0, t1))
         for e in r.slowlog_get(128):
             slow[e["command"].split(b" ", 1)[0].decode().lower()].append(e["duration"] / 1000)
+    if perf is not None:
+        perf.close()
     if spy is not None:
         spy.send_signal(signal.SIGINT)
         spy.wait(60)
