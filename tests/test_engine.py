@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import base64
+import dataclasses
 import zlib
 
 import msgpack
@@ -17,6 +18,7 @@ from scipy.stats import binom
 from streamgroup.core import sprt
 from streamgroup.core.codes import Q_EXPIRED, Q_OPEN
 from streamgroup.core.engine import Engine
+from streamgroup.core.evidence import decision_error
 from streamgroup.core.types import Answer, AnswerColumns, EngineConfig, Question
 from streamgroup.errors import EngineInputError
 from streamgroup.sim import Crowd, mixed_sources
@@ -512,6 +514,57 @@ def test_randomised_boundary_commits_with_the_chance_that_makes_the_error_alpha(
     assert not eng._may_commit(idx, np.full(n, 1.04 * alpha), np.zeros(n),
                                np.ones(n, dtype=bool)).any()
     assert eng._may_commit(idx, np.full(n, alpha), np.zeros(n), np.ones(n, dtype=bool)).all()
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.sampled_from([1e-6, 1e-3, 0.01, 0.05, 0.2]), st.sampled_from([0.0, 0.03, 0.25]),
+       st.floats(0.0, 1.0), st.floats(0.0, 1e3))
+@example(1e-3, 0.03, 1.0 - 1e-12, 0.0)  # just under the bound, no spread
+def test_evidence_the_decisions_skip_can_never_pass_the_boundary(
+        alpha: float, slack: float, share: float, spread: float) -> None:
+    """_decide leaves out items whose evidence is below _hopeless_below: for any spread,
+    decision_error of such evidence must be above alpha (1 + slack), so that skipping them
+    changes no commit, flip or anchor."""
+    eng = Engine(EngineConfig(alpha=alpha, alpha_slack=slack))
+    bound = eng._hopeless_below()
+    llr = np.array([bound * share, -bound * share])
+    err = decision_error(llr, np.full(2, spread))
+    assert (err > alpha * (1.0 + slack)).all()
+    # and the bound is not loose: with no spread, the error at the boundary is 3/2 of the
+    # middle term (1 / (1 + e^L) against (2/3) / (1 + e^L)), so evidence about ln(3/2)
+    # above the bound passes
+    if bound > 0:
+        assert decision_error(np.array([bound + 0.6]), np.zeros(1))[0] <= alpha * (1 + slack)
+
+
+def test_decisions_skip_nothing_that_would_commit() -> None:
+    """_decide over every item (as after a refit), with the skip of hopeless evidence and
+    without it (a reference that computes every error, as before the skip), commits the
+    same items, makes the same give-ups and grows the same reference pool."""
+    eng = Engine(EngineConfig(alpha=1e-3, max_outstanding=10**6, item_ceiling=6))
+    crowd = Crowd(3000, delta=0.6, seed=4)
+    eng.add_items([(k, None) for k in crowd.keys])
+    now = 0
+    for _ in range(8):  # mid-walk: many items open, with evidence of every strength
+        now += 1000
+        eng.add_answers(crowd.answer_now(eng.plan(now)), now)
+    # a looser bound makes some open items committable now, others stay hopeless
+    config = dataclasses.replace(eng.config, alpha=0.02)
+    skipping, full = (Engine.restore(eng.snapshot()) for _ in range(2))
+    for e in (skipping, full):
+        e.config = config
+    full._hopeless_below = lambda: 0.0  # type: ignore[method-assign]  # nothing skipped
+    llr, side = skipping.ledger.items["llr"], skipping.ledger.items["side"].copy()
+    open_ = side == -1
+    hopeless = open_ & (np.abs(llr) < skipping._hopeless_below())
+    assert hopeless.sum() > 100 and (open_ & ~hopeless).sum() > 10  # both kinds present
+    n = len(eng.keys)
+    for e in (skipping, full):
+        e._decide(np.arange(n), ordered=True)
+    assert (full.ledger.items["side"] != side).sum() > 10  # the reference committed some
+    assert (skipping.ledger.items["side"] == full.ledger.items["side"]).all()
+    assert (skipping.items["status"] == full.items["status"]).all()
+    assert (skipping.pool == full.pool).all()
 
 
 def test_published_records_follow_every_change() -> None:

@@ -43,6 +43,13 @@ class DecideMixin:
             side, llr = led["side"][todo], led["llr"][todo]
             todo = todo[(side == UNPLACED) | ((llr > 0) != (side == 1))]
             llr = led["llr"][todo]
+            # Evidence too weak to pass the boundary whatever its spread can only end in
+            # a give-up (after a refit, nearly every open item): its error is not computed.
+            far = np.abs(llr) < self._hopeless_below()
+            if np.count_nonzero(far):
+                self._give_up(todo[far])
+                near = ~far
+                todo, llr = todo[near], llr[near]
             spread = self.ledger.spread(todo, self.shared)
             err = decision_error(llr, spread)
             open_ = led["side"][todo] == UNPLACED
@@ -77,6 +84,20 @@ class DecideMixin:
                 todo = uniq(todo)
             else:
                 return
+
+    def _hopeless_below(self) -> float:
+        """Evidence below which no item can commit, flip or anchor the pool.
+
+        ``decision_error`` adds three non-negative terms, the middle one (2/3) / (1 +
+        e^|llr|) whatever the spread, so an item whose middle term alone exceeds alpha (1 +
+        slack) cannot pass; the bound is taken a millionth lower to stay clear of rounding.
+        """
+        limit = self.config.alpha * max(1.0, 1.0 + self.config.alpha_slack)
+        ratio = (2.0 / 3.0) / limit - 1.0
+        if ratio <= 1.0:
+            return 0.0  # (an alpha this large: nothing is hopeless)
+        bound = float(np.log(ratio))
+        return bound - 1e-6 * max(1.0, bound)
 
     def _may_commit(self, idx: np.ndarray, err: np.ndarray, spread: np.ndarray,
                     open_: np.ndarray) -> np.ndarray:
