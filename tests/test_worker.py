@@ -12,6 +12,7 @@ import msgpack
 import pytest
 import redis
 
+from streamgroup.client import Client
 from streamgroup.core.types import Answer
 from streamgroup.errors import StateError
 from streamgroup.keys import GROUP, Keys
@@ -23,6 +24,7 @@ from streamgroup.stream.codec import answer_fields, pack_answer_columns, pack_an
 from streamgroup.stream.recovery import load_state
 from streamgroup.stream.state import OP_ANSWER_COLUMNS, OP_KEY_ROWS, Batch
 from streamgroup.stream.worker import EXIT_STATE, Worker
+from tests.redisproc import RedisProc
 
 pytestmark = pytest.mark.redis
 
@@ -602,3 +604,22 @@ def test_keep_memory_holds_what_a_batch_frees() -> None:
         pytest.skip("not glibc: keep_memory has nothing to set")
     assert out["keep"][1] >= 60, out
     assert out["give"][1] < 16, out
+
+
+def test_worker_and_client_work_over_a_unix_socket(tmp_path: Any) -> None:
+    """redis:// is not the only address the settings accept: with unix:// (Redis on the same
+    host) the worker places items and the client reads them back, as over TCP."""
+    sock = tmp_path / "redis.sock"
+    proc = RedisProc(extra=["--unixsocket", str(sock), "--unixsocketperm", "700"]).start()
+    try:
+        url = f"unix://{sock}?db=0"
+        w, _, crowd = closed_loop(url, 60, pack=True)
+        client = Client(url, ns=NS)
+        got = client.lookup_many(crowd.keys)
+        assert all(g is not None and g["status"] == "placed" for g in got)
+        assert errors_vs_truth(crowd, assign(redis.Redis.from_url(url))) <= 1
+        client.close()
+        w.close()
+    finally:
+        proc.cleanup()
+

@@ -38,10 +38,12 @@ def connect(settings: Settings) -> redis.Redis:
     commit a batch twice; the worker retries itself, after reloading its state.
     """
     timeout = max(10.0, settings.block_ms / 1000.0 + 10.0)
+    # keepalive probes are a TCP option: a unix socket's connection class refuses it
+    tcp = {} if settings.redis.startswith("unix:") else {"socket_keepalive": True}
     return redis.Redis.from_url(
         settings.redis, decode_responses=False, retry=Retry(NoBackoff(), 0),
-        socket_timeout=timeout, socket_connect_timeout=5.0, socket_keepalive=True,
-        health_check_interval=0, single_connection_client=True,
+        socket_timeout=timeout, socket_connect_timeout=5.0, health_check_interval=0,
+        single_connection_client=True, **tcp,
     )
 
 
