@@ -16,7 +16,7 @@ from scipy.stats import beta as beta_dist
 from scipy.stats import binom
 
 from streamgroup.core import sprt
-from streamgroup.core.codes import Q_EXPIRED, Q_OPEN
+from streamgroup.core.codes import Q_EXPIRED, Q_OPEN, UNRESOLVED
 from streamgroup.core.engine import Engine
 from streamgroup.core.evidence import decision_error
 from streamgroup.core.types import Answer, AnswerColumns, EngineConfig, Question
@@ -541,15 +541,16 @@ def test_decisions_skip_nothing_that_would_commit() -> None:
     """_decide over every item (as after a refit), with the skip of hopeless evidence and
     without it (a reference that computes every error, as before the skip), commits the
     same items, makes the same give-ups and grows the same reference pool."""
-    eng = Engine(EngineConfig(alpha=1e-3, max_outstanding=10**6, item_ceiling=6))
+    eng = Engine(EngineConfig(alpha=1e-3, max_outstanding=10**6))
     crowd = Crowd(3000, delta=0.6, seed=4)
     eng.add_items([(k, None) for k in crowd.keys])
     now = 0
     for _ in range(8):  # mid-walk: many items open, with evidence of every strength
         now += 1000
         eng.add_answers(crowd.answer_now(eng.plan(now)), now)
-    # a looser bound makes some open items committable now, others stay hopeless
-    config = dataclasses.replace(eng.config, alpha=0.02)
+    # a looser bound makes some open items committable now, others stay hopeless, and a
+    # ceiling of 5 answers (every item has 5 by now) makes the rest give up
+    config = dataclasses.replace(eng.config, alpha=0.02, item_ceiling=5)
     skipping, full = (Engine.restore(eng.snapshot()) for _ in range(2))
     for e in (skipping, full):
         e.config = config
@@ -562,6 +563,7 @@ def test_decisions_skip_nothing_that_would_commit() -> None:
     for e in (skipping, full):
         e._decide(np.arange(n), ordered=True)
     assert (full.ledger.items["side"] != side).sum() > 10  # the reference committed some
+    assert (full.items["status"] == UNRESOLVED).sum() > 100  # and gave up on others
     assert (skipping.ledger.items["side"] == full.ledger.items["side"]).all()
     assert (skipping.items["status"] == full.items["status"]).all()
     assert (skipping.pool == full.pool).all()

@@ -6,6 +6,7 @@ import os
 import subprocess
 import sys
 import time
+from pathlib import Path
 from typing import Any
 
 import msgpack
@@ -606,7 +607,7 @@ def test_keep_memory_holds_what_a_batch_frees() -> None:
     assert out["give"][1] < 16, out
 
 
-def test_worker_and_client_work_over_a_unix_socket(tmp_path: Any) -> None:
+def test_worker_and_client_work_over_a_unix_socket(tmp_path: Path) -> None:
     """redis:// is not the only address the settings accept: with unix:// (Redis on the same
     host) the worker places items and the client reads them back, as over TCP."""
     sock = tmp_path / "redis.sock"
@@ -622,4 +623,3 @@ def test_worker_and_client_work_over_a_unix_socket(tmp_path: Any) -> None:
         w.close()
     finally:
         proc.cleanup()
-
