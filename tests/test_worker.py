@@ -10,8 +10,12 @@ from pathlib import Path
 from typing import Any
 
 import msgpack
+import numpy as np
 import pytest
 import redis
+from hypothesis import given
+from hypothesis import settings as search
+from hypothesis import strategies as st
 
 from streamgroup.client import Client
 from streamgroup.core.types import Answer
@@ -23,7 +27,7 @@ from streamgroup.sim.crowd import Crowd
 from streamgroup.stream.adapter import SimAdapter
 from streamgroup.stream.codec import answer_fields, pack_answer_columns, pack_answers
 from streamgroup.stream.recovery import load_state
-from streamgroup.stream.state import OP_ANSWER_COLUMNS, OP_KEY_ROWS, Batch
+from streamgroup.stream.state import OP_ANSWER_COLUMNS, OP_KEY_COLUMNS, Batch
 from streamgroup.stream.worker import EXIT_STATE, Worker
 from tests.redisproc import RedisProc
 
@@ -146,7 +150,7 @@ def test_column_packs_of_key_rows_close_the_loop_and_replay_exactly(redis_url: s
 
     assert w.run_until(turn, 60)
     ops = [op for _, f in r.xrange(K.journal) for op, _ in Batch.from_journal(f[b"b"]).ops]
-    assert ops.count(OP_KEY_ROWS) >= 3 and OP_ANSWER_COLUMNS not in ops
+    assert ops.count(OP_KEY_COLUMNS) >= 3 and OP_ANSWER_COLUMNS not in ops
     assert w.state is not None
     again = load_state(r, K, cfg)
     assert again.engine.snapshot() == w.state.engine.snapshot() and again.seq == w.state.seq
@@ -535,14 +539,15 @@ def test_large_journal_entries_are_compressed() -> None:
     import numpy as np
 
     from streamgroup.core.types import KeyRowAnswers
-    from streamgroup.stream.state import OP_KEY_ROWS, ZSTD_MAGIC, key_rows_payload
+    from streamgroup.stream.state import ZSTD_MAGIC, key_columns_payload
 
     n = 2000
     rows = np.frombuffer("".join(f"shard-{i:06d}" for i in range(2 * n)).encode(),
                          dtype=np.uint8).reshape(2 * n, 12)
     k = KeyRowAnswers(rows[:n], rows[n:], np.arange(n) % 3 == 0,
                       [f"src-{i % 50:03d}" for i in range(n)], np.arange(n, dtype=np.int64))
-    big = Batch(7, 1000, [[OP_KEY_ROWS, key_rows_payload(k)]], [f"a{i}" for i in range(n)])
+    big = Batch(7, 1000, [[OP_KEY_COLUMNS, key_columns_payload(k)]],
+                [f"a{i}" for i in range(n)])
     data = big.journal_bytes()
     raw = msgpack.packb({"v": 1, "s": 7, "t": 1000, "ops": big.ops, "aids": big.aids,
                          "c": {}}, use_bin_type=True)
@@ -554,6 +559,61 @@ def test_large_journal_entries_are_compressed() -> None:
     small = Batch(8, 1000, [["i", [["x", None]]]])
     assert small.journal_bytes() == msgpack.packb(
         {"v": 1, "s": 8, "t": 1000, "ops": small.ops, "aids": [], "c": {}}, use_bin_type=True)
+
+
+def _key_rows(texts: list[str]) -> Any:
+    return np.frombuffer("".join(texts).encode(), dtype=np.uint8).reshape(len(texts), -1)
+
+
+@search(max_examples=60, deadline=None)
+@given(st.integers(1, 40), st.integers(1, 9), st.lists(st.integers(0, 2**40), min_size=1,
+                                                         max_size=40))
+def test_key_column_payload_reads_back_what_was_written(n: int, width: int,
+                                                        qids: list[int]) -> None:
+    """Keys column by column and qids as steps (op k) read back as the same rows, flags,
+    sources and qids, whatever the width, the order of the qids or a key's bytes."""
+    from streamgroup.core.types import KeyRowAnswers
+    from streamgroup.stream.state import key_columns_from_payload, key_columns_payload
+
+    rng = np.random.default_rng(n * 100 + width)
+    a, b = (rng.integers(1, 256, (n, width)).astype(np.uint8) for _ in range(2))
+    qn = np.resize(np.array(qids, dtype=np.int64), n)
+    k = KeyRowAnswers(a, b, rng.integers(0, 2, n).astype(bool),
+                      [f"s{i % 3}" for i in range(n)], qn)
+    back = key_columns_from_payload(msgpack.unpackb(
+        msgpack.packb(key_columns_payload(k), use_bin_type=True), raw=False))
+    assert back.a_rows.tobytes() == a.tobytes() and back.a_rows.shape == (n, width)
+    assert back.b_rows.tobytes() == b.tobytes() and back.a_rows.flags.c_contiguous
+    assert back.same.tolist() == k.same.tolist() and back.source == k.source
+    assert back.qn.dtype == np.int64 and back.qn.tolist() == qn.tolist()
+
+
+def test_key_columns_replay_like_the_key_rows_of_earlier_versions() -> None:
+    """The same answers journaled as op k (this version) and as op K (what earlier versions
+    wrote, still read) replay to the same engine, byte for byte, and are applied."""
+    from streamgroup.core.types import EngineConfig, KeyRowAnswers
+    from streamgroup.stream.state import (
+        OP_KEY_ROWS,
+        WorkerState,
+        key_columns_payload,
+        key_rows_payload,
+    )
+
+    crowd = Crowd(300, delta=0.6, sources=[0.6] * 5, seed=5)  # keys of one length
+    state = WorkerState.fresh(EngineConfig(max_outstanding=10**6), "e", 1000)
+    state.engine.add_items([(key, None) for key in crowd.keys])
+    qc = state.engine.plan_columns(1000)  # the first questions (the bootstrap's)
+    same, src = crowd.answer_keys(qc.a, qc.b)
+    k = KeyRowAnswers(_key_rows(qc.a), _key_rows(qc.b), np.array(same), src,
+                      np.array([int(q) for q in qc.qid], dtype=np.int64))
+    start = state.snapshot_bytes(1000)
+    ends = []
+    for op, payload in ((OP_KEY_COLUMNS, key_columns_payload), (OP_KEY_ROWS, key_rows_payload)):
+        again = WorkerState.from_snapshot(start, "e", 1000)
+        again.replay(Batch.from_journal(Batch(1, 2000, [[op, payload(k)]]).journal_bytes()))
+        ends.append(again.engine)
+    assert len(qc) > 50 and ends[0].stats()["spend"] == len(qc)  # every answer applied
+    assert ends[0].snapshot() == ends[1].snapshot()
 
 
 def test_answers_total_counts_packs_and_plain_entries() -> None:

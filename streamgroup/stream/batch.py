@@ -38,12 +38,12 @@ from .state import (
     OP_ANSWER_COLUMNS,
     OP_ANSWERS,
     OP_ITEMS,
-    OP_KEY_ROWS,
+    OP_KEY_COLUMNS,
     Batch,
     WorkerState,
     answers_columns_payload,
     answers_payload,
-    key_rows_payload,
+    key_columns_payload,
 )
 
 
@@ -114,7 +114,7 @@ def _apply_answers(state: WorkerState, cols: AnswerColumns | KeyRowAnswers,
     try:
         applied = state.apply_answer_columns(cols, now_ms)
         if isinstance(cols, KeyRowAnswers):
-            batch.ops.append([OP_KEY_ROWS, key_rows_payload(cols)])
+            batch.ops.append([OP_KEY_COLUMNS, key_columns_payload(cols)])
         else:
             batch.ops.append([OP_ANSWER_COLUMNS, answers_columns_payload(cols)])
         batch.aids.extend(a for a in aids if a is not None)
