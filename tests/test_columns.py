@@ -59,6 +59,24 @@ def test_keys_of_gathers_the_keys_that_were_added(keys: list[str], data: st.Data
         assert rows is None
 
 
+@settings(max_examples=60, deadline=None)
+@given(st.integers(1, 12), st.lists(st.sampled_from(["a", "Z", "7", "é", "\u2603", "\U0001f600"]),
+                                    min_size=1, max_size=12), st.data())
+def test_keys_of_one_length_are_gathered_as_rows(width: int, alphabet: list[str],
+                                                 data: st.DataObject) -> None:
+    """Keys of one length in bytes (the usual deployment) are read back from whole rows of
+    the blob; what keys_of gives must be the keys added, whatever the characters."""
+    one = [c for c in alphabet if len(c.encode()) == len(alphabet[0].encode())]
+    keys = sorted({"".join(data.draw(st.lists(st.sampled_from(one), min_size=width,
+                                              max_size=width))) for _ in range(60)})
+    index = KeyIndex(cache_size=4)  # a small cache: most gathers decode from the blob
+    index.add(keys)
+    assert index.width == len(keys[0].encode())
+    picks = data.draw(st.lists(st.integers(0, len(keys) - 1), min_size=8, max_size=200))
+    assert index.keys_of(np.array(picks, dtype=np.int64)) == [keys[i] for i in picks]
+    assert index.keys_of(np.arange(len(keys))) == keys
+
+
 @settings(max_examples=40, deadline=None)
 @given(st.lists(KEY, min_size=1, max_size=300, unique=True), st.integers(1, 64), st.data())
 def test_lookups_are_right_whatever_the_cache_holds(keys: list[str], cache: int,
