@@ -536,8 +536,6 @@ def test_replay_reads_compressed_and_plain_journal_entries(redis_url: str) -> No
 def test_large_journal_entries_are_compressed() -> None:
     """A batch of 2,000 key-row answers takes less than a third of its msgpack size in the
     journal and reads back the same; a small batch stays plain msgpack."""
-    import numpy as np
-
     from streamgroup.core.types import KeyRowAnswers
     from streamgroup.stream.state import ZSTD_MAGIC, key_columns_payload
 
