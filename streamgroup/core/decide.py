@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from . import noise, planner
@@ -96,7 +98,7 @@ class DecideMixin:
         ratio = (2.0 / 3.0) / limit - 1.0
         if ratio <= 1.0:
             return 0.0  # (an alpha this large: nothing is hopeless)
-        bound = float(np.log(ratio))
+        bound = math.log(ratio)
         return bound - 1e-6 * max(1.0, bound)
 
     def _may_commit(self, idx: np.ndarray, err: np.ndarray, spread: np.ndarray,

@@ -15,6 +15,8 @@ from typing import Any
 
 import numpy as np
 
+from .types import KeyRowAnswers
+
 _EMPTY = 0  # table cells hold index + 1
 
 
@@ -116,12 +118,8 @@ class KeyIndex:
     def _decode(self, idx: np.ndarray) -> list[str]:
         """The keys at ``idx`` from the blob: gathered into one NUL-separated buffer by numpy
         and decoded and split once (keys never hold NUL), not a slice and a decode per key."""
-        if self.width > 0 and len(idx):  # keys of one length: whole rows, no index per byte
-            rows = self.key_rows(idx)
-            assert rows is not None
-            buf = np.zeros((len(idx), self.width + 1), dtype=np.uint8)
-            buf[:, :self.width] = rows
-            return buf.tobytes().decode("utf-8").split("\0")[:-1]
+        if self.width > 0:  # keys of one length: whole rows, no index per byte
+            return KeyRowAnswers.texts(self.key_rows(idx))
         o = self.offsets
         starts = o[idx]
         lens = o[idx + 1] - starts
