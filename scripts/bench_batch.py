@@ -96,7 +96,7 @@ def main(argv: list[str] | None = None) -> int:
         items = [[f"{next(seq)}-0".encode(), [b"key", k.encode()]]
                  for k in crowd.keys[lo:lo + 500]]
         pending += batch_mod.process(st, keys.items, items, keys.answers, [], now).questions.rows()
-    totals = {"answers": 0, "process": 0.0, "build": 0.0, "pack": 0.0}
+    totals = {"answers": 0, "process": 0.0, "build": 0.0, "pack": 0.0, "journal": 0}
     round_ms: list[float] = []
 
     def one_round() -> None:
@@ -126,9 +126,10 @@ def main(argv: list[str] | None = None) -> int:
         t0 = time.perf_counter()
         out = batch_mod.process(st, keys.items, [], keys.answers, entries, now)
         t1 = time.perf_counter()
+        journal = out.batch.journal_bytes()
         plan = commit_mod.build_commit(
             keys, commit_mod.Caps(), records=out.records, decisions=out.decisions,
-            questions=out.questions, dead=[], journal=out.batch.journal_bytes(),
+            questions=out.questions, dead=[], journal=journal,
             snapshot=None, meta=st.meta_fields(), acks={keys.answers: [e[0] for e in entries]},
             group=GROUP, pack_questions=args.packed,
             question_columns=args.packed and not args.row_packs)
@@ -139,6 +140,7 @@ def main(argv: list[str] | None = None) -> int:
         totals["process"] += t1 - t0
         totals["build"] += t2 - t1
         totals["pack"] += t3 - t2
+        totals["journal"] += len(journal)
         round_ms.append((t3 - t0) * 1e3)
         pending += out.questions.rows()
 
@@ -146,7 +148,7 @@ def main(argv: list[str] | None = None) -> int:
     for _ in range(warm):
         one_round()
     PHASES.clear()
-    totals.update(answers=0, process=0.0, build=0.0, pack=0.0)
+    totals.update(answers=0, process=0.0, build=0.0, pack=0.0, journal=0)
     round_ms.clear()
     for _ in range(args.rounds if not args.packed else max(10, args.rounds // 20)):
         one_round()
@@ -161,6 +163,7 @@ def main(argv: list[str] | None = None) -> int:
         "process_us": round(totals["process"] / n * 1e6, 2),
         "build_commit_us": round(totals["build"] / n * 1e6, 2),
         "pack_command_us": round(totals["pack"] / n * 1e6, 2),
+        "journal_bytes_per_answer": round(totals["journal"] / n, 2),
         # a batch's whole in-process time: the median is the steady cost, the mean adds
         # the rare whole-state passes (refits, recounts after a flip)
         "batch_ms": {"p50": round(float(np.percentile(round_ms, 50)), 3),

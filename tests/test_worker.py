@@ -13,7 +13,7 @@ import msgpack
 import numpy as np
 import pytest
 import redis
-from hypothesis import given
+from hypothesis import example, given
 from hypothesis import settings as search
 from hypothesis import strategies as st
 
@@ -27,7 +27,7 @@ from streamgroup.sim.crowd import Crowd
 from streamgroup.stream.adapter import SimAdapter
 from streamgroup.stream.codec import answer_fields, pack_answer_columns, pack_answers
 from streamgroup.stream.recovery import load_state
-from streamgroup.stream.state import OP_ANSWER_COLUMNS, OP_KEY_COLUMNS, Batch
+from streamgroup.stream.state import OP_ANSWER_COLUMNS, OP_KEY_COLUMNS, OP_QIDS, Batch
 from streamgroup.stream.worker import EXIT_STATE, Worker
 from tests.redisproc import RedisProc
 
@@ -135,8 +135,8 @@ def test_question_column_packs_close_the_loop_and_read_like_packs_of_maps(
 
 def test_column_packs_of_key_rows_close_the_loop_and_replay_exactly(redis_url: str) -> None:
     """Column packs of keys of one length (read into key rows, no string per answer) place
-    every item; the journal holds them as key rows, and the state rebuilt from the
-    snapshot and that journal is exactly the running worker's."""
+    every item; the journal holds them by qid (each answer holds its question's keys), and
+    the state rebuilt from the snapshot and that journal is exactly the running worker's."""
     r = redis.Redis.from_url(redis_url)
     crowd = Crowd(200, delta=0.6, sources=[0.6] * 20, seed=3)
     push_items(r, crowd.keys)
@@ -150,7 +150,7 @@ def test_column_packs_of_key_rows_close_the_loop_and_replay_exactly(redis_url: s
 
     assert w.run_until(turn, 60)
     ops = [op for _, f in r.xrange(K.journal) for op, _ in Batch.from_journal(f[b"b"]).ops]
-    assert ops.count(OP_KEY_COLUMNS) >= 3 and OP_ANSWER_COLUMNS not in ops
+    assert ops.count(OP_QIDS) >= 3 and OP_ANSWER_COLUMNS not in ops
     assert w.state is not None
     again = load_state(r, K, cfg)
     assert again.engine.snapshot() == w.state.engine.snapshot() and again.seq == w.state.seq
@@ -612,6 +612,89 @@ def test_key_columns_replay_like_the_key_rows_of_earlier_versions() -> None:
         ends.append(again.engine)
     assert len(qc) > 50 and ends[0].stats()["spend"] == len(qc)  # every answer applied
     assert ends[0].snapshot() == ends[1].snapshot()
+
+
+@search(max_examples=60, deadline=None)
+@given(st.lists(st.integers(0, 2**62), min_size=1, max_size=400), st.integers(1, 300))
+@example([200, 72, 199], 3)  # steps at the edges of one byte: -128 and 127
+@example([0, 128, 2**31 + 128], 300)
+def test_qid_payload_reads_back_what_was_written(qids: list[int], sources: int) -> None:
+    """Op q's qids as steps (in the fewest bytes that hold them) and its sources as codes
+    into a table (1 byte up to 256 sources, else 2) read back as the same qids, flags and
+    names."""
+    from streamgroup.stream.state import qids_from_payload, qids_payload
+
+    n = len(qids)
+    rng = np.random.default_rng(n * 1000 + sources)
+    names = [f"src-{i}" for i in range(sources)]
+    src = np.arange(n, dtype=np.int64) % sources  # every name of the first n in use
+    rng.shuffle(src)
+    same = rng.integers(0, 2, n).astype(bool)
+    payload = qids_payload(np.array(qids, dtype=np.int64), same, src, names)
+    back = msgpack.unpackb(msgpack.packb(payload, use_bin_type=True), raw=False)
+    qn, flags, got = qids_from_payload(back)
+    assert qn.dtype == np.int64 and qn.tolist() == qids
+    assert flags.tolist() == same.tolist() and got == [names[i] for i in src.tolist()]
+    steps = [q - p for p, q in zip(qids, qids[1:], strict=False)] or [0]
+    half = [2 ** (8 * w - 1) for w in (1, 2, 4, 8)]
+    assert payload[1] == next(w for w, h in zip((1, 2, 4, 8), half, strict=True)
+                              if -h <= min(steps) and max(steps) < h)
+    assert payload[5] == (1 if min(n, sources) <= 256 else 2)
+
+
+def _fresh_state(keys: list[str]) -> Any:
+    from streamgroup.core.types import EngineConfig
+    from streamgroup.stream.state import WorkerState
+
+    state = WorkerState.fresh(EngineConfig(max_outstanding=10**6), "e", 1000)
+    state.engine.add_items([(key, None) for key in keys])
+    return state
+
+
+def _plain_entries(a: list[str], b: list[str], same: list[bool], src: list[str],
+                   qids: list[str | None]) -> list[Any]:
+    out = []
+    for i, (x, y, s, n, q) in enumerate(zip(a, b, same, src, qids, strict=True)):
+        fields = [b"a", x.encode(), b"b", y.encode(), b"same", b"1" if s else b"0",
+                  b"source", n.encode()]
+        out.append([f"{i + 1}-0".encode(), fields + ([b"qid", q.encode()] if q else [])])
+    return out
+
+
+def test_answers_to_their_questions_are_journaled_by_qid_and_replay_exactly() -> None:
+    """A batch whose every answer names its question and holds its keys as shown goes to
+    the journal as op q; one answer without a qid, or with its keys the other way round,
+    keeps the whole batch in op A. Both replay to the running engine byte for byte, and
+    op q replays like op A of the same answers (and like op k of them as key rows)."""
+    from streamgroup.core.types import KeyRowAnswers
+    from streamgroup.stream.batch import process
+    from streamgroup.stream.state import WorkerState, key_columns_payload
+
+    crowd = Crowd(300, delta=0.6, sources=[0.6] * 7, seed=11)
+    for case in ("asked", "no qid", "swapped"):
+        state = _fresh_state(crowd.keys)
+        qc = state.engine.plan_columns(1000)  # the bootstrap's questions
+        start = state.snapshot_bytes(1000)
+        same, src = crowd.answer_keys(qc.a, qc.b)
+        a, b, qids = list(qc.a), list(qc.b), list(qc.qid)
+        if case == "no qid":
+            qids[5] = None
+        elif case == "swapped":
+            a[5], b[5] = b[5], a[5]
+        out = process(state, "t:items", [], "t:answers",
+                      _plain_entries(a, b, same, src, qids), 2000)
+        ops = [op for op, _ in out.batch.ops]
+        assert ops == ([OP_QIDS] if case == "asked" else [OP_ANSWER_COLUMNS]), case
+        assert state.engine.stats()["spend"] == len(qc) > 50
+        again = WorkerState.from_snapshot(start, "e", 1000)
+        again.replay(Batch.from_journal(out.batch.journal_bytes()))
+        assert again.engine.snapshot() == state.engine.snapshot(), case
+        if case == "asked":
+            rows = KeyRowAnswers(_key_rows(qc.a), _key_rows(qc.b), np.array(same), src,
+                                 np.array([int(q) for q in qc.qid], dtype=np.int64))
+            by_rows = WorkerState.from_snapshot(start, "e", 1000)
+            by_rows.replay(Batch(1, 2000, [[OP_KEY_COLUMNS, key_columns_payload(rows)]]))
+            assert by_rows.engine.snapshot() == state.engine.snapshot()
 
 
 def test_answers_total_counts_packs_and_plain_entries() -> None:

@@ -51,7 +51,7 @@ from .codes import (
 )
 from .columns import ONE_I32, Columns, SortedQueue, first_occurrence, strictly_increasing
 from .decide import DecideMixin
-from .intake import IntakeMixin
+from .intake import Intake, IntakeMixin
 from .keyindex import KeyIndex, cache_size_for
 from .ledger import UNPLACED, Ledger
 from .pairset import MAX_ITEMS, PairSet, pair_keys
@@ -127,6 +127,9 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         self.pooled_se = noise.SE_NEW
         self.labels: list[str | None] = [None, None]
         self.seen = PairSet()
+        # the checked form of the last batch given to add_answer_columns (its source ids
+        # filled in once applied): the worker journals it by qid when it is ``by_qid``
+        self.last_intake: Intake | None = None
         self.pool = np.zeros(0, dtype=np.int64)  # reference members, in joining order
         self.pool_base = 0
         self.shared = 1.0  # chance two answers share a source (Herfindahl index of volume)
@@ -336,20 +339,32 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         (False: a duplicate). Same checks, same all-or-nothing refusal. Answers with keys
         as byte rows take a quick check when each holds its question's keys as shown, and
         are read as text for the usual checks when not."""
-        got = None
+        got = self.last_intake = None
         if isinstance(answers, KeyRowAnswers):
             got = self._check_key_rows(answers)
             if got is None:
                 answers = answers.columns()
         if got is None:
             got = self._check_answers(answers)
+        return self._apply_intake(got, now_ms)
+
+    def add_answers_by_qid(self, qn: np.ndarray, same: np.ndarray, sources: list[str],
+                           now_ms: int = 0) -> np.ndarray:
+        """:meth:`add_answer_columns` of a batch whose checked form was ``by_qid`` (see
+        :attr:`last_intake`), given by its qids, flags and sources alone: the same effect,
+        bit for bit. For replaying the journal, where the batch was checked when it came."""
+        return self._apply_intake(self._intake_by_qid(qn, same, sources), now_ms)
+
+    def _apply_intake(self, got: Intake, now_ms: int) -> np.ndarray:
         self.now_ms = max(self.now_ms, int(now_ms))
-        count = len(answers)
+        self.last_intake = got
+        count = len(got.same)
         if not count:
             return np.zeros(0, dtype=bool)
         both = self._register_missing(got.keys, got.both, got.unknown)  # a's, then b's
         a, b = both[:count], both[count:]
         src = got.src if got.src is not None else self._source_ids(got.sources)
+        got.src = src
         same = got.same
         fresh = self.seen.add_new(pair_keys(a, b, src))
         # A qid answered twice is a duplicate even from another source; a qid is closed

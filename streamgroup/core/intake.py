@@ -46,6 +46,9 @@ class Intake:
     with_q: np.ndarray  # positions of answers that name a qid
     qn: np.ndarray  # those qids as numbers
     src: np.ndarray | None  # the source ids when every source is known, else None
+    # every answer names an issued qid and holds its question's keys as shown: the qids,
+    # flags and sources alone say the whole batch (the journal's op ``q``)
+    by_qid: bool = False
 
 
 class IntakeMixin:
@@ -181,7 +184,7 @@ class IntakeMixin:
             pos = min(bad)
             raise EngineInputError(f"answer {pos}: {bad[pos]}")
         same = np.array(flags, dtype=bool) if count else np.zeros(0, dtype=bool)
-        return Intake(keys, both, unknown, names, same, wq, qn, src)
+        return Intake(keys, both, unknown, names, same, wq, qn, src, held)
 
     def _check_key_rows(self, answers: KeyRowAnswers) -> Intake | None:
         """The usual batch of :meth:`_check_answers`, its keys as byte rows: every answer
@@ -209,7 +212,21 @@ class IntakeMixin:
                               dtype=np.int64, count=count)
         except KeyError:
             return None
-        return Intake([], guess, _NONE, answers.source, answers.same, wq, qn, src)
+        return Intake([], guess, _NONE, answers.source, answers.same, wq, qn, src, True)
+
+    def _intake_by_qid(self, qn: np.ndarray, same: np.ndarray, sources: list[str]) -> Intake:
+        """The Intake of a batch that an earlier :meth:`_check_answers` or
+        :meth:`_check_key_rows` found ``by_qid`` (replayed from the journal: not checked
+        again). Its keys are its questions' as shown, so no key is read."""
+        count = len(qn)
+        if not (count == len(same) == len(sources)) or (
+                count and (int(qn.max()) >= self.q.n or int(qn.min()) < 0)):
+            raise EngineInputError("answers by qid: columns of different lengths, or a qid "
+                                   "that was never issued")
+        t, p = self.q["target"][qn], self.q["partner"][qn]
+        wq = np.arange(count)
+        guess = self._pair_guess(qn, t, p, wq, np.ones(count, dtype=bool), True, count)
+        return Intake([], guess, _NONE, sources, same, wq, qn, None, True)
 
     def _pair_guess(self, qn: np.ndarray, t: np.ndarray, p: np.ndarray, wq: np.ndarray,
                     issued: np.ndarray, every: bool, count: int) -> np.ndarray:

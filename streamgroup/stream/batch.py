@@ -39,11 +39,13 @@ from .state import (
     OP_ANSWERS,
     OP_ITEMS,
     OP_KEY_COLUMNS,
+    OP_QIDS,
     Batch,
     WorkerState,
     answers_columns_payload,
     answers_payload,
     key_columns_payload,
+    qids_payload,
 )
 
 
@@ -113,7 +115,11 @@ def _apply_answers(state: WorkerState, cols: AnswerColumns | KeyRowAnswers,
         return
     try:
         applied = state.apply_answer_columns(cols, now_ms)
-        if isinstance(cols, KeyRowAnswers):
+        got = state.engine.last_intake
+        if got is not None and got.by_qid and got.src is not None:
+            batch.ops.append([OP_QIDS, qids_payload(got.qn, got.same, got.src,
+                                                    state.engine.source_names)])
+        elif isinstance(cols, KeyRowAnswers):
             batch.ops.append([OP_KEY_COLUMNS, key_columns_payload(cols)])
         else:
             batch.ops.append([OP_ANSWER_COLUMNS, answers_columns_payload(cols)])

@@ -46,6 +46,14 @@ OP_KEY_ROWS = "K"
 # thirds of the size (bench: 0.53 against 1.47 ms, 6.0 against 9.2 bytes an answer, for
 # 20,000 answers with keys of 12 bytes).
 OP_KEY_COLUMNS = "k"
+# Answers that each name an issued qid and hold its question's keys as shown (the usual
+# batch, plain or packed: ``Intake.by_qid``), by their qids alone; replay takes the keys
+# from the question table, which the snapshot and the journal before rebuild as they were.
+# payload: [first qid, step width in bytes (1, 2, 4 or 8), the other qids as steps (bytes,
+# little-endian signed: each qid less the one before), same (bytes of 0/1), source table
+# (names), code width (1 or 2), codes (bytes: each answer's source as a position in the
+# table)].
+OP_QIDS = "q"
 
 # Journal entries from this size on are stored zstd-compressed (level 1): a column pack's
 # entry shrinks about ten times (41 to 4.2 bytes per answer as op k, 6.7 as op K, in
@@ -153,6 +161,44 @@ def key_columns_from_payload(payload: Sequence[Any]) -> KeyRowAnswers:
         np.cumsum(np.frombuffer(steps, dtype="<i8"), dtype=np.int64))
 
 
+def _narrowest(values: np.ndarray) -> str:
+    """The smallest little-endian signed integer dtype that holds ``values``."""
+    lo, hi = (int(values.min()), int(values.max())) if len(values) else (0, 0)
+    for dtype in ("<i1", "<i2", "<i4"):
+        info = np.iinfo(dtype)
+        if info.min <= lo and hi <= info.max:
+            return dtype
+    return "<i8"
+
+
+def qids_payload(qn: np.ndarray, same: np.ndarray, src: np.ndarray,
+                 source_names: Sequence[str]) -> list[Any]:
+    """The payload of :data:`OP_QIDS` (read back by :func:`qids_from_payload`)."""
+    qn = np.asarray(qn, dtype=np.int64)
+    first = int(qn[0]) if len(qn) else 0
+    steps = np.diff(qn)  # each qid less the one before: mostly 1 in a batch
+    width = _narrowest(steps)
+    ids, codes = np.unique(src, return_inverse=True)
+    table = [source_names[i] for i in ids.tolist()]
+    code_width = 1 if len(table) <= 256 else 2
+    return [first, int(width[2]), steps.astype(width).tobytes(),
+            np.asarray(same, dtype=np.uint8).tobytes(), table, code_width,
+            codes.astype("<u1" if code_width == 1 else "<u2").tobytes()]
+
+
+def qids_from_payload(payload: Sequence[Any]) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """(qids, same flags, source names) of an :data:`OP_QIDS` payload."""
+    first, width, steps, same, table, code_width, codes = payload
+    flags = np.frombuffer(same, dtype=np.uint8).astype(bool)
+    qn = np.empty(len(flags), dtype=np.int64)
+    if len(qn):
+        qn[0] = first
+        np.cumsum(np.frombuffer(steps, dtype=f"<i{width}"), dtype=np.int64, out=qn[1:])
+        qn[1:] += first
+    at = np.frombuffer(codes, dtype="<u1" if code_width == 1 else "<u2")
+    return qn, flags, list(map(table.__getitem__, at.tolist()))
+
+
 def answers_from_payload(rows: Sequence[Sequence[Any]]) -> list[Answer]:
     return [Answer(r[0], r[1], bool(r[2]), r[3], r[4]) for r in rows]
 
@@ -193,6 +239,8 @@ class WorkerState:
                 a, b, same, source, qid = payload
                 self.engine.add_answer_columns(AnswerColumns(a, b, same, source, qid),
                                                batch.now_ms)
+            elif op == OP_QIDS:
+                self.engine.add_answers_by_qid(*qids_from_payload(payload), batch.now_ms)
             elif op == OP_KEY_COLUMNS:
                 self.engine.add_answer_columns(key_columns_from_payload(payload),
                                                batch.now_ms)
