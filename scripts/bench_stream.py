@@ -69,6 +69,9 @@ fifo; to ``PATH`` and ``PATH-packed``; read with ``perf report -i PATH --sort co
 process at nice ``N`` (negative: ahead of the worker), to tell time spent waiting for a
 core from time spent waiting for Redis. ``BENCH_REDIS_CPU=N`` pins Redis to CPU ``N`` and
 everything else (the worker, the adapter, the lookups) to the other CPUs.
+``BENCH_SLICE_US=N`` has Redis's threads and the lookup processes ask the kernel for a
+time slice of ``N`` microseconds (sched_setattr; Linux 6.12 and later), so that they may
+preempt a busy core when they wake instead of waiting out its slice.
 """
 
 from __future__ import annotations
@@ -298,6 +301,7 @@ def lookup_child(url: str, ns: str, n: int, seconds: float, rate: float) -> None
     the lookups that fall inside its measurement windows."""
     if os.environ.get("BENCH_LOOKUP_NICE"):
         os.nice(int(os.environ["BENCH_LOOKUP_NICE"]))
+    short_slice()  # BENCH_SLICE_US: the lookups ask for a short slice, as Redis does
     r = redis.Redis.from_url(url, single_connection_client=True)
     k = Keys(ns)
     fmt = key_format(n)
@@ -662,9 +666,48 @@ def bench_memory(url: str, ns: str, n: int, batch: int) -> dict[str, Any]:
     }
 
 
+_SCHED_SETATTR = {"x86_64": 314, "aarch64": 274}  # syscall numbers (Linux's unistd tables)
+
+
+def set_slice(pid: int, slice_ns: int) -> None:
+    """Ask the kernel for a time slice of ``slice_ns`` for thread ``pid`` (SCHED_OTHER,
+    its nice value kept): sched_setattr's ``sched_runtime``, which Linux 6.12 and later read
+    as the task's slice under EEVDF. A task with a shorter slice than the one running may
+    preempt it when it wakes, instead of waiting for that slice (1.4 ms by default on a
+    machine of two cores) to run out."""
+    import ctypes
+    import struct
+
+    number = _SCHED_SETATTR.get(os.uname().machine)
+    if number is None:
+        raise SystemExit(f"bench_stream: no sched_setattr number for {os.uname().machine}")
+    libc = ctypes.CDLL(None, use_errno=True)
+    # struct sched_attr (56 bytes): size, policy, flags, nice, priority, runtime, deadline,
+    # period, util_min, util_max
+    attr = struct.pack("IIQiIQQQII", 56, 0, 0, os.getpriority(os.PRIO_PROCESS, pid), 0,
+                       slice_ns, 0, 0, 0, 0)
+    if libc.syscall(number, pid, ctypes.create_string_buffer(attr), 0) != 0:
+        err = ctypes.get_errno()
+        raise SystemExit(f"bench_stream: sched_setattr({pid}): {os.strerror(err)}")
+
+
+def short_slice(pid: int | None = None) -> None:
+    """BENCH_SLICE_US=N: every thread of process ``pid`` (default: this one) asks for a
+    slice of N microseconds (see :func:`set_slice`)."""
+    us = os.environ.get("BENCH_SLICE_US")
+    if not us:
+        return
+    pid = os.getpid() if pid is None else pid
+    for tid in os.listdir(f"/proc/{pid}/task"):
+        set_slice(int(tid), int(float(us) * 1000))
+
+
 def pin(srv: EmbeddedRedis) -> None:
     """BENCH_REDIS_CPU=N: Redis alone on CPU N, everything else (this process and its
-    children: the worker, the adapter, the lookups) on the other CPUs."""
+    children: the worker, the adapter, the lookups) on the other CPUs. BENCH_SLICE_US=N:
+    Redis's threads ask for a slice of N microseconds."""
+    if srv.pid is not None:
+        short_slice(srv.pid)
     cpu = os.environ.get("BENCH_REDIS_CPU")
     if not cpu:
         return
