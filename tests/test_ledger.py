@@ -13,6 +13,7 @@ from streamgroup.core.evidence import (
     answer_weights,
     decision_error,
     partner_shrink,
+    signed_steps,
     signed_weights,
 )
 from streamgroup.core.ledger import UNPLACED, Ledger
@@ -129,6 +130,8 @@ def test_answer_weights_are_bit_for_bit_the_formula(rows: list[tuple[float, floa
     sign = np.where(np.arange(len(rows)) % 3 == 1, -1.0, 1.0)
     w, s = signed_weights(delta, se, partner_shrink(eps) * sign)
     assert w.tobytes() == (want_w * sign).tobytes() and s.tobytes() == (want_s * sign).tobytes()
+    # the steps alone (a recount of the evidence only) are the same bits
+    assert signed_steps(delta, partner_shrink(eps) * sign).tobytes() == w.tobytes()
 
 
 def _random_ledger(r: np.random.Generator, n_items: int, n_ans: int, n_src: int,
@@ -147,6 +150,26 @@ def _random_ledger(r: np.random.Generator, n_items: int, n_ans: int, n_src: int,
     src = r.integers(0, n_src, n_ans)
     same = r.random(n_ans) < p_same
     return led, led.append_answers(a, b, src, same), a, b, src, same
+
+
+def test_an_evidence_only_recount_gives_the_full_recounts_evidence() -> None:
+    """``recompute(llr_only=True)`` (the first recount of a refit) weighs without the
+    sensitivities, in chunks as a large recount does: the evidence is the full recount's
+    bit for bit, and the sums it does not rebuild are left as they were."""
+    from streamgroup.core.ledger import WEIGH_CHUNK
+
+    n_items, n_ans = 3000, 2 * WEIGH_CHUNK + 77  # chunked, with a short last chunk
+    led, *_ = _random_ledger(np.random.default_rng(8), n_items, n_ans, 3, 0.5, llr_sd=4)
+    start = {k: led.item(k).copy() for k in ("llr", "s1", "s2", "count")}
+    led.recompute(DELTA, SE)
+    full = {k: led.item(k).copy() for k in start}
+    assert len(led.counted_pairs().target) > WEIGH_CHUNK
+    for k in start:
+        led.items[k][:n_items] = start[k]
+    led.recompute(DELTA, SE, llr_only=True)
+    assert led.item("llr").tobytes() == full["llr"].tobytes()
+    for k in ("s1", "s2", "count"):
+        assert led.item(k).tobytes() == start[k].tobytes() != full[k].tobytes()
 
 
 def test_recount_equals_the_answer_by_answer_sum() -> None:

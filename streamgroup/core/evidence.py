@@ -55,18 +55,36 @@ def signed_weights(delta: np.ndarray, se: np.ndarray, shrink: np.ndarray,
     # temporaries of that size cost more than the arithmetic. Signing the shrink saves a
     # recount the passes that took the sign of an unsigned w and s, and those that made
     # the shrink of every answer rather than of every partner.
-    d = np.multiply(delta, shrink)
-    np.maximum(d, -_CLIP, out=d)
-    np.minimum(d, _CLIP, out=d)
-    w = np.log1p(d, out=None if out is None else out[0])
-    tmp = np.negative(d)
-    w -= np.log1p(tmp, out=tmp)
+    d = _clipped(delta, shrink)
+    w, tmp = _steps(d, None if out is None else out[0])
     np.multiply(d, d, out=tmp)
     np.subtract(1.0, tmp, out=tmp)
     s = np.multiply(shrink, 2.0, out=shrink if out is None else out[1])
     s /= tmp
     s *= se
     return w, s
+
+
+def signed_steps(delta: np.ndarray, shrink: np.ndarray, out: np.ndarray | None = None
+                 ) -> np.ndarray:
+    """The w of :func:`signed_weights` alone, the same bit for bit, in about half the
+    passes (for a recount that needs the evidence but not its sensitivity)."""
+    return _steps(_clipped(delta, shrink), out)[0]
+
+
+def _clipped(delta: np.ndarray, shrink: np.ndarray) -> np.ndarray:
+    d = np.multiply(delta, shrink)
+    np.maximum(d, -_CLIP, out=d)
+    np.minimum(d, _CLIP, out=d)
+    return d
+
+
+def _steps(d: np.ndarray, out: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+    """(log1p(d) - log1p(-d), a spare buffer of d's size)."""
+    w = np.log1p(d, out=out)
+    tmp = np.negative(d)
+    w -= np.log1p(tmp, out=tmp)
+    return w, tmp
 
 
 def decision_error(llr: np.ndarray, spread: np.ndarray) -> np.ndarray:

@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 
 from .columns import ONE_I32, Columns
-from .evidence import partner_shrink, reference_eps, signed_weights
+from .evidence import partner_shrink, reference_eps, signed_steps, signed_weights
 
 UNPLACED = -1
 # pairs weighed per pass in a recount (and answers per pass in the M-step): the weights of
@@ -135,10 +135,12 @@ class Ledger:
         return Counted(target, partner, both(src, src), sign)
 
     def _weigh(self, pairs: Counted, delta: np.ndarray, se: np.ndarray,
-               trust_partners: bool = False) -> tuple[np.ndarray, np.ndarray]:
+               trust_partners: bool = False, need_spread: bool = True
+               ) -> tuple[np.ndarray, np.ndarray | None]:
         """(step, sensitivity) of each pair: the sensitivity is signed like the answer's
         vote, so that answers of one source add up (their bias errors are shared) while
-        those of different sources do not."""
+        those of different sources do not. Without ``need_spread``, the sensitivity is
+        None and not computed (the steps are the same bit for bit)."""
         partner, src, sign = pairs.partner, pairs.src, pairs.sign
         m = len(partner)
         per_item = None
@@ -147,22 +149,25 @@ class Ledger:
             # same values, with one exp per item instead of one per answer)
             per_item = partner_shrink(reference_eps(self.item("llr"), self.item("pinned")))
         if m <= WEIGH_CHUNK:
-            return self._weigh_part(partner, src, sign, delta, se, trust_partners, per_item)
+            return self._weigh_part(partner, src, sign, delta, se, trust_partners, per_item,
+                                    need_spread)
         # A recount weighs millions of pairs: in chunks, the temporaries stay in the
-        # cache and in memory already mapped, and only the two results are full size
+        # cache and in memory already mapped, and only the results are full size
         # (elementwise, so the values are the same bit for bit).
-        step, spread = np.empty(m), np.empty(m)
+        step = np.empty(m)
+        spread = np.empty(m) if need_spread else None
         for lo in range(0, m, WEIGH_CHUNK):
             part = slice(lo, lo + WEIGH_CHUNK)
             self._weigh_part(partner[part], src[part], sign[part], delta, se,
-                             trust_partners, per_item, out=(step[part], spread[part]))
+                             trust_partners, per_item, need_spread,
+                             out=(step[part], None if spread is None else spread[part]))
         return step, spread
 
     def _weigh_part(self, partner: np.ndarray, src: np.ndarray, sign: np.ndarray,
                     delta: np.ndarray, se: np.ndarray, trust_partners: bool,
-                    per_item: np.ndarray | None,
-                    out: tuple[np.ndarray, np.ndarray] | None = None
-                    ) -> tuple[np.ndarray, np.ndarray]:
+                    per_item: np.ndarray | None, need_spread: bool = True,
+                    out: tuple[np.ndarray, np.ndarray | None] | None = None
+                    ) -> tuple[np.ndarray, np.ndarray | None]:
         if trust_partners:
             shrink = sign.copy()  # (a shrink of 1)
         elif per_item is not None:
@@ -172,14 +177,20 @@ class Ledger:
             shrink = partner_shrink(reference_eps(self.items["llr"][partner],
                                                   self.items["pinned"][partner]))
             shrink *= sign
-        return signed_weights(delta.take(src), se.take(src), shrink, out=out)
+        if not need_spread:
+            return signed_steps(delta.take(src), shrink,
+                                out=None if out is None else out[0]), None
+        return signed_weights(delta.take(src), se.take(src), shrink,
+                              out=None if out is None else (out[0], out[1]))
 
     def _contributions(self, idx: np.ndarray | slice, delta: np.ndarray, se: np.ndarray,
                        trust_partners: bool = False
                        ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(target, step, sensitivity) for every (answer, counted endpoint) among ``idx``."""
         pairs = self.counted_pairs(idx)
-        return (pairs.target, *self._weigh(pairs, delta, se, trust_partners))
+        step, spread = self._weigh(pairs, delta, se, trust_partners)
+        assert spread is not None
+        return pairs.target, step, spread
 
     def count(self, idx: np.ndarray | slice, delta: np.ndarray, se: np.ndarray
               ) -> np.ndarray:
@@ -210,11 +221,11 @@ class Ledger:
             pairs = self.counted_pairs()
         target = pairs.target
         if settle:
-            step, _ = self._weigh(pairs, delta, se, trust_partners=True)
+            step, _ = self._weigh(pairs, delta, se, trust_partners=True, need_spread=False)
             self.items["llr"][:n] = np.bincount(target, weights=step, minlength=n)[:n]
-        step, spread = self._weigh(pairs, delta, se)
+        step, spread = self._weigh(pairs, delta, se, need_spread=not llr_only)
         self.items["llr"][:n] = np.bincount(target, weights=step, minlength=n)[:n]
-        if llr_only:
+        if spread is None:
             return
         self.items["s1"][:n] = np.bincount(target, weights=spread, minlength=n)[:n]
         self.items["s2"][:n] = np.bincount(target, weights=spread * spread, minlength=n)[:n]
