@@ -45,12 +45,13 @@ def signed_weights(delta: np.ndarray, se: np.ndarray, shrink: np.ndarray,
                    ) -> tuple[np.ndarray, np.ndarray]:
     """:func:`answer_weights` from the partners' :func:`partner_shrink`, each times the
     sign of its answer's vote (+1 or -1); both results come out times that sign, bit for
-    bit: w is odd in d (a clip and a difference of two log1p, each exact under negation)
+    bit: w is odd in d (a clip, exact under negation, then :func:`_steps` of |d| signed)
     and s has no sign of its own. ``shrink`` is used as a buffer, and ``out`` (w, s), if
     given, receives the results (slices of larger arrays: see ``Ledger._weigh``).
     """
     # The same operations in the same order as
-    #     d = clip(delta shrink, -C, C);  w = log1p(d) - log1p(-d);  s = shrink 2 / (1 - d d) se
+    #     d = clip(delta shrink, -C, C);  w = sign(d) ln((1 + |d|) / (1 - |d|));
+    #     s = shrink 2 / (1 - d d) se
     # written into a few buffers: a recount runs this over every answer, and fresh
     # temporaries of that size cost more than the arithmetic. Signing the shrink saves a
     # recount the passes that took the sign of an unsigned w and s, and those that made
@@ -80,11 +81,22 @@ def _clipped(delta: np.ndarray, shrink: np.ndarray) -> np.ndarray:
 
 
 def _steps(d: np.ndarray, out: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
-    """(log1p(d) - log1p(-d), a spare buffer of d's size)."""
-    w = np.log1p(d, out=out)
-    tmp = np.negative(d)
-    w -= np.log1p(tmp, out=tmp)
-    return w, tmp
+    """(ln((1 + |d|) / (1 - |d|)) with the sign of d, a spare buffer of d's size).
+
+    One log of a ratio rather than log1p(d) - log1p(-d): numpy's log runs vectorised and
+    log1p does not (0.40 against 1.95-2.47 ms for 65,536 values on the machine of
+    DEVELOPERS.md), and a recount weighs every answer. It differs from the log1p form by
+    under 2e-15 over the clipped range (the rounding of 1 + |d|, which is felt only where
+    w itself is that close to zero); taking |d| and then the sign keeps w odd in d bit for
+    bit, so a signed shrink gives exactly the signed result.
+    """
+    a = np.abs(d)
+    w = np.add(a, 1.0, out=out)
+    np.subtract(1.0, a, out=a)
+    w /= a
+    np.log(w, out=w)
+    np.copysign(w, d, out=w)
+    return w, a
 
 
 def decision_error(llr: np.ndarray, spread: np.ndarray) -> np.ndarray:
