@@ -158,16 +158,21 @@ class SortedQueue:
 
     def put_back(self, values: np.ndarray) -> None:
         """Return ``values`` (sorted and distinct) taken by the last :meth:`take`: they lie
-        below every member, so they go in front of the small run without a merge."""
+        below every member, so they go in front of a run without a merge."""
         if len(values) == 0:
             return
         small, big, top = self.small, self.big, values[-1]
         if (len(small) and top >= small[0]) or (len(big) and top >= big[0]):
             self.add(values, ordered=True)  # not below every member: the general path
             return
-        self.small = np.concatenate([values.astype(np.int64, copy=False), small])
-        if len(self.small) > max(self.MERGE_FLOOR, len(self.big) // 4):
-            self.big, self.small = union_sorted(self.big, self.small), self.small[:0]
+        values = values.astype(np.int64, copy=False)
+        if len(small) + len(values) > max(self.MERGE_FLOOR, len(big) // 4):
+            # in front of the large run instead: one copy of it, not the merge of both
+            # runs that a small run this long would call for (a planning round puts back
+            # most of what it took, and a merge each round cost several times the copy)
+            self.big = np.concatenate([values, big])
+        else:
+            self.small = np.concatenate([values, small])
 
     def take(self, k: int) -> np.ndarray:
         """Remove and return the ``k`` smallest values (fewer if the set is smaller)."""
