@@ -235,6 +235,9 @@ def test_assign_values_decode_like_the_one_record_form(n: int, seed: int) -> Non
         assert assign_command("{t}:assign", rc) == hiredis.pack_command(
             ("HSET", "{t}:assign", *flat))
     # the decisions stream's fields, from the columns, as from the records one by one
+    # (with no evidence yet, as most items first asked about, and a negative zero)
+    rc.llr[rng.random(n) < 0.5] = 0.0
+    rc.llr[rng.random(n) < 0.1] = -0.0
     pos = sorted(rng.choice(n, size=int(rng.integers(0, n + 1)), replace=False).tolist())
     want: list[object] = []
     for r in rc.rows(pos):
