@@ -209,6 +209,22 @@ def test_sorted_queue_takes_back_what_it_gave(start: list[int], ops: list[tuple]
         assert bool(queue) == bool(model)
 
 
+def test_a_long_leftover_goes_back_in_front_of_the_large_run() -> None:
+    """A planning round that puts back more than the small run may hold (the usual round of
+    a packed batch) puts it in front of the large run; the members still come out
+    smallest first, and the set is unchanged."""
+    members = set(range(0, 20_000, 2)) | {5, 7, 19_999}
+    queue = SortedQueue(np.arange(0, 20_000, 2, dtype=np.int64))
+    queue.add(np.array([19_999, 7, 5], dtype=np.int64))  # into the small run
+    got = queue.take(8_000)
+    assert got.tolist() == sorted(members)[:8_000]
+    queue.put_back(got[1_000:])  # 7,000 back: more than MERGE_FLOOR
+    want = sorted(members)[1_000:]
+    assert len(queue.big) > 7_000 and queue.small.tolist() == [19_999]
+    assert queue.take(50).tolist() == want[:50]
+    assert queue.values().tolist() == want[50:]
+
+
 @settings(max_examples=60, deadline=None)
 @given(st.integers(1, 200), st.integers(0, 2**32 - 1))
 def test_assign_values_decode_like_the_one_record_form(n: int, seed: int) -> None:
