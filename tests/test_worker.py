@@ -697,6 +697,22 @@ def test_answers_to_their_questions_are_journaled_by_qid_and_replay_exactly() ->
             assert by_rows.engine.snapshot() == state.engine.snapshot()
 
 
+def test_a_journal_entry_that_no_longer_applies_stops_the_start_with_a_state_error() -> None:
+    """Replay of an entry that cannot apply to the state before it (op q naming a question
+    never issued, an answer between unknown keys that fails the checks, an op of a newer
+    version) raises a StateError that names the entry: the worker exits with code 3 and
+    that message rather than with a traceback."""
+    from streamgroup.stream.state import qids_payload
+
+    state = _fresh_state(["shard-000001", "shard-000002"])
+    never = qids_payload(np.array([10**6]), np.array([True]), np.array([0]), ["s"])
+    for ops in ([[OP_QIDS, never]], [[OP_ANSWER_COLUMNS, [["x"], ["x"], [True], ["s"],
+                                                          [None]]]], [["z", []]]):
+        with pytest.raises(StateError, match=r"journal entry 4 does not apply"):
+            state.replay(Batch(4, 1000, ops))
+    assert state.seq == 0
+
+
 def test_answers_total_counts_packs_and_plain_entries() -> None:
     """The backlog cap counts a pack's answers; the shortcut for batches without packs
     gives what counting entry by entry gives."""

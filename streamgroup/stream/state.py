@@ -26,7 +26,7 @@ import zstandard
 from ..core.engine import Engine
 from ..core.packing import msgpack_pieces
 from ..core.types import Answer, AnswerColumns, EngineConfig, KeyRowAnswers
-from ..errors import StateError
+from ..errors import EngineInputError, StateError
 
 SNAPSHOT_VERSION = 1
 JOURNAL_VERSION = 1
@@ -233,26 +233,34 @@ class WorkerState:
         if batch.seq <= self.seq:
             return  # already covered by the snapshot or a previous entry
         for op, payload in batch.ops:
-            if op == OP_ITEMS:
-                self.engine.add_items([(k, s) for k, s in payload])
-            elif op == OP_ANSWER_COLUMNS:
-                a, b, same, source, qid = payload
-                self.engine.add_answer_columns(AnswerColumns(a, b, same, source, qid),
-                                               batch.now_ms)
-            elif op == OP_QIDS:
-                self.engine.add_answers_by_qid(*qids_from_payload(payload), batch.now_ms)
-            elif op == OP_KEY_COLUMNS:
-                self.engine.add_answer_columns(key_columns_from_payload(payload),
-                                               batch.now_ms)
-            elif op == OP_KEY_ROWS:
-                self.engine.add_answer_columns(key_rows_from_payload(payload), batch.now_ms)
-            elif op == OP_ANSWERS:
-                self.engine.add_answers(answers_from_payload(payload), batch.now_ms)
-            else:
-                raise StateError(f"journal entry {batch.seq} has an unknown op {op!r}")
+            try:
+                self._replay_op(op, payload, batch.now_ms)
+            except (EngineInputError, ValueError, TypeError, KeyError, IndexError) as exc:
+                # a committed entry applied once; if it no longer does, the snapshot and the
+                # journal do not belong together (or the entry is damaged)
+                raise StateError(f"journal entry {batch.seq} does not apply to the state "
+                                 f"before it (op {op!r}: {exc})") from None
         self.engine.plan_columns(batch.now_ms)
         self.engine.take_update_columns()
         self.finish(batch)
+
+    def _replay_op(self, op: str, payload: Any, now_ms: int) -> None:
+        engine = self.engine
+        if op == OP_ITEMS:
+            engine.add_items([(k, s) for k, s in payload])
+        elif op == OP_ANSWER_COLUMNS:
+            a, b, same, source, qid = payload
+            engine.add_answer_columns(AnswerColumns(a, b, same, source, qid), now_ms)
+        elif op == OP_QIDS:
+            engine.add_answers_by_qid(*qids_from_payload(payload), now_ms)
+        elif op == OP_KEY_COLUMNS:
+            engine.add_answer_columns(key_columns_from_payload(payload), now_ms)
+        elif op == OP_KEY_ROWS:
+            engine.add_answer_columns(key_rows_from_payload(payload), now_ms)
+        elif op == OP_ANSWERS:
+            engine.add_answers(answers_from_payload(payload), now_ms)
+        else:
+            raise ValueError("an unknown op (written by a newer version?)")
 
     def finish(self, batch: Batch) -> None:
         """Fold a committed (or replayed) batch into the worker's memory."""
