@@ -57,9 +57,9 @@ OP_QIDS = "q"
 
 # Journal entries from this size on are stored zstd-compressed (level 1): a column pack's
 # entry shrinks about ten times (41 to 4.2 bytes per answer as op k, 6.7 as op K, in
-# bench_batch's packed run), so the journal reaches the size that calls for a snapshot
-# that much later, and a snapshot is a pause. Readers tell the two forms apart by zstd's
-# frame magic, which no msgpack map starts with.
+# bench_batch's packed run; op q, the usual form since, takes 0.94), so the journal
+# reaches the size that calls for a snapshot that much later, and a snapshot is a pause.
+# Readers tell the two forms apart by zstd's frame magic, which no msgpack map starts with.
 JOURNAL_COMPRESS_FROM = 4096
 ZSTD_MAGIC = b"\x28\xb5\x2f\xfd"
 _JOURNAL_ZSTD = zstandard.ZstdCompressor(level=1)  # the worker's thread only
@@ -178,7 +178,11 @@ def qids_payload(qn: np.ndarray, same: np.ndarray, src: np.ndarray,
     first = int(qn[0]) if len(qn) else 0
     steps = np.diff(qn)  # each qid less the one before: mostly 1 in a batch
     width = _narrowest(steps)
-    ids, codes = np.unique(src, return_inverse=True)
+    # the sources present, in id order, and each answer's place among them: what
+    # np.unique(src, return_inverse=True) gives, without its sort (ids are small)
+    present = np.bincount(src, minlength=1) > 0
+    ids = np.flatnonzero(present)
+    codes = (np.cumsum(present) - 1)[src]
     table = [source_names[i] for i in ids.tolist()]
     code_width = 1 if len(table) <= 256 else 2
     return [first, int(width[2]), steps.astype(width).tobytes(),
