@@ -16,10 +16,10 @@ from .ledger import UNPLACED
 class DecideMixin:
     """Commit, revise or give up (part of :class:`~streamgroup.core.engine.Engine`)."""
 
-    def _refit(self, cold: bool = False) -> None:
+    def _refit(self, cold: bool = False, current: bool = False) -> None:
         # warm refits move little: one EM round each (the estimate converges across them)
         fit = noise.fit(self.ledger, self.delta, self.se, iterations=3 if cold else 1,
-                        cold=cold)
+                        cold=cold, current=current)
         self.delta, self.se, self.src_answers = fit.delta, fit.se, fit.answers
         self.pooled, self.pooled_se = fit.pooled, fit.pooled_se
         self.counted_at_fit = self._counted()

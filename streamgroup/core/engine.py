@@ -397,7 +397,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         self.items["dirty"][targets] = True
         if self.phase == "run":
             if self._counted() >= max(REFIT_MIN, self.counted_at_fit * (1 + REFIT_GROWTH)):
-                self._refit()
+                self._refit(current=True)
                 self._decide(np.arange(len(self.keys)), ordered=True)
             else:
                 self._decide(targets)
