@@ -23,6 +23,7 @@ import time
 from collections.abc import Callable
 from typing import Any
 
+import hiredis
 import msgpack
 import numpy as np
 
@@ -97,6 +98,7 @@ def main(argv: list[str] | None = None) -> int:
                  for k in crowd.keys[lo:lo + 500]]
         pending += batch_mod.process(st, keys.items, items, keys.answers, [], now).questions.rows()
     totals = {"answers": 0, "process": 0.0, "build": 0.0, "pack": 0.0, "journal": 0}
+    sent: collections.Counter[str] = collections.Counter()
     round_ms: list[float] = []
 
     def one_round() -> None:
@@ -136,6 +138,10 @@ def main(argv: list[str] | None = None) -> int:
         t2 = time.perf_counter()
         plan.packed()
         t3 = time.perf_counter()
+        for c in plan.commands:  # what the transaction sends, by command (after the clock)
+            name = c.name if isinstance(c, commit_mod.Prepacked) else str(c[0])
+            sent[name] += len(c.blob) if isinstance(c, commit_mod.Prepacked) else len(
+                hiredis.pack_command(c))
         totals["answers"] += len(qs)
         totals["process"] += t1 - t0
         totals["build"] += t2 - t1
@@ -150,6 +156,7 @@ def main(argv: list[str] | None = None) -> int:
     PHASES.clear()
     totals.update(answers=0, process=0.0, build=0.0, pack=0.0, journal=0)
     round_ms.clear()
+    sent.clear()
     for _ in range(args.rounds if not args.packed else max(10, args.rounds // 20)):
         one_round()
     n = max(1, totals["answers"])
@@ -164,6 +171,8 @@ def main(argv: list[str] | None = None) -> int:
         "build_commit_us": round(totals["build"] / n * 1e6, 2),
         "pack_command_us": round(totals["pack"] / n * 1e6, 2),
         "journal_bytes_per_answer": round(totals["journal"] / n, 2),
+        # the bytes a batch's transaction sends to Redis, per answer, by command
+        "commit_bytes_per_answer": {k: round(v / n, 1) for k, v in sent.most_common()},
         # a batch's whole in-process time: the median is the steady cost, the mean adds
         # the rare whole-state passes (refits, recounts after a flip)
         "batch_ms": {"p50": round(float(np.percentile(round_ms, 50)), 3),
