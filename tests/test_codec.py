@@ -9,7 +9,7 @@ import pytest
 from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
-from streamgroup.core.types import Answer
+from streamgroup.core.types import Answer, SourceRows
 from streamgroup.keys import MAX_PACK_ANSWERS, MAX_PACK_BYTES, has_control
 from streamgroup.stream import codec
 from streamgroup.stream.codec import (
@@ -365,16 +365,18 @@ _KEY_FORMS = ["k%04d", "é%03d", "shard-%026d", "x%040d", "é%0120d", "%d"]
 @given(n=st.integers(1, 40), form=st.sampled_from(_KEY_FORMS), qid0=st.sampled_from(
     [0, 1, 7, 95, 99_990, 10**17 - 5]), same=st.sampled_from(["bool", "int"]),
     absent=st.sets(st.sampled_from(["source", "aid"])), packs=st.integers(1, 3),
-    poison=_POISON)
+    poison=_POISON, src_form=st.sampled_from(["src-%d", "é-%d", "s%d"]))
 def test_key_row_packs_decode_like_the_other_paths(n: int, form: str, qid0: int, same: str,
                                                    absent: set, packs: int,
-                                                   poison: tuple | None) -> None:
+                                                   poison: tuple | None, src_form: str) -> None:
     """Column packs of keys of one length that answer qids, read by numpy into key rows,
     decode exactly as the whole-column check and as element by element: same answers,
     aids, origins and dead letters; a pack that needs a closer look anywhere (a poisoned
-    value, keys of several lengths, qids with a leading zero, ...) leaves them to those."""
+    value, keys of several lengths, qids with a leading zero, ...) leaves them to those.
+    Sources of one length in bytes are read as rows too, others as a list of str."""
+    sources = [src_form % (i if src_form == "s%d" else i % 4) for i in range(n)]
     rows = [[form % (2 * i), form % (2 * i + 1), bool(i % 3) if same == "bool" else i % 2,
-             f"src-{i % 4}", f"{qid0 + i}", f"aid-{i}" if i % 2 else None] for i in range(n)]
+             sources[i], f"{qid0 + i}", f"aid-{i}" if i % 2 else None] for i in range(n)]
     rows = _rows(rows, poison)
     entries = [(f"{k}-0".encode(), {b"pack": msgpack.packb(
         {k: [r[j] for r in rows] for j, k in enumerate(codec.COLUMN_FIELDS)
@@ -388,6 +390,8 @@ def test_key_row_packs_decode_like_the_other_paths(n: int, form: str, qid0: int,
     if poison is None and one_width and form != "%d":
         assert got.keyed is not None and not got.dead  # the quick path was taken
         assert got.keyed.a_rows.shape == (n * packs, len((form % 0).encode()))
+        source_rows = "source" not in absent and len({len(x.encode()) for x in sources}) == 1
+        assert (type(got.keyed.source) is SourceRows) == source_rows
 
 
 def test_key_row_packs_leave_odd_packs_to_the_general_path() -> None:

@@ -23,6 +23,7 @@ from streamgroup.core.types import (
     Question,
     QuestionColumns,
     RecordColumns,
+    SourceRows,
 )
 from streamgroup.keys import Keys
 from streamgroup.sim.crowd import Crowd
@@ -311,21 +312,28 @@ def test_assign_command_from_key_rows_sets_what_the_reference_sets(
                                                             strict=True)}
 
 
-def _key_rows_of(answers: list[Answer]) -> KeyRowAnswers:
+def _key_rows_of(answers: list[Answer], source_rows: bool = False) -> KeyRowAnswers:
+    """The answers as key rows; with ``source_rows``, their sources as rows too when all
+    have one length in bytes (as the codec reads them)."""
     def rows(keys: list[str]) -> np.ndarray:
         return np.frombuffer("".join(keys).encode(), dtype=np.uint8).reshape(len(keys), -1)
+    sources: Any = [x.source for x in answers]
+    if source_rows and len({len(x.encode()) for x in sources}) == 1:
+        sources = SourceRows(rows(sources))
     return KeyRowAnswers(rows([x.a for x in answers]), rows([x.b for x in answers]),
-                         np.array([x.same for x in answers], dtype=bool),
-                         [x.source for x in answers],
+                         np.array([x.same for x in answers], dtype=bool), sources,
                          np.array([int(x.qid) for x in answers], dtype=np.int64))
 
 
-def test_engine_takes_key_row_answers_as_it_takes_their_text() -> None:
+@pytest.mark.parametrize("source_rows", [False, True])
+def test_engine_takes_key_row_answers_as_it_takes_their_text(source_rows: bool) -> None:
     """Two engines fed the same answers, one as text columns and one as key rows (the
     quick check where each answer holds its question's keys as shown; the text checks
     where one is swapped, names another pair or a qid never issued, repeats a qid, or comes
     from a new source), end identical, refuse the same batches with the same reason, and
-    the quick check is what most batches take."""
+    the quick check is what most batches take. With ``source_rows`` the sources come as
+    byte rows as well, looked up without a str each (a new source of the same length
+    among them sends its batch to the text checks)."""
     crowd = Crowd(1000, seed=9, sources=[0.8, 0.7, 0.9])
     cfg = EngineConfig(seed=9, question_timeout_ms=3000)  # refused batches are asked again
     text_e, rows_e = Engine(cfg), Engine(cfg)
@@ -370,7 +378,7 @@ def test_engine_takes_key_row_answers_as_it_takes_their_text() -> None:
         except Exception as exc:  # noqa: BLE001 - compared with the other engine's
             want = repr(exc)
         try:
-            got = rows_e.add_answer_columns(_key_rows_of(answers), now).tolist()
+            got = rows_e.add_answer_columns(_key_rows_of(answers, source_rows), now).tolist()
         except Exception as exc:  # noqa: BLE001
             got = repr(exc)
         assert got == want

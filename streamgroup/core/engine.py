@@ -56,6 +56,7 @@ from .keyindex import KeyIndex, cache_size_for
 from .ledger import UNPLACED, Ledger
 from .pairset import MAX_ITEMS, PairSet, pair_keys
 from .questions import QuestionsMixin
+from .sourcenames import NameRows
 from .sprt import threshold
 from .types import (
     APPLIED,
@@ -120,6 +121,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         self.keys = KeyIndex(cache_size_for(self.config.max_outstanding))
         self.source_names: list[str] = []
         self.source_index: dict[str, int] = {}
+        self.source_rows = NameRows()  # source names as byte rows -> ids (a cache)
         self.delta = np.zeros(0)
         self.se = np.zeros(0)
         self.src_answers = np.zeros(0)

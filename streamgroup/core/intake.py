@@ -11,7 +11,7 @@ import numpy as np
 from ..errors import EngineInputError
 from . import validate
 from .pairset import MAX_SOURCES
-from .types import Answer, AnswerColumns, KeyRowAnswers
+from .types import Answer, AnswerColumns, KeyRowAnswers, SourceRows
 
 _NONE = np.zeros(0, dtype=np.int64)
 
@@ -55,7 +55,7 @@ class IntakeMixin:
     """Validation of items and answers (part of :class:`~streamgroup.core.engine.Engine`)."""
 
     # Attributes provided by Engine: keys, labels, ledger, q, source_index, source_names,
-    # _shown_swapped.
+    # source_rows, _shown_swapped.
     def validate_item(self, key: Any, side: Any = None) -> str | None:
         err = validate.item_key(key)
         if err or side is None:
@@ -207,11 +207,17 @@ class IntakeMixin:
             return None
         if not (np.array_equal(shown[:count], a_rows) and np.array_equal(shown[count:], b_rows)):
             return None
-        try:
-            src = np.fromiter(map(self.source_index.__getitem__, answers.source),
-                              dtype=np.int64, count=count)
-        except KeyError:
-            return None
+        names = answers.source
+        if type(names) is SourceRows:  # looked up as rows, without a str each
+            src = self.source_rows.ids(names.rows, self.source_names)
+            if src is None:
+                return None
+        else:
+            try:
+                src = np.fromiter(map(self.source_index.__getitem__, names), dtype=np.int64,
+                                  count=count)
+            except KeyError:
+                return None
         return Intake([], guess, _NONE, answers.source, answers.same, wq, qn, src, True)
 
     def _intake_by_qid(self, qn: np.ndarray, same: np.ndarray, sources: list[str]) -> Intake:

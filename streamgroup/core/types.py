@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from typing import Any, NamedTuple
 
@@ -111,6 +111,51 @@ class AnswerColumns:
                                (self.a, self.b, self.same, self.source, self.qid)))
 
 
+class SourceRows(Sequence[str]):
+    """Source names as the rows of a uint8 matrix (UTF-8, one byte length, no control
+    character): what a column pack whose sources all have one length decodes to without a
+    Python string per answer. It reads as a sequence of str (decoded once, when first
+    read); the engine looks the rows up among the names it knows without decoding them
+    (:class:`~streamgroup.core.sourcenames.NameRows`)."""
+
+    __slots__ = ("rows", "_texts")
+
+    def __init__(self, rows: Any) -> None:
+        self.rows = rows  # np.ndarray (n, width) uint8, C-contiguous
+        self._texts: list[str] | None = None
+
+    def __len__(self) -> int:
+        return len(self.rows)
+
+    def texts(self) -> list[str]:
+        if self._texts is None:
+            self._texts = KeyRowAnswers.texts(self.rows)
+        return self._texts
+
+    def __getitem__(self, k: Any) -> Any:
+        return self.texts()[k]
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self.texts())
+
+    def __eq__(self, other: object) -> bool:
+        return list(self) == list(other) if isinstance(other, Sequence) else NotImplemented
+
+    __hash__ = None  # type: ignore[assignment]
+
+    def take(self, positions: Any) -> SourceRows:
+        return SourceRows(np.ascontiguousarray(self.rows[positions]))
+
+    @classmethod
+    def concatenate(cls, parts: Sequence[Sequence[str]]) -> Sequence[str]:
+        """The parts joined: rows again when every part is rows of one width."""
+        if all(type(p) is SourceRows for p in parts) and len(
+                {p.rows.shape[1] for p in parts}) == 1:  # type: ignore[attr-defined]
+            return cls(np.concatenate([p.rows for p in parts]))  # type: ignore[attr-defined]
+        return [name for p in parts for name in p]
+
+
+
 @dataclass(slots=True)
 class KeyRowAnswers:
     """Answers that each name a qid, with their keys as rows of UTF-8 bytes: what a column
@@ -121,7 +166,7 @@ class KeyRowAnswers:
     a_rows: Any  # np.ndarray (n, width) uint8
     b_rows: Any  # np.ndarray (n, width) uint8
     same: Any  # np.ndarray bool
-    source: list[str]
+    source: Sequence[str]  # a list, or SourceRows
     qn: Any  # np.ndarray int64: the qids as numbers (written without leading zeros)
 
     def __len__(self) -> int:
@@ -152,8 +197,10 @@ class KeyRowAnswers:
 
     def select(self, positions: Sequence[int]) -> KeyRowAnswers:
         pos = np.asarray(positions, dtype=np.int64)
+        source = self.source
         return KeyRowAnswers(self.a_rows[pos], self.b_rows[pos], self.same[pos],
-                             [self.source[k] for k in pos.tolist()], self.qn[pos])
+                             source.take(pos) if type(source) is SourceRows
+                             else [source[k] for k in pos.tolist()], self.qn[pos])
 
 
 class QuestionColumns:

@@ -36,7 +36,7 @@ import msgpack
 import numpy as np
 
 from ..core.intake import digits_to_int64
-from ..core.types import Answer, AnswerColumns, KeyRowAnswers
+from ..core.types import Answer, AnswerColumns, KeyRowAnswers, SourceRows
 from ..keys import (
     CONTROL_CHARS,
     MAX_ID_BYTES,
@@ -424,13 +424,32 @@ def _key_row_packs(entries: Sequence[Entry], out: Decoded) -> bool:
     else:
         keyed = KeyRowAnswers(*(np.concatenate([getattr(p[1], c) for p in parts])
                                 for c in ("a_rows", "b_rows", "same")),
-                              list(itertools.chain.from_iterable(p[1].source for p in parts)),
+                              SourceRows.concatenate([p[1].source for p in parts]),
                               np.concatenate([p[1].qn for p in parts]))
     out.keyed = keyed
     for eid, k, aids in parts:
         out.aids += [None] * len(k) if aids is None else aids
         out.origins.add_pack(eid, len(k))
     return True
+
+
+def _sources(pack: bytes, span: tuple[int, int] | None, n: int) -> Sequence[str] | None:
+    """The ``source`` column of a pack of ``n`` answers: byte rows when every name has one
+    length (1 to ``_FAST_CHARS`` bytes) and is text as the general path accepts it, else
+    a list of str as ``_short_texts`` accepts them, else None. No column: anonymous."""
+    if span is None:
+        return [""] * n  # anonymous, as in the general path
+    got = _str_rows(pack, *span)
+    if got is not None and len(got[0]) == n and got[0].shape[1] - got[1] <= _FAST_CHARS:
+        rows, hw = got
+        return SourceRows(np.ascontiguousarray(rows[:, hw:]))
+    try:
+        source = msgpack.unpackb(pack[span[0]:span[1]], raw=False, **_PACK_LIMITS)
+    except Exception:  # noqa: BLE001 - the general path names the problem
+        return None
+    if type(source) is not list or len(source) != n or not _short_texts(source):
+        return None
+    return source
 
 
 _PACK_LIMITS = {"max_array_len": MAX_PACK_ANSWERS, "max_map_len": MAX_PACK_FIELDS,
@@ -457,14 +476,14 @@ def _key_row_pack(pack: Any) -> tuple[KeyRowAnswers, list[Any] | None] | None:
             if name in spans or name in other:
                 return None
             start = u.tell()
-            if name in ("a", "b", "same", "qid"):
+            if name in ("a", "b", "same", "qid", "source"):
                 u.skip()
                 spans[name] = (start, u.tell())
-            elif name in ("source", "aid"):
+            elif name == "aid":
                 other[name] = u.unpack()
             else:
                 u.skip()  # other keys are ignored, as in the general path
-        if u.tell() != len(pack) or len(spans) != 4:
+        if u.tell() != len(pack) or len(spans) != 4 + ("source" in spans):
             return None
     except Exception:  # noqa: BLE001 - anything odd: the general path names the problem
         return None
@@ -479,10 +498,8 @@ def _key_row_pack(pack: Any) -> tuple[KeyRowAnswers, list[Any] | None] | None:
     if np.count_nonzero(ma.view(f"V{width}") == mb.view(f"V{width}")):  # a is b somewhere
         return None
     a, b = ma[:, hw:], mb[:, hw:]
-    source = other.get("source")
+    source = _sources(pack, spans.get("source"), n)
     if source is None:
-        source = [""] * n  # anonymous, as in the general path
-    elif type(source) is not list or len(source) != n or not _short_texts(source):
         return None
     aids = other.get("aid")
     if aids is not None:

@@ -134,7 +134,7 @@ def answers_columns_payload(cols: AnswerColumns) -> list[list[Any]]:
 
 def key_rows_payload(k: KeyRowAnswers) -> list[Any]:
     return [k.a_rows.shape[1], k.a_rows.tobytes(), k.b_rows.tobytes(),
-            k.same.astype(np.uint8).tobytes(), k.source, k.qn.astype("<i8").tobytes()]
+            k.same.astype(np.uint8).tobytes(), list(k.source), k.qn.astype("<i8").tobytes()]
 
 
 def key_rows_from_payload(payload: Sequence[Any]) -> KeyRowAnswers:
@@ -149,7 +149,7 @@ def key_columns_payload(k: KeyRowAnswers) -> list[Any]:
     """The payload of :data:`OP_KEY_COLUMNS` (read back by :func:`key_columns_from_payload`)."""
     steps = np.diff(np.asarray(k.qn, dtype=np.int64), prepend=np.int64(0))
     return [k.a_rows.shape[1], k.a_rows.T.tobytes(), k.b_rows.T.tobytes(),
-            k.same.astype(np.uint8).tobytes(), k.source, steps.astype("<i8").tobytes()]
+            k.same.astype(np.uint8).tobytes(), list(k.source), steps.astype("<i8").tobytes()]
 
 
 def key_columns_from_payload(payload: Sequence[Any]) -> KeyRowAnswers:
