@@ -4,7 +4,7 @@ A column pack from a producer that names its sources with one length in bytes (`
 ``assay-04``) decodes to a matrix of rows (:class:`~streamgroup.core.types.SourceRows`).
 Each row is read as a few 64-bit words (zero-padded to a multiple of 8 bytes) folded into
 one 64-bit code, and the code is looked up in a small open-addressing table of the known
-names of that length (linear probing, at most a quarter full). A row counts as found only
+names of that length (linear probing, at most a sixteenth full). A row counts as found only
 when its words equal the found name's, so two names sharing a code (possible, never
 seen) send the batch down the general path rather than to the wrong source.
 """
@@ -18,6 +18,7 @@ import numpy as np
 _FOLD = np.uint64(0x9E3779B97F4A7C15)  # odd: folding word by word keeps every bit
 _SPREAD = np.uint64(0xBF58476D1CE4E5B9)  # odd: a code's slot is its product's top bits
 MIN_SLOT_BITS = 8
+SLOTS_PER_NAME = 16  # at least: most rows find their name in its first slot
 
 
 def _words(rows: np.ndarray) -> np.ndarray:
@@ -45,8 +46,8 @@ class _Table:
     def __init__(self, seen: int, words: np.ndarray, ids: np.ndarray) -> None:
         self.seen = seen  # how many names the engine knew when this was built
         self.words, self.ids = words, ids
-        self.bits = max(MIN_SLOT_BITS, (4 * len(ids)).bit_length())
-        self.slots = np.full(1 << self.bits, -1, dtype=np.int64)  # a name's row, or -1
+        self.bits = max(MIN_SLOT_BITS, (SLOTS_PER_NAME * len(ids)).bit_length())
+        self.slots = np.full(1 << self.bits, -1, dtype=np.int32)  # a name's row, or -1
         self.probes = 0  # the longest run of slots a name's lookup walks
         mask = len(self.slots) - 1
         pending = np.arange(len(ids))
@@ -69,18 +70,22 @@ class _Table:
         """Each row's id, or None if some row is not a known name."""
         mask = len(self.slots) - 1
         pos = self._home(_fold(words))
-        out = np.empty(len(words), dtype=np.int64)
-        todo = np.arange(len(words))
+        out: np.ndarray | None = None
+        todo = None  # the rows still looked for (None: all of them)
         for _ in range(self.probes):
-            at = self.slots[pos]
+            at = self.slots.take(pos)
             if np.count_nonzero(at < 0):
                 return None  # an empty slot before the name: not a known name
-            hit = (self.words[at] == words).all(axis=1)
-            out[todo[hit]] = self.ids[at[hit]]
+            hit = (self.words.take(at, axis=0) == words).all(axis=1)
+            if out is None:
+                out = self.ids.take(at)  # (right where hit; the rest is set below)
+            elif np.count_nonzero(hit):
+                out[todo[hit]] = self.ids.take(at[hit])
             if hit.all():
                 return out
-            miss = ~hit
-            todo, words, pos = todo[miss], words[miss], (pos[miss] + 1) & mask
+            miss = (~hit).nonzero()[0]
+            todo = miss if todo is None else todo.take(miss)
+            words, pos = words.take(miss, axis=0), (pos.take(miss) + 1) & mask
         return None
 
 
