@@ -552,10 +552,10 @@ def _count_table(lead: str) -> list[str]:
 
 def _count_pieces(lead: str, counts: np.ndarray) -> list[str]:
     """``_count_piece`` of each count (integers), from the table when all are in it."""
-    values = counts.astype(np.int64).tolist()
-    if values and min(values) >= 0 and max(values) < _COUNT_TABLE:
-        return list(map(_count_table(lead).__getitem__, values))
-    return [_count_piece(lead, v) for v in values]
+    values = counts.astype(np.int64)
+    if len(values) and values.min() >= 0 and values.max() < _COUNT_TABLE:
+        return list(map(_count_table(lead).__getitem__, values.tolist()))
+    return [_count_piece(lead, v) for v in values.tolist()]
 
 
 _LEAD_TABLE = max(MAX_KEY_BYTES, MAX_ID_BYTES) + 1  # lengths up to the longest key or id
