@@ -155,7 +155,6 @@ class SourceRows(Sequence[str]):
         return [name for p in parts for name in p]
 
 
-
 @dataclass(slots=True)
 class KeyRowAnswers:
     """Answers that each name a qid, with their keys as rows of UTF-8 bytes: what a column
