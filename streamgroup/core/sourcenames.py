@@ -15,8 +15,13 @@ from collections.abc import Sequence
 
 import numpy as np
 
-_FOLD = np.uint64(0x9E3779B97F4A7C15)  # odd: folding word by word keeps every bit
-_SPREAD = np.uint64(0xBF58476D1CE4E5B9)  # odd: a code's slot is its product's top bits
+# Two odd multipliers (any odd one is correct: every find is checked byte for byte; these
+# only spread the codes). _FOLD is 2**64 over the golden ratio, as in core/pairset.py
+# (Knuth, TAOCP vol. 3, section 6.4); _SPREAD is the first multiplier of SplitMix64's
+# finaliser (Steele, Lea and Flood, "Fast splittable pseudorandom number generators",
+# 2014), written from memory.
+_FOLD = np.uint64(0x9E3779B97F4A7C15)  # folding word by word keeps every bit
+_SPREAD = np.uint64(0xBF58476D1CE4E5B9)  # a code's slot is its product's top bits
 MIN_SLOT_BITS = 8
 SLOTS_PER_NAME = 16  # at least: most rows find their name in its first slot
 
