@@ -76,8 +76,9 @@ class QuestionsMixin:
         # The carry can hold every waiting item while the outstanding cap binds; it is
         # served a prefix at a time (smallest index first), so a round costs time in
         # proportion to its room and its nudges, not to the carry. A prefix of half again
-        # the room fills it in one pass nearly always (in order, so a second pass gives
-        # the same questions); four times the room looked at twice the items it needed.
+        # the room fills it in one pass nearly always (a second pass serves the next items
+        # in order, as a longer first pass would); four times the room looked at more than
+        # twice the items it needed.
         served: list[np.ndarray] = []
         got = 0
         while self.carry:
