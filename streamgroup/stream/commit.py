@@ -116,19 +116,34 @@ def _assign_tails(rc: RecordColumns, suffix: bytes = b""
         parts.append((_KEYS[key] + marker, col, dtype))
     parts.append((_KEYS["pinned"], np.where(rc.pinned, 0xC3, 0xC2), "u1"))  # true / false
     parts.append((suffix, None, "V0"))
-    # every row starts as the constants with zeros for the values, then each column of
-    # values is written over its zeros
-    row = b"".join(const + bytes(np.dtype(dt).itemsize) for const, _, dt in parts)
-    tail = np.empty((n, len(row)), dtype=np.uint8)
-    tail[:] = np.frombuffer(row, dtype=np.uint8)
+    # a row is a record of a structured dtype: each constant a bytes field, each column a
+    # field of its msgpack dtype; a field is written whole per row (a column of uint8
+    # slices costs a strided copy per row and per byte width: about twice the time)
+    names: list[str] = []
+    formats: list[str] = []
+    offsets: list[int] = []
+    consts: list[tuple[str, bytes]] = []
     at = 0
-    for const, col, dtype in parts:
-        at += len(const)
+    for i, (const, col, dtype) in enumerate(parts):
+        if const:
+            names.append(f"c{i}")
+            formats.append(f"V{len(const)}")
+            offsets.append(at)
+            consts.append((f"c{i}", const))
+            at += len(const)
         if col is not None:
-            size = np.dtype(dtype).itemsize
-            tail[:, at:at + size] = col.astype(dtype).view(np.uint8).reshape(n, size)
-            at += size
-    return prefixes, code, tail
+            names.append(f"v{i}")
+            formats.append(dtype)
+            offsets.append(at)
+            at += np.dtype(dtype).itemsize
+    rows = np.empty(n, dtype=np.dtype({"names": names, "formats": formats,
+                                       "offsets": offsets, "itemsize": at}))
+    for name, const in consts:
+        rows[name] = np.frombuffer(const, dtype=f"V{len(const)}")[0]
+    for i, (_, col, _) in enumerate(parts):
+        if col is not None:
+            rows[f"v{i}"] = col
+    return prefixes, code, rows.view(np.uint8).reshape(n, at)
 
 
 def _assign_parts(rc: RecordColumns, suffix: bytes = b""
@@ -184,6 +199,9 @@ def _assign_rows(key: str, rc: RecordColumns, keys: np.ndarray) -> bytes:
     n, kw = keys.shape
     prefixes, code, tail = _assign_tails(rc, b"\r\n")
     width = tail.shape[1] - 2
+    tw = tail.shape[1]
+    key_cells = np.ascontiguousarray(keys).view(f"V{kw}").reshape(n)
+    tail_cells = tail.view(f"V{tw}").reshape(n)
     head = np.frombuffer(b"$%d\r\n" % kw, dtype=np.uint8)
     out = [_resp_start(("HSET", key), 2 * n)]
     kinds = np.bincount(code, minlength=len(prefixes))
@@ -193,11 +211,15 @@ def _assign_rows(key: str, rc: RecordColumns, keys: np.ndarray) -> bytes:
                             dtype=np.uint8)
         a, b = len(head), len(head) + kw
         m = b + len(mid)
-        buf = np.empty((int(kinds[c]), m + tail.shape[1]), dtype=np.uint8)
-        buf[:, :a] = head
-        buf[:, a:b] = keys[rows]
-        buf[:, b:m] = mid
-        buf[:, m:] = tail[rows]
+        # one record of a structured dtype per row, each part a bytes field written whole
+        buf = np.empty(int(kinds[c]), dtype=np.dtype({
+            "names": ["head", "key", "mid", "tail"],
+            "formats": [f"V{a}", f"V{kw}", f"V{len(mid)}", f"V{tw}"],
+            "offsets": [0, a, b, m], "itemsize": m + tw}))
+        buf["head"] = head.view(f"V{a}")[0]
+        buf["key"] = key_cells[rows]
+        buf["mid"] = mid.view(f"V{len(mid)}")[0]
+        buf["tail"] = tail_cells[rows]
         out.append(buf.tobytes())
     return b"".join(out)
 
