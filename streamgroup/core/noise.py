@@ -48,21 +48,31 @@ def m_step(ledger: Ledger, n_sources: int, p: np.ndarray | None = None) -> Noise
     """One M-step over every answer that counts for at least one endpoint."""
     counted = ledger.answer("direction") != 0
     a, b, src, same = (ledger.answer(name) for name in ("a", "b", "src", "same"))
-    if np.count_nonzero(counted) < len(counted):  # (at scale every answer counts: views)
-        a, b, src, same = a[counted], b[counted], src[counted], same[counted]
+    every = np.count_nonzero(counted) == len(counted)  # (at scale nearly every answer)
     if p is None:
         p = side_posterior(ledger)
     lean = 2.0 * p - 1.0  # per item, then gathered: the same values as per answer
     # r = lean[a] lean[b] is the expected relation sign (+1 same, -1 different); x r and
-    # r r are built in chunks whose temporaries stay in the cache, elementwise (the same
+    # r r are built in chunks of answers whose temporaries stay in the cache (the counted
+    # ones picked chunk by chunk: no full copy of a, b and same), elementwise (the same
     # values), and each summed in one bincount (the same order of addition)
-    xr, rr = np.empty(len(a)), np.empty(len(a))
+    size = len(a) if every else int(np.count_nonzero(counted))
+    xr, rr = np.empty(size), np.empty(size)
+    at = 0
     for lo in range(0, len(a), WEIGH_CHUNK):
         part = slice(lo, lo + WEIGH_CHUNK)
-        r = lean.take(a[part])
-        r *= lean.take(b[part])
-        np.multiply(same[part], r, out=xr[part])
-        np.multiply(r, r, out=rr[part])
+        pa, pb, ps = a[part], b[part], same[part]
+        if not every:
+            keep = counted[part]
+            pa, pb, ps = pa.compress(keep), pb.compress(keep), ps.compress(keep)
+        out = slice(at, at + len(pa))
+        at += len(pa)
+        r = lean.take(pa)
+        r *= lean.take(pb)
+        np.multiply(ps, r, out=xr[out])
+        np.multiply(r, r, out=rr[out])
+    if not every:
+        src = src.compress(counted)
     agree = np.bincount(src, weights=xr, minlength=n_sources)
     info = np.bincount(src, weights=rr, minlength=n_sources)
     total = np.bincount(src, minlength=n_sources).astype(np.float64)
