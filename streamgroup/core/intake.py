@@ -194,11 +194,9 @@ class IntakeMixin:
         when any of that fails (the caller then checks the text as usual)."""
         count = len(answers)
         qn = answers.qn
-        if not count or int(qn.max()) >= self.q.n or int(qn.min()) < 0:
+        if not count or not self._all_issued(qn):
             return None
-        t, p = self.q["target"][qn], self.q["partner"][qn]
-        wq = np.arange(count)
-        guess = self._pair_guess(qn, t, p, wq, np.ones(count, dtype=bool), True, count)
+        wq, guess = self._shown_pairs(qn)
         if np.count_nonzero(guess[:count] == guess[count:]):
             return None
         shown = self.keys.key_rows(guess)
@@ -225,14 +223,23 @@ class IntakeMixin:
         :meth:`_check_key_rows` found ``by_qid`` (replayed from the journal: not checked
         again). Its keys are its questions' as shown, so no key is read."""
         count = len(qn)
-        if not (count == len(same) == len(sources)) or (
-                count and (int(qn.max()) >= self.q.n or int(qn.min()) < 0)):
+        if not (count == len(same) == len(sources)) or (count and not self._all_issued(qn)):
             raise EngineInputError("answers by qid: columns of different lengths, or a qid "
                                    "that was never issued")
+        wq, guess = self._shown_pairs(qn)
+        return Intake([], guess, _NONE, sources, same, wq, qn, None, True)
+
+    def _all_issued(self, qn: np.ndarray) -> bool:
+        """Whether every qid of the (non-empty) ``qn`` was issued."""
+        return int(qn.min()) >= 0 and int(qn.max()) < self.q.n
+
+    def _shown_pairs(self, qn: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(positions, the item indices of each answer's pair as its question showed it:
+        the a's, then the b's) for answers that all name the issued qids ``qn``."""
+        count = len(qn)
         t, p = self.q["target"][qn], self.q["partner"][qn]
         wq = np.arange(count)
-        guess = self._pair_guess(qn, t, p, wq, np.ones(count, dtype=bool), True, count)
-        return Intake([], guess, _NONE, sources, same, wq, qn, None, True)
+        return wq, self._pair_guess(qn, t, p, wq, np.ones(count, dtype=bool), True, count)
 
     def _pair_guess(self, qn: np.ndarray, t: np.ndarray, p: np.ndarray, wq: np.ndarray,
                     issued: np.ndarray, every: bool, count: int) -> np.ndarray:
