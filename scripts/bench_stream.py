@@ -64,7 +64,9 @@ cycles, to ``PATH`` and ``PATH-packed`` (py-spy is a tool to install by hand, no
 dependency); with ``BENCH_PYSPY_IDLE=1`` the samples include the time it waits (py-spy
 ``--idle``), to see where it waits for Redis. ``BENCH_PERF=PATH`` records
 ``perf record -g`` of the worker and Redis inside the drain windows only (perf's control
-fifo; to ``PATH`` and ``PATH-packed``; read with ``perf report -i PATH --sort comm,sym``).
+fifo; to ``PATH`` and ``PATH-packed``; read with ``perf report -i PATH --sort comm,sym``);
+``BENCH_PERF_EVENT=page-faults`` samples that event instead of the CPU clock (where the
+worker touches new memory).
 ``BENCH_LOOKUP_NICE=N`` runs the lookup
 process at nice ``N`` (negative: ahead of the worker), to tell time spent waiting for a
 core from time spent waiting for Redis. ``BENCH_REDIS_CPU=N`` pins Redis to CPU ``N`` and
@@ -461,6 +463,8 @@ class WindowPerf:
         os.mkfifo(self.ack)
         self.proc = subprocess.Popen(
             ["perf", "record", "-g", "-D", "-1", "--control", f"fifo:{self.ctl},{self.ack}",
+             *(["-e", os.environ["BENCH_PERF_EVENT"]] if os.environ.get("BENCH_PERF_EVENT")
+               else []),
              "-p", ",".join(map(str, pids)), "-o", path],
             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         self.ctl_fh = open(self.ctl, "w")  # noqa: SIM115 (kept open across the windows)

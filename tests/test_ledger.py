@@ -296,3 +296,46 @@ def test_a_recount_in_chunks_is_bit_for_bit_one_pass(seed: int, chunk: int,
             ledger_mod.WEIGH_CHUNK = saved
         sums.append([led.item(name).tobytes() for name in ("llr", "s1", "s2", "count")])
     assert sums[0] == sums[1]
+
+
+@settings(max_examples=30, deadline=None)
+@given(st.integers(0, 2**32 - 1), st.integers(1, 120), st.booleans())
+def test_a_recount_slice_by_slice_equals_one_pass_to_rounding(seed: int, size: int,
+                                                              settle: bool) -> None:
+    """A recount without shared pairs, a refit between batches and the M-step take the
+    answers slice by slice (their temporaries reused, not new memory as the ledger grows)
+    and add the per-item and per-source sums: the same sums as one pass, to rounding
+    (only the order of addition differs), and the same counts exactly. The reference is
+    numpy's one-pass bincount over every answer, as before the slices."""
+    import streamgroup.core.ledger as ledger_mod
+
+    got: list[tuple[dict[str, np.ndarray], noise.NoiseFit, noise.NoiseFit]] = []
+    saved = ledger_mod.RECOUNT_SLICE
+    for one_slice in (False, True):
+        r = np.random.default_rng(seed)
+        n_src = 4
+        led = _random_ledger(r, 12, 400, n_src, 0.6, llr_sd=3)[0]
+        delta, se = r.uniform(-0.5, 0.9, n_src), r.uniform(0.01, 0.3, n_src)
+        ledger_mod.RECOUNT_SLICE = 1 << 40 if one_slice else size
+        try:
+            # slices of at least twice the items: several unless the size is unlimited
+            assert len(led.answer_slices()) == (1 if one_slice else
+                                                math.ceil(400 / max(size, 2 * 12)))
+            led.recompute(delta, se, settle=settle)
+            sums = {k: led.item(k).copy() for k in ("llr", "s1", "s2", "count")}
+            m = noise.m_step(led, n_src)
+            refit = noise.fit(led, delta, se, iterations=1, current=True)
+            sums["after_refit"] = led.item("llr").copy()
+            per_source = led.answers_per_source(n_src)
+            assert per_source.tolist() == np.bincount(led.answer("src"),
+                                                      minlength=n_src).tolist()
+        finally:
+            ledger_mod.RECOUNT_SLICE = saved
+        got.append((sums, m, refit))
+    (sliced, m1, f1), (whole, m2, f2) = got
+    for k in ("llr", "s1", "s2", "after_refit"):
+        np.testing.assert_allclose(sliced[k], whole[k], rtol=1e-12, atol=1e-12)
+    assert sliced["count"].tobytes() == whole["count"].tobytes()
+    for a, b in ((m1, m2), (f1, f2)):
+        np.testing.assert_allclose(a.delta, b.delta, rtol=1e-12, atol=1e-14)
+        np.testing.assert_allclose(a.answers, b.answers, rtol=1e-12)

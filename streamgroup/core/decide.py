@@ -23,7 +23,7 @@ class DecideMixin:
         self.delta, self.se, self.src_answers = fit.delta, fit.se, fit.answers
         self.pooled, self.pooled_se = fit.pooled, fit.pooled_se
         self.counted_at_fit = self._counted()
-        share = np.bincount(self.ledger.answer("src"), minlength=len(self.delta)).astype(float)
+        share = self.ledger.answers_per_source(len(self.delta)).astype(float)
         share /= max(share.sum(), 1.0)
         self.shared = float((share * share).sum())
 

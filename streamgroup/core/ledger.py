@@ -24,6 +24,11 @@ UNPLACED = -1
 # 0.046 s in one pass; a whole warm refit over 2 million answers, 0.17 s against 0.22 s
 # (scripts/bench_refit.py)
 WEIGH_CHUNK = 1 << 16
+# answers per slice of a full recount (and of the M-step), at least twice the items: each
+# slice's temporaries (about 100 bytes an answer) are freed before the next one is made,
+# so that a refit reuses the memory of the last one rather than touching new pages as the
+# ledger grows; the per-item sums are added slice by slice
+RECOUNT_SLICE = 1 << 19
 
 
 @dataclass(slots=True)
@@ -76,6 +81,21 @@ class Ledger:
 
     def answer(self, name: str) -> np.ndarray:
         return self.answers.view(name)
+
+    def answer_slices(self) -> list[slice]:
+        """Every answer row, in slices of at least ``RECOUNT_SLICE`` (one when few)."""
+        size = max(RECOUNT_SLICE, 2 * self.n_items)
+        n = self.n_answers
+        return [slice(lo, min(lo + size, n)) for lo in range(0, n, size)] or [slice(0, 0)]
+
+    def answers_per_source(self, n_sources: int) -> np.ndarray:
+        """How many answers each source gave (slice by slice: no full-size temporary)."""
+        total = None
+        src = self.answer("src")
+        for rows in self.answer_slices():
+            total = running_sum(total, np.bincount(src[rows], minlength=n_sources))
+        assert total is not None
+        return total
 
     # -- growth ---------------------------------------------------------------
     def add_items(self, count: int) -> np.ndarray:
@@ -137,20 +157,27 @@ class Ledger:
         vote *= both(same, same)
         return Counted(target, partner, both(src, src), vote.astype(np.float64))
 
+    def _partner_discounts(self) -> np.ndarray:
+        """Each item's discount as a partner, from its current evidence: for a pass over
+        many answers, one exp per item gathered per answer instead of one per answer (the
+        same values)."""
+        return partner_shrink(reference_eps(self.item("llr"), self.item("pinned")))
+
     def _weigh(self, pairs: Counted, delta: np.ndarray, se: np.ndarray,
-               trust_partners: bool = False, need_spread: bool = True
+               trust_partners: bool = False, need_spread: bool = True,
+               per_item: np.ndarray | None = None
                ) -> tuple[np.ndarray, np.ndarray | None]:
         """(step, sensitivity) of each pair: the sensitivity is signed like the answer's
         vote, so that answers of one source add up (their bias errors are shared) while
         those of different sources do not. Without ``need_spread``, the sensitivity is
-        None and not computed (the steps are the same bit for bit)."""
+        None and not computed (the steps are the same bit for bit). ``per_item``: the
+        partners' discounts, if the caller has them."""
         partner, src, sign = pairs.partner, pairs.src, pairs.sign
         m = len(partner)
-        per_item = None
-        if not trust_partners and m > self.n_items:
-            # a pass over every answer: each item's discount once, then gathered (the
-            # same values, with one exp per item instead of one per answer)
-            per_item = partner_shrink(reference_eps(self.item("llr"), self.item("pinned")))
+        if trust_partners:
+            per_item = None
+        elif per_item is None and m > self.n_items:
+            per_item = self._partner_discounts()
         if m <= WEIGH_CHUNK:
             return self._weigh_part(partner, src, sign, delta, se, trust_partners, per_item,
                                     need_spread)
@@ -216,23 +243,44 @@ class Ledger:
         partner's current evidence; ``settle`` first builds that evidence without the
         discount, for items placed together whose evidence is not known yet. ``pairs``:
         :meth:`counted_pairs` of every answer, if the caller has it (placements and
-        directions unchanged since). ``llr_only``: rebuild the evidence alone, for a
-        step whose other sums a later full recount replaces.
+        directions unchanged since); without them the answers are taken slice by slice
+        (:meth:`answer_slices`). ``llr_only``: rebuild the evidence alone, for a step
+        whose other sums a later full recount replaces.
         """
         n = self.n_items
-        if pairs is None:
-            pairs = self.counted_pairs()
-        target = pairs.target
+
+        def parts() -> Any:
+            if pairs is not None:
+                return [pairs]
+            return (self.counted_pairs(rows) for rows in self.answer_slices())
+
         if settle:
-            step, _ = self._weigh(pairs, delta, se, trust_partners=True, need_spread=False)
-            self.items["llr"][:n] = np.bincount(target, weights=step, minlength=n)[:n]
-        step, spread = self._weigh(pairs, delta, se, need_spread=not llr_only)
-        self.items["llr"][:n] = np.bincount(target, weights=step, minlength=n)[:n]
-        if spread is None:
-            return
-        self.items["s1"][:n] = np.bincount(target, weights=spread, minlength=n)[:n]
-        self.items["s2"][:n] = np.bincount(target, weights=spread * spread, minlength=n)[:n]
-        self.items["count"][:n] = np.bincount(target, minlength=n)[:n]
+            llr = None
+            for part in parts():
+                step, _ = self._weigh(part, delta, se, trust_partners=True,
+                                      need_spread=False)
+                llr = running_sum(llr, np.bincount(part.target, weights=step,
+                                                   minlength=n)[:n])
+            self.items["llr"][:n] = llr
+        per_item = self._partner_discounts() if 2 * self.n_answers > n else None
+        sums: list[np.ndarray | None] = [None] * 4  # llr, s1, s2, count
+        for part in parts():
+            step, spread = self._weigh(part, delta, se, need_spread=not llr_only,
+                                       per_item=per_item)
+            # one widening of the targets for the four sums (bincount takes intp)
+            target = part.target.astype(np.intp)
+            sums[0] = running_sum(sums[0], np.bincount(target, weights=step,
+                                                       minlength=n)[:n])
+            if spread is None:
+                continue
+            sums[1] = running_sum(sums[1], np.bincount(target, weights=spread,
+                                                       minlength=n)[:n])
+            spread *= spread
+            sums[2] = running_sum(sums[2], np.bincount(target, weights=spread, minlength=n)[:n])
+            sums[3] = running_sum(sums[3], np.bincount(target, minlength=n)[:n])
+        for name, got in zip(("llr", "s1", "s2", "count"), sums, strict=True):
+            if got is not None:
+                self.items[name][:n] = got
 
     def spread(self, idx: np.ndarray, shared: float) -> np.ndarray:
         """Standard deviation of each item's evidence due to the uncertainty of the biases.
@@ -295,3 +343,12 @@ class Ledger:
 
     def nbytes(self) -> int:
         return self.items.nbytes() + self.answers.nbytes() + self.pending.nbytes
+
+
+def running_sum(total: np.ndarray | None, part: np.ndarray) -> np.ndarray:
+    """A running sum over slices; the first slice's sums as they are (bit for bit those
+    of one pass when there is a single slice)."""
+    if total is None:
+        return part
+    total += part
+    return total

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .ledger import WEIGH_CHUNK, Ledger
+from .ledger import WEIGH_CHUNK, Ledger, running_sum
 
 PRIOR = 2.0  # pseudo-answers that shrink a young source's bias towards 0
 SE_NEW = 1.0  # standard error of a source never fitted
@@ -46,12 +46,32 @@ def hard_posterior(ledger: Ledger) -> np.ndarray:
 
 def m_step(ledger: Ledger, n_sources: int, p: np.ndarray | None = None) -> NoiseFit:
     """One M-step over every answer that counts for at least one endpoint."""
-    counted = ledger.answer("direction") != 0
-    a, b, src, same = (ledger.answer(name) for name in ("a", "b", "src", "same"))
-    every = np.count_nonzero(counted) == len(counted)  # (at scale nearly every answer)
     if p is None:
         p = side_posterior(ledger)
     lean = 2.0 * p - 1.0  # per item, then gathered: the same values as per answer
+    agree = info = total = None
+    # the answers slice by slice (the recount's slices: temporaries that are freed and
+    # reused, not new memory each refit), each slice's sums added per source
+    for rows in ledger.answer_slices():
+        x, y, z = _m_sums(ledger, rows, lean, n_sources)
+        agree, info = running_sum(agree, x), running_sum(info, y)
+        total = running_sum(total, z)
+    assert agree is not None and info is not None and total is not None
+    delta = np.clip(agree / (total + PRIOR), -0.995, 0.995)
+    se = np.sqrt(np.maximum(1.0 - delta**2, 0.05) / (info + PRIOR))
+    n = float(total.sum())
+    pooled = float(np.clip(agree.sum() / (n + PRIOR), -0.995, 0.995))
+    pooled_se = float(np.sqrt(max(1.0 - pooled**2, 0.05) / (info.sum() + PRIOR)))
+    return NoiseFit(delta, se, info, pooled, pooled_se)
+
+
+def _m_sums(ledger: Ledger, rows: slice, lean: np.ndarray, n_sources: int
+            ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per source over the counted answers among ``rows``: the sum of x r (agreement with
+    the expected relation), of r r (its certainty) and the count."""
+    counted = ledger.answer("direction")[rows] != 0
+    a, b, src, same = (ledger.answer(name)[rows] for name in ("a", "b", "src", "same"))
+    every = np.count_nonzero(counted) == len(counted)  # (at scale nearly every answer)
     # r = lean[a] lean[b] is the expected relation sign (+1 same, -1 different); x r and
     # r r are built in chunks of answers whose temporaries stay in the cache (the counted
     # ones picked chunk by chunk: no full copy of a, b and same), elementwise (the same
@@ -71,17 +91,11 @@ def m_step(ledger: Ledger, n_sources: int, p: np.ndarray | None = None) -> Noise
         r *= lean.take(pb)
         np.multiply(ps, r, out=xr[out])
         np.multiply(r, r, out=rr[out])
-    if not every:
-        src = src.compress(counted)
-    agree = np.bincount(src, weights=xr, minlength=n_sources)
-    info = np.bincount(src, weights=rr, minlength=n_sources)
-    total = np.bincount(src, minlength=n_sources).astype(np.float64)
-    delta = np.clip(agree / (total + PRIOR), -0.995, 0.995)
-    se = np.sqrt(np.maximum(1.0 - delta**2, 0.05) / (info + PRIOR))
-    n = float(total.sum())
-    pooled = float(np.clip(agree.sum() / (n + PRIOR), -0.995, 0.995))
-    pooled_se = float(np.sqrt(max(1.0 - pooled**2, 0.05) / (info.sum() + PRIOR)))
-    return NoiseFit(delta, se, info, pooled, pooled_se)
+    # one widening of the sources for the three sums (bincount takes intp)
+    src = (src if every else src.compress(counted)).astype(np.intp)
+    return (np.bincount(src, weights=xr, minlength=n_sources),
+            np.bincount(src, weights=rr, minlength=n_sources),
+            np.bincount(src, minlength=n_sources).astype(np.float64))
 
 
 def fit(ledger: Ledger, delta: np.ndarray, se: np.ndarray, iterations: int = 3,
@@ -100,10 +114,12 @@ def fit(ledger: Ledger, delta: np.ndarray, se: np.ndarray, iterations: int = 3,
     result = NoiseFit(delta, se, np.zeros(n_sources), 0.0, SE_NEW)
     if cold:
         result = m_step(ledger, n_sources, hard_posterior(ledger))
-    # placements and directions stay as they are during a fit: every recount shares one
-    # list of counted pairs, and those before the last need only the evidence (m_step
-    # reads nothing else; the last recount writes every sum)
-    pairs = ledger.counted_pairs()
+    # placements and directions stay as they are during a fit: several recounts share
+    # one list of counted pairs, and those before the last need only the evidence (m_step
+    # reads nothing else; the last recount writes every sum). A single recount (a refit
+    # between batches) takes the answers slice by slice instead: no full-size list.
+    several = iterations > 1 or not current
+    pairs = ledger.counted_pairs() if several else None
     for k in range(iterations):
         if not (current and k == 0):
             ledger.recompute(result.delta, result.se, settle=cold and k == 0, pairs=pairs,
