@@ -62,7 +62,8 @@ core busy (Redis idle): what the machine alone adds at full load
 ``BENCH_PYSPY=PATH`` records a py-spy profile (raw format) of the worker over the drain
 cycles, to ``PATH`` and ``PATH-packed`` (py-spy is a tool to install by hand, not a
 dependency); with ``BENCH_PYSPY_IDLE=1`` the samples include the time it waits (py-spy
-``--idle``), to see where it waits for Redis. ``BENCH_PERF=PATH`` records
+``--idle``), to see where it waits for Redis; ``BENCH_PYSPY_RATE`` sets the samples a
+second (default 200). ``BENCH_PERF=PATH`` records
 ``perf record -g`` of the worker and Redis inside the drain windows only (perf's control
 fifo; to ``PATH`` and ``PATH-packed``; read with ``perf report -i PATH --sort comm,sym``);
 ``BENCH_PERF_EVENT=page-faults`` samples that event instead of the CPU clock (where the
@@ -515,7 +516,8 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
     if os.environ.get("BENCH_PYSPY"):  # a profile of the worker over the cycles (a tool)
         spy = subprocess.Popen(["py-spy", "record", "--pid", str(proc.pid), "--format", "raw",
                                 "-o", os.environ["BENCH_PYSPY"] + ("-packed" if pack else ""),
-                                "--rate", "200", "--nonblocking",
+                                "--rate", os.environ.get("BENCH_PYSPY_RATE", "200"),
+                                "--nonblocking",
                                 *(["--idle"] if os.environ.get("BENCH_PYSPY_IDLE") else [])],
                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         time.sleep(1.0)
