@@ -27,7 +27,11 @@ port, persistence off), with the same batch size everywhere:
   background (the lookup process, Redis holding the namespace's data), which the
   brackets do not.
 - ``packed_answers_per_s``: the same with column packs both ways (packed answers in,
-  ``question_columns`` packs out), over ``--packed-items`` items.
+  ``question_columns`` packs out), over ``--packed-items`` items, by a second worker on
+  its own namespace. The two drains take turns, one cycle each (both set up and warmed up
+  first, the idle one blocked on its empty streams), so that ``packed_over_plain`` compares
+  windows from the same minutes, not runs minutes apart on a machine whose speed drifts;
+  the plain drain's lookups go on through the packed windows too.
 - ``lookup_p99_ms``: HGET of random keys of ``{NS}:assign`` from another process, about
   500 per second, kept when they start inside the plain drain windows (the worker
   ingesting at full speed).
@@ -48,7 +52,9 @@ what Redis took), and ``*_per_cpu_s`` divides by it (the rate a dedicated core w
 give, if the worker is the bottleneck); ``worker_sys_part_*`` is the part of the
 worker's CPU spent in the kernel (mostly sending and receiving on the socket), and
 ``snapshots_in_windows`` counts the snapshots written in the drain windows (each a pause
-of the worker: 0.1-0.3 s at these sizes); ``worker_faults_per_answer`` counts the
+of the worker: 0.1-0.3 s at these sizes; the workers here snapshot on their timer every
+120 s, not every 30 as by default, so that the timer's snapshots stay out of windows a
+few seconds long: ``--snapshot-every``); ``worker_faults_per_answer`` counts the
 worker's minor page faults in them. ``redis_us_per_answer_*`` splits Redis's time by
 command (from INFO commandstats; ``exec`` includes the commands inside it, ``eval`` the
 appends its scripts make), ``loop_exec_ms_*`` is the mean time Redis spends inside one
@@ -91,6 +97,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from collections.abc import Generator, Iterator
 from typing import Any
 
 import hiredis
@@ -132,7 +139,7 @@ def fill_items(r: redis.Redis, stream: str, n: int, chunk: int = 50_000) -> None
 
 
 WORKER_ROOT = ROOT  # --worker-root: run the worker from another checkout (before/after)
-SNAPSHOT_EVERY = 30.0  # --snapshot-every: the worker's snapshot_every (its default)
+SNAPSHOT_EVERY = 120.0  # --snapshot-every: the workers' snapshot_every (theirs: 30)
 EXTRA_FLAGS: dict[str, Any] = {}  # --return-memory: keep_memory false
 
 
@@ -492,8 +499,33 @@ class WindowPerf:
 
 def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
                 cycles: int, lookups: bool, max_outstanding: int) -> dict[str, Any]:
+    """:func:`drain_cycles` run alone, from start to end."""
+    return interleaved(drain_cycles(url, ns, n, batch, pack, warmup, cycles, lookups,
+                                    max_outstanding))[0]
+
+
+def interleaved(*runs: Iterator[None]) -> list[dict[str, Any]]:
+    """Drive several :func:`drain_cycles` one cycle each in turn (each set up and warmed
+    up first), so that their windows alternate and share the machine's moods; the
+    results of each, in order."""
+    out: list[dict[str, Any] | None] = [None] * len(runs)
+    live = list(range(len(runs)))
+    while live:
+        for i in list(live):
+            try:
+                next(runs[i])
+            except StopIteration as done:
+                out[i] = done.value
+                live.remove(i)
+    return [o for o in out if o is not None]
+
+
+def drain_cycles(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
+                 cycles: int, lookups: bool, max_outstanding: int
+                 ) -> Generator[None, None, dict[str, Any]]:
     """The worker alone, as the bare loop is alone: it drains a backlog of answers to its
-    own questions while no adapter runs.
+    own questions while no adapter runs. A generator: it pauses after its set-up and
+    after each cycle (see :func:`interleaved`), and returns the figures.
 
     After a closed-loop warm-up, each cycle stops the worker (SIGSTOP), lets the adapter
     answer every question in the stream (about ``max_outstanding``: one per item in flight),
@@ -557,6 +589,7 @@ def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float
 
     raw_done, raw_busy, snapshots, faults = 0, 0.0, 0, 0
     for cycle in range(cycles + 1):  # the first one only fills the cap: not measured
+        yield  # (another run's cycle may come in between)
         backlog = pause_and_answer()
         if cycle and not pack:  # the bare loop, just before the window, the worker stopped
             got, secs = raw_window(url, batch, backlog)
@@ -765,10 +798,14 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--worker-root", default=ROOT,
                    help="checkout whose worker to run (default: this one); the rest of the "
                         "benchmark stays the same, for before/after comparisons")
-    p.add_argument("--snapshot-every", type=float, default=30.0,
-                   help="the worker's snapshot_every in seconds (default: its own default, "
-                        "30); a small value puts snapshots into every drain window, to "
-                        "measure what they cost")
+    p.add_argument("--snapshot-every", type=float, default=120.0,
+                   help="the workers' snapshot_every in seconds (default: 120, where the "
+                        "worker's own is 30: a pause of 0.1-0.3 s every 30 s is under 1%% "
+                        "of its time, but a few seconds of windows that hold one would "
+                        "count it ten times over, and with the drains taking turns, the "
+                        "plain worker's came round in its windows in 4 runs of 5); a small "
+                        "value puts snapshots into every drain window, to measure what "
+                        "they cost")
     p.add_argument("--return-memory", action="store_true",
                    help="run the worker with keep_memory false (freed memory goes back to "
                         "the kernel), to measure what keeping it is worth")
@@ -787,15 +824,17 @@ def main(argv: list[str] | None = None) -> int:
         with EmbeddedRedis("redis-server") as srv:
             pin(srv)
             raw = bench_raw(srv.url, args.batch, args.raw_entries)
-            plain = bench_drain(srv.url, "dw", args.drain_items, args.batch, False,
-                                args.warmup, args.cycles, True, args.drain_items // 2)
+            # with --packed, the plain and packed drains' windows alternate
+            runs = [drain_cycles(srv.url, "dw", args.drain_items, args.batch, False,
+                                 args.warmup, args.cycles, True, args.drain_items // 2)]
+            if args.packed:
+                runs.append(drain_cycles(srv.url, "dp", args.packed_items, args.batch, True,
+                                         args.warmup, args.cycles, False,
+                                         args.packed_items // 2))
+            plain, *rest = interleaved(*runs)
+            packed = rest[0] if rest else None
             raw2 = bench_raw(srv.url, args.batch, args.raw_entries)
             floor = busy_floor_lookups(srv.url, args.seconds)
-            packed = None
-            if args.packed:
-                redis.Redis.from_url(srv.url).flushall()
-                packed = bench_drain(srv.url, "dp", args.packed_items, args.batch, True,
-                                     args.warmup, args.cycles, False, args.packed_items // 2)
         raw_rate = (raw + raw2) / 2
         quick = {
             "batch": args.batch,
@@ -831,15 +870,16 @@ def main(argv: list[str] | None = None) -> int:
         raw = bench_raw(url, args.batch, args.raw_entries)
         idle = idle_lookups(url, args.seconds)
         floor = busy_floor_lookups(url, args.seconds)
-        plain = bench_drain(url, "dw", args.drain_items, args.batch, False, args.warmup,
-                            args.cycles, True, args.drain_items // 2)
+        # the plain and packed drains' windows alternate: the same minutes for both
+        plain, packed = interleaved(
+            drain_cycles(url, "dw", args.drain_items, args.batch, False, args.warmup,
+                         args.cycles, True, args.drain_items // 2),
+            drain_cycles(url, "dp", args.packed_items, args.batch, True, args.warmup,
+                         args.cycles, False, args.packed_items // 2))
         flush()
         loop = bench_loop(url, "bw", args.loop_items, args.batch, False, args.warmup,
                           args.seconds, True, 20 * args.batch)
         raw2 = bench_raw(url, args.batch, args.raw_entries)  # the load may drift: bracket
-        flush()
-        packed = bench_drain(url, "dp", args.packed_items, args.batch, True, args.warmup,
-                             args.cycles, False, args.packed_items // 2)
         flush()
         loop_packed = bench_loop(url, "bp", args.packed_items, args.batch, True, args.warmup,
                                  args.seconds, False, 50_000)
