@@ -589,7 +589,16 @@ def drain_cycles(url: str, ns: str, n: int, batch: int, pack: bool, warmup: floa
 
     raw_done, raw_busy, snapshots, faults = 0, 0.0, 0, 0
     for cycle in range(cycles + 1):  # the first one only fills the cap: not measured
-        yield  # (another run's cycle may come in between)
+        # another run's cycle may come in between: this worker and its lookups stand still
+        # meanwhile (idle, the worker would still expire and re-plan questions on its
+        # timers, and take CPU from the other run's windows)
+        for p in (proc, child):
+            if p is not None:
+                p.send_signal(signal.SIGSTOP)
+        yield
+        for p in (proc, child):
+            if p is not None:
+                p.send_signal(signal.SIGCONT)
         backlog = pause_and_answer()
         if cycle and not pack:  # the bare loop, just before the window, the worker stopped
             got, secs = raw_window(url, batch, backlog)
