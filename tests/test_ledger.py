@@ -339,3 +339,22 @@ def test_a_recount_slice_by_slice_equals_one_pass_to_rounding(seed: int, size: i
     for a, b in ((m1, m2), (f1, f2)):
         np.testing.assert_allclose(a.delta, b.delta, rtol=1e-12, atol=1e-14)
         np.testing.assert_allclose(a.answers, b.answers, rtol=1e-12)
+
+
+def test_answers_per_source_are_kept_as_the_answers_come_and_survive_a_reload() -> None:
+    """The per-source counts (the refits' source shares, ``status`` and the metrics) are
+    kept per batch, with sources that first answer late: always numpy's bincount over
+    every stored answer, before and after a snapshot round trip."""
+    r = np.random.default_rng(11)
+    led = Ledger()
+    led.add_items(50)
+    for k in range(1, 8):  # sources 0 .. 3k - 1 so far: new ones keep appearing
+        n = int(r.integers(0, 40))
+        a = r.integers(0, 50, n)
+        led.append_answers(a, (a + r.integers(1, 50, n)) % 50, r.integers(0, 3 * k, n),
+                           r.random(n) < 0.5)
+        want = np.bincount(led.answer("src"), minlength=30)
+        assert led.answers_per_source(30).tolist() == want.tolist()
+        assert led.answers_per_source(5).tolist() == want[:5].tolist()
+    again = Ledger.from_state(led.to_state())
+    assert again.answers_per_source(30).tolist() == led.answers_per_source(30).tolist()

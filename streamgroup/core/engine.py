@@ -230,7 +230,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         }
 
     def sources(self) -> list[dict[str, Any]]:
-        counts = np.bincount(self.ledger.answer("src"), minlength=len(self.source_names))
+        counts = self.ledger.answers_per_source(len(self.source_names))
         return [
             {"source": name, "answers": int(counts[j]), "delta": round(float(self.delta[j]), 6),
              "se": round(float(self.se[j]), 6)}

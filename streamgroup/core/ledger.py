@@ -66,6 +66,7 @@ class Ledger:
         self.items = Columns(_ITEM_FIELDS)
         self.answers = Columns({k: (dt, 0) for k, dt in _ANSWER_FIELDS.items()}, 64)
         self.pending = np.zeros(0, dtype=np.int64)  # answers with direction 0
+        self._per_source = np.zeros(0, dtype=np.int64)  # answers by source, kept current
 
     @property
     def n_items(self) -> int:
@@ -89,13 +90,21 @@ class Ledger:
         return [slice(lo, min(lo + size, n)) for lo in range(0, n, size)] or [slice(0, 0)]
 
     def answers_per_source(self, n_sources: int) -> np.ndarray:
-        """How many answers each source gave (slice by slice: no full-size temporary)."""
-        total = None
-        src = self.answer("src")
-        for rows in self.answer_slices():
-            total = running_sum(total, np.bincount(src[rows], minlength=n_sources))
-        assert total is not None
-        return total
+        """How many answers each of sources 0 to ``n_sources`` - 1 gave (a new array; kept
+        as the answers come, where a count over every answer took 10-50 ms at a few
+        million answers, each refit and each progress sample)."""
+        out = np.zeros(n_sources, dtype=np.int64)
+        k = min(n_sources, len(self._per_source))
+        out[:k] = self._per_source[:k]
+        return out
+
+    def _count_sources(self, src: np.ndarray) -> None:
+        got = np.bincount(src, minlength=len(self._per_source))
+        if len(got) > len(self._per_source):
+            got[:len(self._per_source)] += self._per_source
+            self._per_source = got
+        else:
+            self._per_source += got
 
     # -- growth ---------------------------------------------------------------
     def add_items(self, count: int) -> np.ndarray:
@@ -112,6 +121,7 @@ class Ledger:
         ans["a"][rows] = a
         ans["b"][rows] = b
         ans["src"][rows] = src
+        self._count_sources(ans["src"][rows])
         vote = np.array(same, dtype=np.int8)  # a copy: +1 same, -1 different
         vote *= 2
         vote -= 1
@@ -339,6 +349,9 @@ class Ledger:
         out.items.load_state(st["items"])
         out.answers.load_state(st["answers"])
         out.pending = np.frombuffer(st["pending"], dtype=np.int64).copy()
+        src = out.answer("src")
+        for rows in out.answer_slices():  # (slice by slice: no full-size temporary)
+            out._count_sources(src[rows])
         return out
 
     def nbytes(self) -> int:
