@@ -23,6 +23,8 @@ import numpy as np
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 sys.path.insert(0, ROOT)
 
+from bench_refit_growth import add_answers, placed_ledger  # noqa: E402  (same folder)
+
 from streamgroup.core import ledger as ledger_mod  # noqa: E402
 from streamgroup.core import noise  # noqa: E402
 
@@ -30,19 +32,8 @@ from streamgroup.core import noise  # noqa: E402
 def build(items: int, answers: int, sources: int, seed: int) -> ledger_mod.Ledger:
     """Every item placed, answers from sources right 80% of the time."""
     rng = np.random.default_rng(seed)
-    led = ledger_mod.Ledger()
-    led.add_items(items)
-    side = rng.integers(0, 2, items)
-    led.items["side"][:items] = side
-    led.items["llr"][:items] = (2 * side - 1) * 5.0
-    a = rng.integers(0, items, answers)
-    b = (a + rng.integers(1, items, answers)) % items
-    truth = side[a] == side[b]
-    same = np.where(rng.random(answers) < 0.8, truth, ~truth)
-    src = rng.integers(0, sources, answers)
-    for lo in range(0, answers, 20_000):
-        part = slice(lo, lo + 20_000)
-        led.append_answers(a[part], b[part], src[part], same[part])
+    led, side = placed_ledger(ledger_mod.Ledger, items, rng)
+    add_answers(led, side, rng, answers, sources)
     led.recompute(np.full(sources, 0.6), np.full(sources, 0.05))
     return led
 

@@ -27,6 +27,7 @@ import statistics
 import subprocess
 import sys
 import time
+from typing import Any
 
 import numpy as np
 
@@ -43,6 +44,33 @@ def thp_faults() -> int:
     return int(got.group(1)) if got else 0
 
 
+def placed_ledger(ledger_cls: Any, items: int, rng: np.random.Generator
+                  ) -> tuple[Any, np.ndarray]:
+    """A ledger of ``items`` items, every one placed (side 0 or 1, evidence 5 for it), and
+    their sides."""
+    led = ledger_cls()
+    led.add_items(items)
+    side = rng.integers(0, 2, items)
+    led.items["side"][:items] = side
+    led.items["llr"][:items] = (2 * side - 1) * 5.0
+    return led, side
+
+
+def add_answers(led: Any, side: np.ndarray, rng: np.random.Generator, count: int,
+                sources: int) -> None:
+    """``count`` answers between random items from ``sources`` sources, each right 80% of
+    the time, appended in batches of 20,000."""
+    items = len(side)
+    a = rng.integers(0, items, count)
+    b = (a + rng.integers(1, items, count)) % items
+    truth = side[a] == side[b]
+    same = np.where(rng.random(count) < 0.8, truth, ~truth)
+    src = rng.integers(0, sources, count)
+    for lo in range(0, count, 20_000):
+        part = slice(lo, lo + 20_000)
+        led.append_answers(a[part], b[part], src[part], same[part])
+
+
 def measure(items: int, start: int, refits: int, sources: int, seed: int) -> dict[str, float]:
     """In this process, with the code on sys.path: grow, refit, repeat."""
     from streamgroup.core import ledger as ledger_mod
@@ -52,22 +80,11 @@ def measure(items: int, start: int, refits: int, sources: int, seed: int) -> dic
 
     keep_memory()
     rng = np.random.default_rng(seed)
-    led = ledger_mod.Ledger()
-    led.add_items(items)
-    side = rng.integers(0, 2, items)
-    led.items["side"][:items] = side
-    led.items["llr"][:items] = (2 * side - 1) * 5.0
+    led, side = placed_ledger(ledger_mod.Ledger, items, rng)
     delta, se = np.full(sources, 0.6), np.full(sources, 0.05)
 
-    def grow(count: int) -> None:  # answers from sources right 80% of the time
-        a = rng.integers(0, items, count)
-        b = (a + rng.integers(1, items, count)) % items
-        truth = side[a] == side[b]
-        same = np.where(rng.random(count) < 0.8, truth, ~truth)
-        src = rng.integers(0, sources, count)
-        for lo in range(0, count, 20_000):
-            part = slice(lo, lo + 20_000)
-            led.append_answers(a[part], b[part], src[part], same[part])
+    def grow(count: int) -> None:
+        add_answers(led, side, rng, count, sources)
 
     grow(start)
     led.recompute(delta, se)
