@@ -29,9 +29,9 @@ port, persistence off), with the same batch size everywhere:
 - ``packed_answers_per_s``: the same with column packs both ways (packed answers in,
   ``question_columns`` packs out), over ``--packed-items`` items, by a second worker on
   its own namespace. The two drains take turns, one cycle each (both set up and warmed up
-  first, the idle one blocked on its empty streams), so that ``packed_over_plain`` compares
-  windows from the same minutes, not runs minutes apart on a machine whose speed drifts;
-  the plain drain's lookups go on through the packed windows too.
+  first; the idle one's worker and lookup process stopped, SIGSTOP, meanwhile), so that
+  ``packed_over_plain`` compares windows from the same minutes, not runs minutes apart on
+  a machine whose speed drifts.
 - ``lookup_p99_ms``: HGET of random keys of ``{NS}:assign`` from another process, about
   500 per second, kept when they start inside the plain drain windows (the worker
   ingesting at full speed).
@@ -495,13 +495,6 @@ class WindowPerf:
         self.ctl_fh.close()
         self.ack_fh.close()
         shutil.rmtree(self.dir, ignore_errors=True)
-
-
-def bench_drain(url: str, ns: str, n: int, batch: int, pack: bool, warmup: float,
-                cycles: int, lookups: bool, max_outstanding: int) -> dict[str, Any]:
-    """:func:`drain_cycles` run alone, from start to end."""
-    return interleaved(drain_cycles(url, ns, n, batch, pack, warmup, cycles, lookups,
-                                    max_outstanding))[0]
 
 
 def interleaved(*runs: Iterator[None]) -> list[dict[str, Any]]:

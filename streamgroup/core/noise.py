@@ -75,7 +75,7 @@ def _m_sums(ledger: Ledger, rows: slice, lean: np.ndarray, n_sources: int
     # r = lean[a] lean[b] is the expected relation sign (+1 same, -1 different); x r and
     # r r are built in chunks of answers whose temporaries stay in the cache (the counted
     # ones picked chunk by chunk: no full copy of a, b and same), elementwise (the same
-    # values), and each summed in one bincount (the same order of addition)
+    # values), and each summed in one bincount per slice
     size = len(a) if every else int(np.count_nonzero(counted))
     xr, rr = np.empty(size), np.empty(size)
     at = 0
