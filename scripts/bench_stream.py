@@ -140,7 +140,7 @@ def fill_items(r: redis.Redis, stream: str, n: int, chunk: int = 50_000) -> None
 
 WORKER_ROOT = ROOT  # --worker-root: run the worker from another checkout (before/after)
 SNAPSHOT_EVERY = 120.0  # --snapshot-every: the workers' snapshot_every (theirs: 30)
-EXTRA_FLAGS: dict[str, Any] = {}  # --return-memory: keep_memory false
+EXTRA_FLAGS: dict[str, Any] = {}  # --return-memory: keep_memory false; --worker-nice
 
 
 def spawn_worker(url: str, ns: str, **flags: Any) -> subprocess.Popen[bytes]:
@@ -811,6 +811,10 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--return-memory", action="store_true",
                    help="run the worker with keep_memory false (freed memory goes back to "
                         "the kernel), to measure what keeping it is worth")
+    p.add_argument("--worker-nice", type=int, default=0,
+                   help="the workers' niceness (setting nice, 0-19; default 0): at 19 a "
+                        "waking Redis or lookup process takes a core from the worker at "
+                        "once instead of waiting out its time slice")
     p.add_argument("--lookup-child", nargs=5, help=argparse.SUPPRESS)
     args = p.parse_args(argv)
     global WORKER_ROOT, SNAPSHOT_EVERY
@@ -818,6 +822,8 @@ def main(argv: list[str] | None = None) -> int:
     SNAPSHOT_EVERY = args.snapshot_every
     if args.return_memory:
         EXTRA_FLAGS["keep_memory"] = "false"
+    if args.worker_nice:  # only when asked: a --worker-root from before the setting runs
+        EXTRA_FLAGS["nice"] = args.worker_nice
     if args.lookup_child:
         url, ns, n, secs, rate = args.lookup_child
         lookup_child(url, ns, int(n), float(secs), float(rate))
@@ -840,6 +846,7 @@ def main(argv: list[str] | None = None) -> int:
         raw_rate = (raw + raw2) / 2
         quick = {
             "batch": args.batch,
+            "worker_nice": args.worker_nice,
             "raw_entries_per_s": round(raw_rate),
             "worker_entries_per_s": round(plain["rate"]),
             "ratio": round(plain["rate"] / raw_rate, 3),
@@ -889,6 +896,7 @@ def main(argv: list[str] | None = None) -> int:
     raw_rate = (raw + raw2) / 2
     result = {
         "batch": args.batch,
+        "worker_nice": args.worker_nice,
         "worker_root": WORKER_ROOT,
         "raw_entries_per_s": round(raw_rate),
         "raw_runs": [round(raw), round(raw2)],

@@ -55,6 +55,7 @@ class Settings:
     history_every: float = 5.0  # seconds between progress samples in {NS}:history
     lease_ttl: float = 15.0  # seconds a worker's hold on the namespace lasts unless renewed
     keep_memory: bool = True  # keep freed memory in the process (stream.worker.keep_memory)
+    nice: int = 0  # scheduling niceness the worker takes at start (stream.worker.tune_process)
 
     def __post_init__(self) -> None:
         def bad(name: str, why: str) -> ConfigError:
@@ -88,6 +89,9 @@ class Settings:
             v = getattr(self, name)
             if not (v > 0) or math.isinf(v):
                 raise bad(name, "must be a positive number of seconds")
+        if not (0 <= self.nice <= 19):
+            raise bad("nice", "must be in [0, 19] (the worker may lower its own priority, "
+                      "not raise it)")
         if self.block_ms < 0:
             raise bad("block_ms", "must be >= 0")
         if not (self.lease_ttl >= 2 * self.block_ms / 1000 and self.lease_ttl >= 0.1

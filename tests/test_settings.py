@@ -56,6 +56,8 @@ def test_config_path_from_environment(tmp_path: Path) -> None:
     ({"inflight": "0"}, {}, None, "inflight"),
     ({"metrics_addr": "nohost"}, {}, None, "metrics_addr"),
     ({"question_timeout": "inf"}, {}, None, "question_timeout"),
+    ({"nice": "-5"}, {}, None, "nice: must be in [0, 19]"),
+    ({}, {"STREAMGROUP_NICE": "20"}, None, "nice: must be in [0, 19]"),
     ({}, {}, "alpha = [1\n", "config file"),
 ])
 def test_bad_settings_are_one_clear_error(tmp_path: Path, flags, env, text, message) -> None:

@@ -764,6 +764,33 @@ def test_keep_memory_holds_what_a_batch_frees() -> None:
     assert out["give"][1] < 16, out
 
 
+_NICENESS = """
+import os, sys
+from streamgroup.settings import Settings
+from streamgroup.stream.worker import tune_process
+tune_process(Settings(nice=int(sys.argv[1]), keep_memory=False))
+with open("/proc/self/stat") as fh:  # the kernel's view: field 19, after the command name
+    print(os.nice(0), fh.read().rpartition(")")[2].split()[16])
+"""
+
+
+@pytest.mark.skipif(not os.path.exists("/proc/self/stat"), reason="reads /proc (Linux)")
+def test_the_worker_takes_the_niceness_it_is_given_and_never_lowers_it() -> None:
+    """Setting ``nice``: the process runs at that niceness, as the kernel sees it; one
+    started nicer than asked (here under nice(1) at 15) stays as nice as it was."""
+    base = os.nice(0)
+    if base > 7:
+        pytest.skip("the test runner itself runs nicer than 7")
+    seen = {}
+    for prefix, want in (([], "7"), (["nice", "-n", str(15 - base)], "0"), ([], "0")):
+        run = subprocess.run([*prefix, sys.executable, "-c", _NICENESS, want], check=True,
+                             capture_output=True, text=True)
+        seen[(bool(prefix), want)] = run.stdout.split()
+    assert seen[(False, "7")] == ["7", "7"]
+    assert seen[(True, "0")] == ["15", "15"]
+    assert seen[(False, "0")] == [str(base), str(base)]
+
+
 def test_worker_and_client_work_over_a_unix_socket(tmp_path: Path) -> None:
     """redis:// is not the only address the settings accept: with unix:// (Redis on the same
     host) the worker places items and the client reads them back, as over TCP."""

@@ -61,6 +61,9 @@ SETTING_HELP: dict[str, str] = {
     "history_every": "seconds between progress samples written to {NS}:history",
     "keep_memory": "keep memory the worker frees for its next batches (glibc): steadier "
                    "speed after pauses; the resident size stays at its high-water mark",
+    "nice": "scheduling niceness the worker takes at start, 0-19: on a host shared with "
+            "Redis or its readers, 19 lets them have a core first when they wake (lower "
+            "lookup latency), while the worker still uses every cycle they leave",
 }
 
 CONNECTION_SETTINGS = ("redis", "ns")

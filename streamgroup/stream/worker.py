@@ -26,6 +26,7 @@ import contextlib
 import ctypes
 import gc
 import operator
+import os
 import random
 import time
 from collections.abc import Callable, Sequence
@@ -101,10 +102,23 @@ def keep_memory() -> bool:
 
 
 def tune_process(settings: Settings) -> None:
-    """What a process that runs a worker sets once: the collector and the allocator."""
+    """What a process that runs a worker sets once: the collector, the allocator and its
+    niceness (raised to ``settings.nice``; never lowered, which would need privilege)."""
     tune_gc()
     if settings.keep_memory:
         keep_memory()
+    raise_niceness(settings.nice)
+
+
+def raise_niceness(target: int) -> int:
+    """Make this process at least as nice as ``target`` and return its niceness.
+
+    A busy worker at the default niceness holds a core for its whole time slice when
+    Redis or a reader wakes on the same host, and a lookup then waits for the slice to
+    end (milliseconds, see the README's Operations); at 19 the woken process runs at once.
+    """
+    current = os.nice(0)
+    return os.nice(target - current) if target > current else current
 
 
 def _answers_in(entry: Any) -> int:
