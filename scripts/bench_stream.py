@@ -61,9 +61,10 @@ appends its scripts make), ``loop_exec_ms_*`` is the mean time Redis spends insi
 batch transaction (lookups wait behind it), ``redis_slow_plain`` lists the commands that
 held Redis for a millisecond or more in the drain windows (SLOWLOG: count and longest,
 in ms), ``lookup_idle_p99_ms`` is the lookup latency of this machine with no worker
-running, and ``lookup_busy_floor_p99_ms`` the same while a spinning process keeps every
-core busy (Redis idle): what the machine alone adds at full load
-(``scripts/bench_machine.py`` shows its pauses).
+running, and ``lookup_busy_floor_p99_ms`` the same while a spinning process at niceness 0
+keeps every core busy (Redis idle): what a woken process waits for a core behind busy
+ones of its own weight (at niceness 19 the spinners leave 0.2-0.3 ms: ``--worker-nice``
+gives the worker that setting; ``scripts/bench_machine.py`` shows the host's own pauses).
 
 ``BENCH_PYSPY=PATH`` records a py-spy profile (raw format) of the worker over the drain
 cycles, to ``PATH`` and ``PATH-packed`` (py-spy is a tool to install by hand, not a
