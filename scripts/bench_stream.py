@@ -2,10 +2,13 @@
 
     python scripts/bench_stream.py --json                 # 1,000,000 items for the memory part
     python scripts/bench_stream.py --items 200000 --json  # a quicker run
-    python scripts/bench_stream.py --drain-only --batch 200 --json  # rate and lookups only
+    python scripts/bench_stream.py --drain-only --json    # rate and lookups only
+    python scripts/bench_stream.py --batch 500 --worker-nice 0 --json  # the other trade
 
 All figures come from one run on one private ``redis-server`` (started here on a free
-port, persistence off), with the same batch size everywhere:
+port, persistence off), with the same batch size everywhere (``--batch``, default 200, the
+worker's own default). The workers run at niceness 19 (``--worker-nice``), as the README
+advises for a worker that shares its host with Redis and the readers, as it does here:
 
 - ``raw_entries_per_s``: a bare XREADGROUP + XACK loop (redis-py, same client options as
   the worker) over pre-filled one-answer entries; it writes nothing else.
@@ -787,7 +790,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--drain-items", type=int, default=200_000,
                    help="items in the plain drain run (half of them in flight: the backlog)")
     p.add_argument("--cycles", type=int, default=4, help="drain windows per run")
-    p.add_argument("--batch", type=int, default=500)
+    p.add_argument("--batch", type=int, default=200,
+                   help="entries per XREADGROUP, for the worker and the bare loop alike "
+                        "(default: 200, the worker's own default)")
     p.add_argument("--warmup", type=float, default=6.0)
     p.add_argument("--seconds", type=float, default=10.0, help="measurement window per run")
     p.add_argument("--raw-entries", type=int, default=200_000)
@@ -812,10 +817,12 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--return-memory", action="store_true",
                    help="run the worker with keep_memory false (freed memory goes back to "
                         "the kernel), to measure what keeping it is worth")
-    p.add_argument("--worker-nice", type=int, default=0,
-                   help="the workers' niceness (setting nice, 0-19; default 0): at 19 a "
-                        "waking Redis or lookup process takes a core from the worker at "
-                        "once instead of waiting out its time slice")
+    p.add_argument("--worker-nice", type=int, default=19,
+                   help="the workers' niceness (setting nice, 0-19; default 19, as the "
+                        "README advises for a worker that shares its host with Redis and "
+                        "the readers, as here): a waking Redis or lookup process takes a "
+                        "core from the worker at once instead of waiting out its time "
+                        "slice; 0 for the worker's own default")
     p.add_argument("--lookup-child", nargs=5, help=argparse.SUPPRESS)
     args = p.parse_args(argv)
     global WORKER_ROOT, SNAPSHOT_EVERY

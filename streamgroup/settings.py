@@ -37,7 +37,7 @@ class Settings:
     question_timeout: float = 600.0  # seconds
     check_rate: float = 0.0
     seed: int = 0
-    batch: int = 500
+    batch: int = 200  # short transactions: a lookup waits behind one (README, Performance)
     block_ms: int = 1000
     consumer: str = ""  # empty: hostname-pid
     claim_idle: float = 60.0  # seconds before another consumer's pending entry is claimed
