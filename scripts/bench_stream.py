@@ -805,7 +805,9 @@ def main(argv: list[str] | None = None) -> int:
                         "and packed_over_plain from the same run)")
     p.add_argument("--worker-root", default=ROOT,
                    help="checkout whose worker to run (default: this one); the rest of the "
-                        "benchmark stays the same, for before/after comparisons")
+                        "benchmark stays the same, for before/after comparisons (a "
+                        "checkout from before 54afb21 has no setting nice: add "
+                        "--worker-nice 0, and run this one at 0 too)")
     p.add_argument("--snapshot-every", type=float, default=120.0,
                    help="the workers' snapshot_every in seconds (default: 120, where the "
                         "worker's own is 30: a pause of 0.1-0.3 s every 30 s is under 1%% "
@@ -830,7 +832,7 @@ def main(argv: list[str] | None = None) -> int:
     SNAPSHOT_EVERY = args.snapshot_every
     if args.return_memory:
         EXTRA_FLAGS["keep_memory"] = "false"
-    if args.worker_nice:  # only when asked: a --worker-root from before the setting runs
+    if args.worker_nice:  # (a --worker-root from before the setting, 54afb21, needs 0)
         EXTRA_FLAGS["nice"] = args.worker_nice
     if args.lookup_child:
         url, ns, n, secs, rate = args.lookup_child
