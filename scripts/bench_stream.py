@@ -779,6 +779,19 @@ def packed_fields(plain: dict[str, Any], packed: dict[str, Any]) -> dict[str, An
     }
 
 
+def drains(url: str, args: argparse.Namespace, packed: bool
+           ) -> tuple[dict[str, Any], dict[str, Any] | None]:
+    """The plain drain (with lookups) and, if ``packed``, the packed one, their windows
+    taking turns (the same minutes for both): their figures, the packed one's or None."""
+    runs = [drain_cycles(url, "dw", args.drain_items, args.batch, False, args.warmup,
+                         args.cycles, True, args.drain_items // 2)]
+    if packed:
+        runs.append(drain_cycles(url, "dp", args.packed_items, args.batch, True, args.warmup,
+                                 args.cycles, False, args.packed_items // 2))
+    plain, *rest = interleaved(*runs)
+    return plain, (rest[0] if rest else None)
+
+
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     p.add_argument("--items", type=int, default=1_000_000, help="items for the memory part")
@@ -842,15 +855,7 @@ def main(argv: list[str] | None = None) -> int:
         with EmbeddedRedis("redis-server") as srv:
             pin(srv)
             raw = bench_raw(srv.url, args.batch, args.raw_entries)
-            # with --packed, the plain and packed drains' windows alternate
-            runs = [drain_cycles(srv.url, "dw", args.drain_items, args.batch, False,
-                                 args.warmup, args.cycles, True, args.drain_items // 2)]
-            if args.packed:
-                runs.append(drain_cycles(srv.url, "dp", args.packed_items, args.batch, True,
-                                         args.warmup, args.cycles, False,
-                                         args.packed_items // 2))
-            plain, *rest = interleaved(*runs)
-            packed = rest[0] if rest else None
+            plain, packed = drains(srv.url, args, args.packed)
             raw2 = bench_raw(srv.url, args.batch, args.raw_entries)
             floor = busy_floor_lookups(srv.url, args.seconds)
         raw_rate = (raw + raw2) / 2
@@ -889,12 +894,8 @@ def main(argv: list[str] | None = None) -> int:
         raw = bench_raw(url, args.batch, args.raw_entries)
         idle = idle_lookups(url, args.seconds)
         floor = busy_floor_lookups(url, args.seconds)
-        # the plain and packed drains' windows alternate: the same minutes for both
-        plain, packed = interleaved(
-            drain_cycles(url, "dw", args.drain_items, args.batch, False, args.warmup,
-                         args.cycles, True, args.drain_items // 2),
-            drain_cycles(url, "dp", args.packed_items, args.batch, True, args.warmup,
-                         args.cycles, False, args.packed_items // 2))
+        plain, packed = drains(url, args, True)
+        assert packed is not None
         flush()
         loop = bench_loop(url, "bw", args.loop_items, args.batch, False, args.warmup,
                           args.seconds, True, 20 * args.batch)

@@ -107,8 +107,9 @@ def test_uniq_returns_what_np_unique_returns(values: list[int], dtype: type) -> 
 
 def test_the_filter_rules_out_nearly_every_new_key() -> None:
     """Two bits a key in one 64-bit word: at about 16 bits a key, fewer than 3% of keys
-    never offered pass the filter (the usual Bloom-filter formula (1 - exp(-k n / m))^k
-    gives 1.4% for k = 2 hashes without the blocking into words; one hash gave 5.8%)."""
+    never offered pass the filter (Bloom's false-positive formula (1 - exp(-k n / m))^k,
+    common practice, from memory, gives 1.4% for k = 2 hashes without the blocking into
+    words; one hash gave 5.8%)."""
     rng = np.random.default_rng(3)
     pairs = PairSet()
     keys = rng.integers(0, 1 << 62, 500_000, dtype=np.int64).astype(np.uint64)

@@ -110,15 +110,16 @@ def tune_process(settings: Settings) -> None:
     raise_niceness(settings.nice)
 
 
-def raise_niceness(target: int) -> int:
-    """Make this process at least as nice as ``target`` and return its niceness.
+def raise_niceness(target: int) -> None:
+    """Make this process at least as nice as ``target``.
 
     A busy worker at the default niceness holds a core for its whole time slice when
     Redis or a reader wakes on the same host, and a lookup then waits for the slice to
     end (milliseconds, see the README's Operations); at 19 the woken process runs at once.
     """
     current = os.nice(0)
-    return os.nice(target - current) if target > current else current
+    if target > current:
+        os.nice(target - current)
 
 
 def _answers_in(entry: Any) -> int:
