@@ -2,10 +2,12 @@
 
 Side by side in one run: ``PairSet`` as the engine uses it, and the same two sorted runs
 searched for every key (the design before the filter, kept here as the reference).
-Batches of 500 keys are the plain worker's, 20,000 the packed worker's; the set starts
-with ``--members`` random keys, and about one key in a hundred offered is a repeat.
+Batches of 200 keys are the plain worker's (its default batch), 20,000 the packed
+worker's (``--batches`` sets others); the set starts with ``--members`` random keys, and
+about one key in a hundred offered is a repeat.
 
     python scripts/bench_pairset.py --json
+    python scripts/bench_pairset.py --members 1000000 --batches 200 --json
 """
 
 from __future__ import annotations
@@ -75,13 +77,21 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--members", type=int, default=2_000_000, help="keys in the set at first")
     p.add_argument("--keys", type=int, default=3_000_000, help="keys offered per run")
     p.add_argument("--repeats", type=int, default=3, help="alternated runs of each")
+    p.add_argument("--batches", default="200,20000",
+                   help="keys per batch, comma-separated (default: 200,20000)")
     p.add_argument("--json", action="store_true")
     args = p.parse_args(argv)
     rng = np.random.default_rng(1)
     members = np.unique(rng.integers(0, 1 << 62, args.members, dtype=np.int64)
                         ).astype(np.uint64)
     report: dict[str, object] = {"members": len(members), "keys": args.keys}
-    for batch in (500, 20_000):
+    try:
+        sizes = [int(x) for x in args.batches.split(",")]
+    except ValueError:
+        p.error(f"--batches: comma-separated whole numbers, not {args.batches!r}")
+    if any(size < 1 for size in sizes):
+        p.error("--batches: every batch needs at least one key")
+    for batch in sizes:
         batches = offered(rng, members, batch, max(1, args.keys // batch))
         times: dict[str, list[float]] = {"filtered": [], "search_all": []}
         for _ in range(args.repeats):

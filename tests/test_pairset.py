@@ -12,12 +12,15 @@ from streamgroup.core.pairset import PairSet, _shift_for
 
 
 @settings(max_examples=150, deadline=None)
-@given(st.lists(st.lists(st.integers(0, 60), max_size=40), max_size=12), st.integers(0, 3))
+@given(st.lists(st.lists(st.integers(0, 60), max_size=40), max_size=12), st.integers(0, 3),
+       st.sampled_from([4096, 16, 1]))
 def test_add_new_marks_the_first_of_each_unseen_key(batches: list[list[int]],
-                                                     merge_every: int) -> None:
-    """Each key is new once, at its first appearance across all batches; merges in
-    between (the settled run) change nothing."""
+                                                     merge_every: int, fresh_max: int) -> None:
+    """Each key is new once, at its first appearance across all batches; where its members
+    are held (the fresh run joining the recent one when full, merges into the settled run
+    in between) changes nothing."""
     pairs = PairSet()
+    pairs.fresh_max = fresh_max
     seen: set[int] = set()
     for k, batch in enumerate(batches):
         want = []
@@ -28,9 +31,11 @@ def test_add_new_marks_the_first_of_each_unseen_key(batches: list[list[int]],
         assert got.dtype == bool and got.tolist() == want
         if merge_every and k % merge_every == 0:
             pairs.merge()
-        members = np.concatenate([pairs.sorted, pairs.recent])
+        members = np.concatenate([pairs.sorted, pairs.recent, pairs.fresh])
         assert sorted(members.tolist()) == sorted(seen) and len(pairs) == len(seen)
-        assert pairs.recent.tolist() == sorted(pairs.recent.tolist())
+        for run in (pairs.sorted, pairs.recent, pairs.fresh):
+            assert run.tolist() == sorted(set(run.tolist()))  # sorted, no member twice
+        assert len(pairs.fresh) <= fresh_max
 
 
 def test_the_filter_never_hides_a_member_as_the_set_grows() -> None:
