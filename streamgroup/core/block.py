@@ -134,13 +134,13 @@ class BlockMixin:
         self.pool = members[strong].astype(np.int64)
         self.pool_base = len(self.pool)
         self._committed(members[strong & ~pinned])
-        self.items["dirty"][members] = True
+        self._mark_dirty(members)
         self.phase = "run"
         self.cursor = 0  # every item is looked at once more
         if len(self.pool) == 0:  # nothing could be learned: a person must look
             st = self.items.view("status")
             st[(st != PLACED)] = UNRESOLVED
-            self.items["dirty"][: len(self.keys)] = True
+            self._mark_dirty(np.arange(len(self.keys)))
             return
         self._decide(np.arange(len(self.keys)), ordered=True)
 

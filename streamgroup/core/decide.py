@@ -69,7 +69,7 @@ class DecideMixin:
                 led["side"][flips] = 1 - led["side"][flips]
                 self.items["rev"][flips] += 1
                 self.revisions += len(flips)
-                self.items["dirty"][flips] = True
+                self._mark_dirty(flips)
             strong = todo[err <= alpha * ANCHOR_FACTOR]
             if len(strong):
                 self._grow_pool(strong)
@@ -82,7 +82,7 @@ class DecideMixin:
                 if not len(released):
                     return
                 todo = self.ledger.count(released, self.delta, self.se)
-                self.items["dirty"][todo] = True  # held answers now count: new evidence
+                self._mark_dirty(todo)  # held answers now count: new evidence
                 todo = uniq(todo)
             else:
                 return
@@ -135,7 +135,7 @@ class DecideMixin:
     def _committed(self, idx: np.ndarray) -> None:
         st = self.items["status"]
         st[idx] = PLACED
-        self.items["dirty"][idx] = True
+        self._mark_dirty(idx)
         first = self.items["first_ms"][idx]
         asked = first[first >= 0]
         self.latencies.extend(((self.now_ms - asked) / 1000.0).tolist())
@@ -149,7 +149,7 @@ class DecideMixin:
         stuck = idx[full & (st != PLACED) & (st != UNRESOLVED)]
         if len(stuck):
             self.items["status"][stuck] = UNRESOLVED
-            self.items["dirty"][stuck] = True
+            self._mark_dirty(stuck)
 
     def _grow_pool(self, idx: np.ndarray) -> None:
         if self.phase != "run":

@@ -49,7 +49,14 @@ from .codes import (
     WAITING,
     WHY_NAMES,
 )
-from .columns import ONE_I32, Columns, SortedQueue, first_occurrence, strictly_increasing
+from .columns import (
+    ONE_I32,
+    Columns,
+    SortedQueue,
+    first_occurrence,
+    strictly_increasing,
+    uniq,
+)
 from .decide import DecideMixin
 from .intake import Intake, IntakeMixin
 from .keyindex import KeyIndex, cache_size_for
@@ -116,6 +123,9 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         self.boundary = threshold(min(0.499, self.config.alpha * (1 + self.config.alpha_slack)))
         self.ledger = Ledger()
         self.items = Columns(_ITEM_FIELDS)
+        # the indices marked dirty since the last take_update_columns (with repeats): what
+        # it looks at, instead of every item's flag (a scan of all items in every batch)
+        self._dirty_marks: list[np.ndarray] = []
         self.q = Columns(_Q_FIELDS, 64)
         self.q_low = 0  # every qid below this is answered or expired
         self.keys = KeyIndex(cache_size_for(self.config.max_outstanding))
@@ -191,7 +201,8 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
     def take_update_columns(self) -> tuple[RecordColumns, list[int]]:
         """:meth:`take_updates` as columns: (changed records, positions of the decisions)."""
         it = self.items
-        dirty = it.view("dirty").nonzero()[0]
+        marks, self._dirty_marks = self._dirty_marks, []
+        dirty = uniq(np.concatenate(marks)) if marks else np.zeros(0, dtype=np.int64)
         out = self._record_columns(dirty)
         side, status = out.side, out.status
         seen = it["shown_status"][dirty]
@@ -281,7 +292,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
             self._pin(i, labels.index(side))
             out.append(APPLIED)
         if relabelled:
-            self.items["dirty"][: len(self.keys)] = True
+            self._mark_dirty(np.arange(len(self.keys)))
         return out
 
     def _register_many(self, keys: Sequence[str]) -> np.ndarray:
@@ -292,7 +303,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         if added:
             self.ledger.add_items(added)
             self.items.grow(added)
-            self.items["dirty"][start:] = True
+            self._mark_dirty(np.arange(start, len(self.keys)))
         return out
 
     def _pin(self, i: int, slot: int) -> None:
@@ -301,7 +312,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         led["pinned"][i] = True
         led["side"][i] = slot
         self.items["status"][i] = PLACED
-        self.items["dirty"][i] = True
+        self._mark_dirty(np.array([i]))
         if was != UNPLACED and was != slot:
             self.items["rev"][i] += 1
             self.revisions += 1
@@ -396,7 +407,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         targets = self.ledger.count(rows, self.delta, self.se)
         # only the items whose evidence moved have a new record (not a placed partner,
         # nor the two sides of an answer held until one of them is placed)
-        self.items["dirty"][targets] = True
+        self._mark_dirty(targets)
         if self.phase == "run":
             if self._counted() >= max(REFIT_MIN, self.counted_at_fit * (1 + REFIT_GROWTH)):
                 self._refit(current=True)
@@ -408,13 +419,18 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
     def _counted(self) -> int:
         return self.ledger.n_answers
 
+    def _mark_dirty(self, idx: np.ndarray) -> None:
+        """Items whose record must be published again (by take_update_columns)."""
+        self.items["dirty"][idx] = True
+        self._dirty_marks.append(np.asarray(idx, dtype=np.int64))
+
     def _touch(self, idx: np.ndarray) -> None:
         """Waiting items that are asked about, or answered, are asking now."""
         st = self.items["status"]
         waiting = idx[st[idx] == WAITING]
         if len(waiting):
             st[waiting] = ASKING
-            self.items["dirty"][waiting] = True
+            self._mark_dirty(waiting)
 
     def _close_questions(self, qn: np.ndarray, state: int) -> None:
         q = self.q

@@ -132,7 +132,7 @@ class QuestionsMixin:
         if np.count_nonzero(worn):
             out = cand[worn & (self.items["inflight"][cand] == 0)]
             self.items["status"][out] = UNRESOLVED
-            self.items["dirty"][out] = True
+            self._mark_dirty(out)
             cand = cand[~worn]
         need = planner.answers_still_needed(led["llr"][cand], self.boundary, self._best_step())
         each = planner.slots(cand, need, self.items["inflight"][cand], led["count"][cand],
