@@ -256,7 +256,7 @@ def test_updates_hold_every_item_whose_record_changed_and_no_other() -> None:
     (found from the marks, not by scanning every item's flag), through the cold start,
     pinned items, give-ups, a revision and a restore from a snapshot mid-run."""
     crowd = Crowd(300, sources=mixed_sources(8), seed=11)
-    eng = Engine(EngineConfig(max_outstanding=200, inflight=2, item_ceiling=12))
+    eng = Engine(EngineConfig(max_outstanding=200, inflight=2, item_ceiling=12, alpha=0.1))
     eng.add_items((k, None) for k in crowd.keys)
     eng.add_items([(crowd.keys[0], "north"), (crowd.keys[1], "south")])
     now, rounds, total = 0, 0, 0
@@ -279,6 +279,8 @@ def test_updates_hold_every_item_whose_record_changed_and_no_other() -> None:
         now += 1000
         rounds += 1
     assert eng.done() and total > len(crowd.keys)  # every item handed out at least once
+    stats = eng.stats()
+    assert stats["revisions"] >= 1 and stats["items"]["unresolved"] >= 1  # both paths taken
 
 
 def test_snapshot_formats_old_and_damaged() -> None:
