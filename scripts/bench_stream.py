@@ -69,6 +69,9 @@ keeps every core busy (Redis idle): what a woken process waits for a core behind
 ones of its own weight (at niceness 19 the spinners leave 0.2-0.3 ms: ``--worker-nice``
 gives the worker that setting; ``scripts/bench_machine.py`` shows the host's own pauses).
 
+``BENCH_TURNS=PATH`` runs every worker through ``scripts/turn_probe.py``, which writes
+the mean wall and CPU time of each phase of a full turn inside the drain windows to
+``PATH.NS.json`` when the worker stops (where a turn waits, and for what).
 ``BENCH_PYSPY=PATH`` records a py-spy profile (raw format) of the worker over the drain
 cycles, to ``PATH`` and ``PATH-packed`` (py-spy is a tool to install by hand, not a
 dependency); with ``BENCH_PYSPY_IDLE=1`` the samples include the time it waits (py-spy
@@ -148,8 +151,12 @@ EXTRA_FLAGS: dict[str, Any] = {}  # --return-memory: keep_memory false; --worker
 
 
 def spawn_worker(url: str, ns: str, **flags: Any) -> subprocess.Popen[bytes]:
-    args = [sys.executable, "-m", "streamgroup.stream.worker", "--redis", url, "--ns", ns,
-            "--consumer", "bench", "--metrics-addr", "", "--log-level", "warning"]
+    probe = os.environ.get("BENCH_TURNS")  # the worker's turns timed by phase (a tool)
+    args = ([sys.executable, os.path.join(ROOT, "scripts", "turn_probe.py"),
+             f"{probe}.{ns}.json", "--windows", "--"] if probe else
+            [sys.executable, "-m", "streamgroup.stream.worker"])
+    args += ["--redis", url, "--ns", ns, "--consumer", "bench", "--metrics-addr", "",
+             "--log-level", "warning"]
     for k, v in {**EXTRA_FLAGS, **flags}.items():
         args += ["--" + k.replace("_", "-"), str(v)]
     env = {**os.environ, "PYTHONPATH": WORKER_ROOT}
@@ -606,6 +613,8 @@ def drain_cycles(url: str, ns: str, n: int, batch: int, pack: bool, warmup: floa
         rc0 = redis_cpu(r)
         if perf is not None and cycle:
             perf.enable()
+        if cycle and os.environ.get("BENCH_TURNS"):
+            proc.send_signal(signal.SIGUSR1)  # turn_probe: count the turns from here
         (u0, s0), f0, t0 = cpu_split(proc.pid), minor_faults(proc.pid), time.monotonic()
         proc.send_signal(signal.SIGCONT)
         deadline = time.monotonic() + 300
@@ -615,6 +624,8 @@ def drain_cycles(url: str, ns: str, n: int, batch: int, pack: bool, warmup: floa
                                  f"{target} answer entries in 300 s")
             time.sleep(0.002)
         t1 = time.monotonic()
+        if cycle and os.environ.get("BENCH_TURNS"):
+            proc.send_signal(signal.SIGUSR2)  # turn_probe: up to here
         if perf is not None and cycle:
             perf.disable()
         if cycle == 0:
