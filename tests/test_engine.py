@@ -283,6 +283,23 @@ def test_updates_hold_every_item_whose_record_changed_and_no_other() -> None:
     assert stats["revisions"] >= 1 and stats["items"]["unresolved"] >= 1  # both paths taken
 
 
+def test_updates_never_taken_keep_a_bounded_list_of_marks() -> None:
+    """An engine whose updates nobody takes (a tool, a benchmark) holds marks in proportion
+    to its items, not to the answers it has seen, and still hands every change out."""
+    crowd = Crowd(200, sources=mixed_sources(6), seed=5)
+    eng = Engine(EngineConfig(max_outstanding=150, inflight=2))
+    eng.dirty_marks_floor = 100
+    eng.add_items((k, None) for k in crowd.keys)
+    now, most = 0, 0
+    for _ in range(60):
+        eng.add_answers(crowd.answer_now(eng.plan(now)), now)
+        now += 1000
+        most = max(most, eng._dirty_count)
+    assert 0 < most <= len(crowd.keys) + 2 * 150  # the items, plus the marks of one call
+    flagged = eng.items.view("dirty").nonzero()[0].tolist()
+    assert flagged and eng.take_update_columns()[0].at.tolist() == flagged
+
+
 def test_snapshot_formats_old_and_damaged() -> None:
     """A snapshot written before the zstd format (zlib, magic SGZ1) restores to the same
     engine; a damaged or foreign one is refused with a readable error, not a crash."""

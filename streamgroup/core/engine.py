@@ -115,6 +115,8 @@ def _check_config(c: EngineConfig) -> None:
 class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
     """Evidence, decisions, noise learning and planning for one two-group deployment."""
 
+    dirty_marks_floor = 1 << 16  # marks held at least before they are folded (see _mark_dirty)
+
     def __init__(self, config: EngineConfig | None = None) -> None:
         self.config = config or EngineConfig()
         _check_config(self.config)
@@ -124,8 +126,10 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         self.ledger = Ledger()
         self.items = Columns(_ITEM_FIELDS)
         # the indices marked dirty since the last take_update_columns (with repeats): what
-        # it looks at, instead of every item's flag (a scan of all items in every batch)
+        # it looks at, instead of every item's flag (a scan of all items in every batch);
+        # _dirty_count of them in all
         self._dirty_marks: list[np.ndarray] = []
+        self._dirty_count = 0
         self.q = Columns(_Q_FIELDS, 64)
         self.q_low = 0  # every qid below this is answered or expired
         self.keys = KeyIndex(cache_size_for(self.config.max_outstanding))
@@ -201,7 +205,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
     def take_update_columns(self) -> tuple[RecordColumns, list[int]]:
         """:meth:`take_updates` as columns: (changed records, positions of the decisions)."""
         it = self.items
-        marks, self._dirty_marks = self._dirty_marks, []
+        marks, self._dirty_marks, self._dirty_count = self._dirty_marks, [], 0
         dirty = uniq(np.concatenate(marks)) if marks else np.zeros(0, dtype=np.int64)
         out = self._record_columns(dirty)
         side, status = out.side, out.status
@@ -422,7 +426,18 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
     def _mark_dirty(self, idx: np.ndarray) -> None:
         """Items whose record must be published again (by take_update_columns)."""
         self.items["dirty"][idx] = True
-        self._dirty_marks.append(np.asarray(idx, dtype=np.int64))
+        idx = np.asarray(idx, dtype=np.int64)
+        self._dirty_marks.append(idx)
+        self._dirty_count += len(idx)
+        if self._dirty_count > max(len(self.keys), self.dirty_marks_floor):
+            # nobody took the updates for a while (tools, benchmarks): the marks are
+            # folded into the flags' own list, so they never outgrow the items
+            self._reset_dirty_marks()
+
+    def _reset_dirty_marks(self) -> None:
+        """The marks as the flags give them (after a restore, or when they grew large)."""
+        flagged = self.items.view("dirty").nonzero()[0]
+        self._dirty_marks, self._dirty_count = [flagged], len(flagged)
 
     def _touch(self, idx: np.ndarray) -> None:
         """Waiting items that are asked about, or answered, are asking now."""

@@ -103,7 +103,7 @@ def load(cls: type[Engine], data: bytes) -> Engine:
         eng.issued = [s0, s1, s2]
         eng.ledger = Ledger.from_state(st["ledger"])
         eng.items.load_state(st["items"])
-        eng._dirty_marks = [eng.items.view("dirty").nonzero()[0]]
+        eng._reset_dirty_marks()
         eng.q.load_state(st["q"])
         carry, eng.cursor = st["work"]
         eng.carry = SortedQueue(np.frombuffer(carry, dtype=np.int64))
