@@ -109,22 +109,36 @@ def _assign_tails(rc: RecordColumns, suffix: bytes = b""
     n = len(rc)
     prefixes = _prefixes(tuple(rc.labels), tuple(rc.status_names))
     code = (rc.side.astype(np.int64) + 1) * len(rc.status_names) + rc.status
-    # (constant bytes, then the column's values in this dtype), in map order
-    parts: list[tuple[bytes, np.ndarray | None, str]] = [(b"", rc.llr, ">f8")]
-    for key, col in (("answers", rc.answers), ("rev", rc.rev)):
-        marker, dtype = _uint_column(col)
-        parts.append((_KEYS[key] + marker, col, dtype))
-    parts.append((_KEYS["pinned"], np.where(rc.pinned, 0xC3, 0xC2), "u1"))  # true / false
-    parts.append((suffix, None, "V0"))
-    # a row is a record of a structured dtype: each constant a bytes field, each column a
-    # field of its msgpack dtype; a field is written whole per row (a column of uint8
-    # slices costs a strided copy per row and per byte width: about twice the time)
+    (a_marker, a_dtype), (r_marker, r_dtype) = _uint_column(rc.answers), _uint_column(rc.rev)
+    dtype, template = _tail_layout(a_marker, a_dtype, r_marker, r_dtype, suffix)
+    rows = np.empty(n, dtype=dtype)
+    rows[...] = template  # the constants of every row at once
+    rows["llr"] = rc.llr
+    rows["answers"] = rc.answers
+    rows["rev"] = rc.rev
+    rows["pinned"] = np.where(rc.pinned, 0xC3, 0xC2)  # true / false
+    return prefixes, code, rows.view(np.uint8).reshape(n, dtype.itemsize)
+
+
+@functools.lru_cache(maxsize=64)
+def _tail_layout(a_marker: bytes, a_dtype: str, r_marker: bytes, r_dtype: str,
+                 suffix: bytes) -> tuple[np.dtype, np.ndarray]:
+    """The structured dtype of a record's tail, and one row of it holding the constants.
+
+    A row is a record of a structured dtype: each constant a bytes field, each column a
+    field of its msgpack dtype (a field is written whole per row: a column of uint8 slices
+    costs a strided copy per row and per byte width, about twice the time). Built once per
+    kind of tail (the integer columns' widths), not per batch."""
+    parts: list[tuple[bytes, str | None, str]] = [
+        (b"", "llr", ">f8"), (_KEYS["answers"] + a_marker, "answers", a_dtype),
+        (_KEYS["rev"] + r_marker, "rev", r_dtype), (_KEYS["pinned"], "pinned", "u1"),
+        (suffix, None, "V0")]
     names: list[str] = []
     formats: list[str] = []
     offsets: list[int] = []
     consts: list[tuple[str, bytes]] = []
     at = 0
-    for i, (const, col, dtype) in enumerate(parts):
+    for i, (const, col, fmt) in enumerate(parts):
         if const:
             names.append(f"c{i}")
             formats.append(f"V{len(const)}")
@@ -132,18 +146,16 @@ def _assign_tails(rc: RecordColumns, suffix: bytes = b""
             consts.append((f"c{i}", const))
             at += len(const)
         if col is not None:
-            names.append(f"v{i}")
-            formats.append(dtype)
+            names.append(col)
+            formats.append(fmt)
             offsets.append(at)
-            at += np.dtype(dtype).itemsize
-    rows = np.empty(n, dtype=np.dtype({"names": names, "formats": formats,
-                                       "offsets": offsets, "itemsize": at}))
+            at += np.dtype(fmt).itemsize
+    dtype = np.dtype({"names": names, "formats": formats, "offsets": offsets, "itemsize": at})
+    template = np.zeros(1, dtype=dtype)
     for name, const in consts:
-        rows[name] = np.frombuffer(const, dtype=f"V{len(const)}")[0]
-    for i, (_, col, _) in enumerate(parts):
-        if col is not None:
-            rows[f"v{i}"] = col
-    return prefixes, code, rows.view(np.uint8).reshape(n, at)
+        template[name] = np.frombuffer(const, dtype=f"V{len(const)}")[0]
+    template.flags.writeable = False  # shared by every batch through the cache
+    return dtype, template
 
 
 def _assign_parts(rc: RecordColumns, suffix: bytes = b""
