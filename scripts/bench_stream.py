@@ -150,10 +150,12 @@ SNAPSHOT_EVERY = 120.0  # --snapshot-every: the workers' snapshot_every (theirs:
 EXTRA_FLAGS: dict[str, Any] = {}  # --return-memory: keep_memory false; --worker-nice
 
 
+TURNS = os.environ.get("BENCH_TURNS")  # the workers' turns timed by phase (turn_probe.py)
+
+
 def spawn_worker(url: str, ns: str, **flags: Any) -> subprocess.Popen[bytes]:
-    probe = os.environ.get("BENCH_TURNS")  # the worker's turns timed by phase (a tool)
     args = ([sys.executable, os.path.join(ROOT, "scripts", "turn_probe.py"),
-             f"{probe}.{ns}.json", "--windows", "--"] if probe else
+             f"{TURNS}.{ns}.json", "--windows", "--"] if TURNS else
             [sys.executable, "-m", "streamgroup.stream.worker"])
     args += ["--redis", url, "--ns", ns, "--consumer", "bench", "--metrics-addr", "",
              "--log-level", "warning"]
@@ -613,7 +615,7 @@ def drain_cycles(url: str, ns: str, n: int, batch: int, pack: bool, warmup: floa
         rc0 = redis_cpu(r)
         if perf is not None and cycle:
             perf.enable()
-        if cycle and os.environ.get("BENCH_TURNS"):
+        if cycle and TURNS:
             proc.send_signal(signal.SIGUSR1)  # turn_probe: count the turns from here
         (u0, s0), f0, t0 = cpu_split(proc.pid), minor_faults(proc.pid), time.monotonic()
         proc.send_signal(signal.SIGCONT)
@@ -624,7 +626,7 @@ def drain_cycles(url: str, ns: str, n: int, batch: int, pack: bool, warmup: floa
                                  f"{target} answer entries in 300 s")
             time.sleep(0.002)
         t1 = time.monotonic()
-        if cycle and os.environ.get("BENCH_TURNS"):
+        if cycle and TURNS:
             proc.send_signal(signal.SIGUSR2)  # turn_probe: up to here
         if perf is not None and cycle:
             perf.disable()

@@ -129,13 +129,13 @@ def union_sorted(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return merge_sorted(a, b if new.all() else b[new]).astype(np.int64, copy=False)
 
 
-def merge_sorted(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Two sorted runs as one (a new array): joined, then a stable sort, which finds the
-    two runs and merges them in linear time, in place (np.sort would copy the joined runs
+def merge_sorted(*runs: np.ndarray) -> np.ndarray:
+    """Sorted runs as one (a new array): joined, then a stable sort, which finds the
+    runs and merges them in linear time, in place (np.sort would copy the joined runs
     once more). It took a quarter to a third of the time of inserting ``b`` at its
     searchsorted positions for the pair set's recent run (0.25 against 0.95 ms for 20,000
     keys into 140,000; 4.4 against 15.6 ms for 280,000 into 2,000,000)."""
-    joined = np.concatenate([a, b])
+    joined = np.concatenate(runs)
     joined.sort(kind="stable")
     return joined
 
