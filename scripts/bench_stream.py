@@ -3,12 +3,15 @@
     python scripts/bench_stream.py --json                 # 1,000,000 items for the memory part
     python scripts/bench_stream.py --items 200000 --json  # a quicker run
     python scripts/bench_stream.py --drain-only --json    # rate and lookups only
-    python scripts/bench_stream.py --batch 500 --worker-nice 0 --json  # the other trade
+    python scripts/bench_stream.py --hold-ms 0 --batch 200 --json     # fixed batches of 200
 
 All figures come from one run on one private ``redis-server`` (started here on a free
-port, persistence off), with the same batch size everywhere (``--batch``, default 200, the
-worker's own default). The workers run at niceness 19 (``--worker-nice``), as the README
-advises for a worker that shares its host with Redis and the readers, as it does here:
+port, persistence off), with the same batch size everywhere (``--batch``, default 500, the
+worker's own default: the most entries one read asks for; the worker sizes its reads below
+it to keep each transaction near ``hold_ms`` of Redis's time, ``--hold-ms``, default the
+worker's own, and ``entries_per_read_plain`` says what it settled on). The workers run at
+niceness 19 (``--worker-nice``), as the README advises for a worker that shares its host
+with Redis and the readers, as it does here:
 
 - ``raw_entries_per_s``: a bare XREADGROUP + XACK loop (redis-py, same client options as
   the worker) over pre-filled one-answer entries; it writes nothing else.
@@ -117,6 +120,7 @@ sys.path.insert(0, ROOT)
 
 from streamgroup.embedded import EmbeddedRedis  # noqa: E402
 from streamgroup.keys import GROUP, Keys  # noqa: E402
+from streamgroup.settings import Settings  # noqa: E402
 from streamgroup.sim.crowd import Crowd  # noqa: E402
 from streamgroup.stream.commit import xadd_script  # noqa: E402
 
@@ -593,7 +597,7 @@ def drain_cycles(url: str, ns: str, n: int, batch: int, pack: bool, warmup: floa
                              "the backlog was made (run the benchmark in the foreground)")
         return answered
 
-    raw_done, raw_busy, snapshots, faults = 0, 0.0, 0, 0
+    raw_done, raw_busy, snapshots, faults, reads = 0, 0.0, 0, 0, 0
     for cycle in range(cycles + 1):  # the first one only fills the cap: not measured
         # another run's cycle may come in between: this worker and its lookups stand still
         # meanwhile (idle, the worker would still expire and re-plan questions on its
@@ -640,6 +644,8 @@ def drain_cycles(url: str, ns: str, n: int, batch: int, pack: bool, warmup: floa
         r_cpu += redis_cpu(r) - rc0
         for name, v in r.info("commandstats").items():
             usec[name.removeprefix("cmdstat_")] += v["usec"]
+            if name == "cmdstat_xreadgroup":
+                reads += v["calls"]
             if name == "cmdstat_rename":  # the snapshot script renames each one in place
                 snapshots += v["calls"]
         lat = r.info("latencystats")  # Redis's own percentiles of each command, this window
@@ -667,6 +673,8 @@ def drain_cycles(url: str, ns: str, n: int, batch: int, pack: bool, warmup: floa
         "raw_paired": raw_done / raw_busy if raw_busy else float("nan"),
         "answers_in_windows": done,
         "windows": len(windows),
+        # the answer entries one read brought on average (the worker sizes its reads)
+        "entries_per_read": done / reads if reads else float("nan"),
         "window_s": round(busy / len(windows), 3),
         # questions written in the windows (answered in the next fill) per answer consumed
         "questions_per_answer": (sum(backlogs[1:]) + last) / done,
@@ -816,9 +824,13 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--drain-items", type=int, default=200_000,
                    help="items in the plain drain run (half of them in flight: the backlog)")
     p.add_argument("--cycles", type=int, default=4, help="drain windows per run")
-    p.add_argument("--batch", type=int, default=200,
-                   help="entries per XREADGROUP, for the worker and the bare loop alike "
-                        "(default: 200, the worker's own default)")
+    p.add_argument("--batch", type=int, default=Settings.batch,
+                   help="entries per XREADGROUP, for the worker (at the most) and the bare "
+                        f"loop alike (default: {Settings.batch}, the worker's own default)")
+    p.add_argument("--hold-ms", type=float, default=None,
+                   help="the workers' hold_ms: Redis's time per batch transaction that "
+                        "sizes their reads (default: the worker's own, "
+                        f"{Settings.hold_ms}; 0: every read asks for --batch)"),
     p.add_argument("--warmup", type=float, default=6.0)
     p.add_argument("--seconds", type=float, default=10.0, help="measurement window per run")
     p.add_argument("--raw-entries", type=int, default=200_000)
@@ -858,6 +870,8 @@ def main(argv: list[str] | None = None) -> int:
     SNAPSHOT_EVERY = args.snapshot_every
     if args.return_memory:
         EXTRA_FLAGS["keep_memory"] = "false"
+    if args.hold_ms is not None:
+        EXTRA_FLAGS["hold_ms"] = args.hold_ms
     if args.worker_nice:  # (a --worker-root from before the setting, 54afb21, needs 0)
         EXTRA_FLAGS["nice"] = args.worker_nice
     if args.lookup_child:
@@ -875,6 +889,8 @@ def main(argv: list[str] | None = None) -> int:
         quick = {
             "batch": args.batch,
             "worker_nice": args.worker_nice,
+            "hold_ms": Settings.hold_ms if args.hold_ms is None else args.hold_ms,
+            "entries_per_read_plain": round(plain["entries_per_read"], 1),
             "raw_entries_per_s": round(raw_rate),
             "worker_entries_per_s": round(plain["rate"]),
             "ratio": round(plain["rate"] / raw_rate, 3),
@@ -921,6 +937,8 @@ def main(argv: list[str] | None = None) -> int:
     result = {
         "batch": args.batch,
         "worker_nice": args.worker_nice,
+        "hold_ms": Settings.hold_ms if args.hold_ms is None else args.hold_ms,
+        "entries_per_read_plain": round(plain["entries_per_read"], 1),
         "worker_root": WORKER_ROOT,
         "raw_entries_per_s": round(raw_rate),
         "raw_runs": [round(raw), round(raw2)],

@@ -120,6 +120,18 @@ def dashboard() -> dict[str, Any]:
             "properties": [{"id": "unit", "value": "ops"},
                            {"id": "custom.axisPlacement", "value": "right"}]}]}})
 
+    g.add("timeseries", "Redis time per batch transaction", [
+        (q(f"histogram_quantile({p}, sum by (le) "
+           "(rate(streamgroup_commit_redis_seconds_bucket{SEL}[5m])))"), f"p{int(p * 100)}")
+        for p in (0.5, 0.99)] + [
+        (q("avg(streamgroup_read_entries{SEL})"), "entries per read")], w=12, unit="s",
+        desc="Redis's own time inside one batch's MULTI/EXEC (a lookup waits behind it), "
+             "and the entries each read asks for, sized to keep it near hold_ms.",
+        extra={"fieldConfig": {"defaults": {"unit": "s"}, "overrides": [{
+            "matcher": {"id": "byName", "options": "entries per read"},
+            "properties": [{"id": "unit", "value": "short"},
+                           {"id": "custom.axisPlacement", "value": "right"}]}]}})
+
     g.row("Streams and Redis")
     g.add("timeseries", "Consumer lag", [
         (q("sum by (stream) (streamgroup_consumer_lag_entries{SEL})"), "{{stream}}")],

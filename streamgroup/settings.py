@@ -37,7 +37,8 @@ class Settings:
     question_timeout: float = 600.0  # seconds
     check_rate: float = 0.0
     seed: int = 0
-    batch: int = 200  # short transactions: a lookup waits behind one (README, Performance)
+    batch: int = 500  # entries per read at the most; hold_ms sizes each read below it
+    hold_ms: float = 0.8  # Redis's time per batch transaction to aim for (0: always `batch`)
     block_ms: int = 1000
     consumer: str = ""  # empty: hostname-pid
     claim_idle: float = 60.0  # seconds before another consumer's pending entry is claimed
@@ -92,6 +93,9 @@ class Settings:
         if not (0 <= self.nice <= 19):
             raise bad("nice", "must be in [0, 19] (the worker may lower its own priority, "
                       "not raise it)")
+        if not (self.hold_ms >= 0) or math.isinf(self.hold_ms):
+            raise bad("hold_ms", "must be 0 (reads of `batch` entries) or a positive number "
+                      "of milliseconds")
         if self.block_ms < 0:
             raise bad("block_ms", "must be >= 0")
         if not (self.lease_ttl >= 2 * self.block_ms / 1000 and self.lease_ttl >= 0.1

@@ -286,3 +286,32 @@ def test_question_column_packs_from_arrays_read_back_as_the_questions(redis_url:
     got = [q for _, f in entries for q in decode_questions(f)]
     assert [len(decode_questions(f)) for _, f in entries] == [MAX_PACK_ANSWERS, 500]
     assert got == [dict(zip(QUESTION_FIELDS, q, strict=True)) for q in qc.rows()]
+
+
+@pytest.mark.parametrize("parser", PARSERS)
+def test_a_timed_plan_reports_redis_time_inside_the_transaction(redis_url: str,
+                                                                parser: type) -> None:
+    """A timed plan starts and ends with TIME: receive() takes both replies off (the
+    lease's reply stays last, where the worker checks it) and keeps Redis's own time
+    between them, which covers a script that spins for milliseconds and stays within the
+    round trip measured around it."""
+    r = _client(redis_url, parser)
+    plan = build_commit(K, Caps(10, 10, 10), records=None, decisions=[], questions=None,
+                        dead=[], journal=b"j", snapshot=None, meta={"seq": 1}, acks={},
+                        group="g", pack_questions=False, lease=("ECHO", "lease"),
+                        timed=True)
+    names = plan.names()
+    assert names[0] == names[-1] == "TIME" and names[-2] == "ECHO"
+    spin = "local t = 0 for i = 1, 3000000 do t = t + i end return 1"
+    plan.commands.insert(1, ("EVAL", spin, 0))
+    t0 = time.perf_counter()
+    send(r, plan)
+    result = receive(r, plan)
+    wall_us = (time.perf_counter() - t0) * 1e6
+    assert result[0] == 1 and result[-1] == b"lease" and len(result) == plan.replies() - 2
+    assert plan.held_us is not None and 0.5 * wall_us <= plan.held_us <= wall_us
+    untimed = build_commit(K, Caps(10, 10, 10), records=None, decisions=[], questions=None,
+                           dead=[], journal=b"j", snapshot=None, meta={"seq": 2}, acks={},
+                           group="g", pack_questions=False, lease=("ECHO", "lease"))
+    assert "TIME" not in untimed.names()
+    assert execute(r, untimed)[-1] == b"lease" and untimed.held_us is None

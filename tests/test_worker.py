@@ -309,6 +309,30 @@ def test_state_without_epoch_is_refused(redis_url: str) -> None:
         Worker(settings(redis_url)).start()
 
 
+@pytest.mark.parametrize("hold_ms, reads", [(1000.0, 400), (0.001, 100)])
+def test_reads_are_sized_by_the_time_redis_spends_on_each_transaction(
+        redis_url: str, hold_ms: float, reads: int) -> None:
+    """With room to spare in the hold time, reads grow from 100 entries to the whole batch
+    (400); with none, they stay at 100. Each timed transaction is observed in the
+    metrics, and every item is registered either way."""
+    r = redis.Redis.from_url(redis_url)
+    push_items(r, [f"shard-{i:06d}" for i in range(4000)])
+    m = WorkerMetrics()
+    w = Worker(settings(redis_url, batch=400, hold_ms=hold_ms, snapshot_every=60), m)
+    assert w.run_until(lambda wk: r.xpending(K.items, GROUP)["pending"] == 0
+                       and r.xlen(K.items) == 0, 30)
+    assert len(assign(r)) == 4000
+    assert w.sizer.count == reads
+    assert m.registry.get_sample_value("streamgroup_read_entries") == reads
+    timed = m.registry.get_sample_value("streamgroup_commit_redis_seconds_count")
+    assert timed is not None and w.batches - 2 <= timed <= w.batches  # the first snapshots
+    if reads == 400:
+        assert w.batches <= 4000 / 400 + 4  # a few short reads while it grows
+    else:
+        assert w.batches >= 4000 / 100
+    w.close()
+
+
 def test_idle_entries_of_a_dead_consumer_are_claimed(redis_url: str) -> None:
     """Entries pending at a vanished consumer are claimed after claim_idle and applied."""
     r = redis.Redis.from_url(redis_url)

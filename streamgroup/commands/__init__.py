@@ -39,7 +39,10 @@ SETTING_HELP: dict[str, str] = {
     "question_timeout": "seconds before an unanswered question is asked again",
     "check_rate": "fraction of questions spent re-checking confident items, in [0, 0.5]",
     "seed": "seed of the planner's random choices (runs are reproducible for a seed)",
-    "batch": "entries read per XREADGROUP and committed per MULTI/EXEC",
+    "batch": "entries read per XREADGROUP and committed per MULTI/EXEC, at the most",
+    "hold_ms": "milliseconds of Redis's own time one batch transaction should take (a "
+               "lookup waits behind it): each read asks for as many entries as keep it "
+               "there, between min(batch, 100) and batch; 0 = always batch",
     "block_ms": "milliseconds one XREADGROUP waits for new entries",
     "consumer": "consumer name in the group (default: hostname-pid); keep it stable "
                 "across restarts so the worker rereads its own pending entries",

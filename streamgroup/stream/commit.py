@@ -15,6 +15,10 @@ Order inside the transaction (MULTI/EXEC: other clients see all of it or none of
 7. ``XACK`` of every consumed input entry, then a trim of the input stream (below);
 8. the renewal of the worker's lease on the namespace (``stream/lease.py``).
 
+A timed plan (``timed=True``) starts and ends with ``TIME``: :func:`receive` strips both
+replies and keeps their difference, Redis's own time inside the transaction, as
+``plan.held_us`` (the worker sizes its reads by it: ``stream/sizing.py``).
+
 Many entries of one stream (plain questions, decisions) are plain ``XADD`` commands
 formatted as RESP for the whole batch at once (:class:`Prepacked`; :func:`xadd_entries`
 in general, specialised from the columns for questions and decisions):
@@ -681,6 +685,8 @@ class CommitPlan:
     """The commands of one batch's transaction, built before anything is sent."""
 
     commands: list[Command | Prepacked] = field(default_factory=list)
+    timed: bool = False  # the first and last commands are TIME (see the module doc)
+    held_us: float | None = None  # set by receive() for a timed plan
 
     def __len__(self) -> int:
         return len(self.commands)
@@ -726,10 +732,12 @@ def build_commit(
     epoch: str | None = None,
     lease: Command | None = None,
     question_columns: bool = False,
+    timed: bool = False,
 ) -> CommitPlan:
     """All commands of a batch's MULTI/EXEC, in the documented order (``lease``, the
-    renewal of the worker's lease, goes last: its reply is the last of EXEC's)."""
-    cmds: list[Command | Prepacked] = []
+    renewal of the worker's lease, goes last: its reply is the last of EXEC's once
+    :func:`receive` has taken the ``TIME`` replies of a timed plan off both ends)."""
+    cmds: list[Command | Prepacked] = [_TIME] if timed else []
     if epoch is not None:
         cmds.append(("SET", keys.epoch, epoch))
     if records is not None and len(records):
@@ -780,7 +788,12 @@ def build_commit(
             cmds.append(("EVAL", TRIM_INPUT, 1, stream))
     if lease is not None:
         cmds.append(lease)
-    return CommitPlan(cmds)
+    if timed:
+        cmds.append(_TIME)
+    return CommitPlan(cmds, timed=timed)
+
+
+_TIME: Command = ("TIME",)
 
 
 def send(client: redis.Redis, plan: CommitPlan, first: Command | None = None) -> None:
@@ -860,7 +873,15 @@ def receive(client: redis.Redis, plan: CommitPlan) -> list[Any]:
         names = plan.names()
         bad = [f"{names[i]}: {x}" for i, x in enumerate(result) if isinstance(x, Exception)]
         raise CommitError(f"commands of the batch transaction failed: {bad or queued}")
+    if plan.timed:
+        plan.held_us = _elapsed_us(result[0], result[-1])
+        return list(result[1:-1])
     return list(result)
+
+
+def _elapsed_us(start: Sequence[bytes], end: Sequence[bytes]) -> float:
+    """Microseconds between two replies of TIME (seconds and microseconds, as text)."""
+    return (int(end[0]) - int(start[0])) * 1e6 + int(end[1]) - int(start[1])
 
 
 def _any_error(replies: Sequence[Any]) -> bool:

@@ -44,12 +44,17 @@ class Progress:
         self._revisions_seen = int(state.engine.stats()["revisions"])
 
     def batch_done(self, out: Outcome, seconds: float, now: float, state: WorkerState | None,
-                   client: redis.Redis | None) -> None:
+                   client: redis.Redis | None, redis_seconds: float | None = None,
+                   read_count: int | None = None) -> None:
         m = self.metrics
         if m is not None:
             c = out.counts
             m.batches.inc()
             m.batch_seconds.observe(seconds)
+            if redis_seconds is not None:
+                m.commit_redis_seconds.observe(redis_seconds)
+            if read_count is not None:
+                m.read_count.set(read_count)
             if c["applied"]:
                 m.answers_applied.inc(c["applied"])
             if c["items_applied"]:

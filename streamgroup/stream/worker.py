@@ -11,6 +11,8 @@ Overlap: batch k's transaction is sent after batch k+1 has been read and its rep
 after batch k+1 has been processed, so Redis executes one while Python computes the other
 (see ``_turn``). Batches stay bounded: at most ``batch`` entries per stream and at most
 ``max(batch, BATCH_ANSWERS)`` answers (big packs read together wait in a local backlog).
+Each read asks for as many entries as keep a batch's transaction near ``hold_ms`` of
+Redis's own time (``sizing.ReadSizer``, fed from the transactions' ``TIME`` replies).
 State: every committed batch appends one journal entry; every ``snapshot_every`` seconds,
 or as soon as the journal has outgrown the last snapshot, the batch's transaction writes a
 fresh snapshot and drops the journal instead.
@@ -45,6 +47,7 @@ from .batch import Outcome, process
 from .codec import pack_answer_count
 from .commit import Caps, CommitError, CommitPlan, build_commit, execute, receive, send
 from .progress import Progress
+from .sizing import ReadSizer
 from .state import WorkerState
 
 EXIT_OK, EXIT_ERROR, EXIT_STATE, EXIT_LEASE = 0, 1, 3, 4
@@ -206,6 +209,7 @@ class Worker:
         self._backlog: list[Any] = []  # answer entries read but not yet processed
         self._ahead: list[Any] | None = None  # the next batch, read ahead with a commit
         self._max_answers = max(settings.batch, BATCH_ANSWERS)
+        self.sizer = ReadSizer(settings.batch, settings.hold_ms)  # entries asked per read
         self._pending_first = True
         self._next_claim = 0.0
         self._next_plan = 0.0
@@ -489,7 +493,7 @@ class Worker:
                 reply, self._ahead = self._ahead, None
             else:
                 reply = read_streams(client, read_command(s.consumer_name, streams, ids,
-                                                          s.batch, block))
+                                                          self.sizer.count, block))
             for name, entries in reply:
                 if name == keys.items.encode():
                     items = entries
@@ -503,8 +507,9 @@ class Worker:
         ahead = (held is not None and n > 0 and not self._pending_first and not self._stop
                  and not self._backlog)
         if held is not None:
-            send(client, held.plan, first=read_command(s.consumer_name, streams, ">", s.batch,
-                                                       None) if ahead else None)
+            send(client, held.plan, first=read_command(s.consumer_name, streams, ">",
+                                                       self.sizer.count, None)
+                 if ahead else None)
         built = None
         if n == 0 and self._pending_first:
             self._pending_first = False
@@ -513,6 +518,7 @@ class Worker:
             out = process(self.state, keys.items, items, keys.answers, answers,
                           int(now * 1000))
             built = self._build(out, items, answers, now, t0)
+            built.entries = n
         if held is not None:
             try:
                 if ahead:  # the read went out before the transaction: its reply comes first
@@ -562,8 +568,12 @@ class Worker:
     def _done(self, held: _Held) -> None:
         self._next_plan = held.now + IDLE_PLAN_EVERY
         self.batches += 1
+        held_us = held.plan.held_us
+        self.sizer.observe(held.entries, held_us)
         self.progress.batch_done(held.out, time.perf_counter() - held.t0, self.clock(),
-                                 self.state, self.client)
+                                 self.state, self.client,
+                                 redis_seconds=None if held_us is None else held_us / 1e6,
+                                 read_count=self.sizer.count)
 
     def _worth_planning(self) -> bool:
         """With no input, plan() matters only while some item is still undecided."""
@@ -593,6 +603,7 @@ class Worker:
             group=GROUP, pack_questions=self.settings.pack_questions,
             question_columns=self.settings.question_columns,
             lease=lease.take_command(keys, self.holder, self._lease_ms),
+            timed=snapshot is None and not self.sizer.fixed,  # a snapshot's SET is no guide
         )
         return _Held(plan, out, now, t0)
 
@@ -643,6 +654,7 @@ class _Held:
     out: Outcome
     now: float
     t0: float
+    entries: int = 0  # input entries the batch consumed
 
 
 class _Stopped(Exception):
