@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from typing import Any
+from unittest import mock
 
 import hiredis
 import msgpack
@@ -30,12 +31,14 @@ from streamgroup.sim.crowd import Crowd
 from streamgroup.stream import commit
 from streamgroup.stream.commit import (
     DECISION_FIELDS,
+    Prepacked,
     assign_command,
     assign_value,
     assign_values,
     decision_entries,
     decision_values,
     xadd_entries,
+    xadd_script,
 )
 
 KEY = st.text(st.characters(blacklist_categories=("Cc", "Cs")), min_size=1, max_size=40)
@@ -268,6 +271,14 @@ def test_assign_values_decode_like_the_one_record_form(n: int, seed: int) -> Non
         rc.answers = rc.answers + extra
         assert decision_entries(key, 50, rc, pos) == xadd_entries(
             key, 50, DECISION_FIELDS, decision_values(rc, pos))
+        # and from DECISIONS_BY_SCRIPT rows on, one EVAL of the append script: what
+        # hiredis packs for the script, the key, the cap and the values
+        with mock.patch.object(commit, "DECISIONS_BY_SCRIPT", 1):
+            got_eval = decision_entries(key, 50, rc, pos)
+        if pos:
+            assert got_eval == [Prepacked("EVAL", hiredis.pack_command(
+                ("EVAL", xadd_script(DECISION_FIELDS), 1, key, 50,
+                 *decision_values(rc, pos))), 1)]
 
 
 @settings(max_examples=60, deadline=None)

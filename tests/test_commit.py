@@ -15,8 +15,9 @@ from hypothesis import strategies as st
 from redis._parsers import _HiredisParser, _RESP2Parser
 
 from streamgroup.client import decode_questions
+from streamgroup.core.codes import STATUS_NAMES
 from streamgroup.core.keyindex import KeyIndex
-from streamgroup.core.types import QuestionColumns
+from streamgroup.core.types import QuestionColumns, RecordColumns
 from streamgroup.keys import MAX_PACK_ANSWERS, QUESTION_FIELDS, Keys
 from streamgroup.settings import Settings
 from streamgroup.stream import commit, recovery
@@ -28,6 +29,7 @@ from streamgroup.stream.commit import (
     Prepacked,
     _question_entries,
     build_commit,
+    decision_values,
     execute,
     receive,
     resp_command,
@@ -315,3 +317,29 @@ def test_a_timed_plan_reports_redis_time_inside_the_transaction(redis_url: str,
                            group="g", pack_questions=False, lease=("ECHO", "lease"))
     assert "TIME" not in untimed.names()
     assert execute(r, untimed)[-1] == b"lease" and untimed.held_us is None
+
+
+def test_many_decisions_go_in_one_script_and_read_back_as_plain_entries(
+        redis_url: str) -> None:
+    """A batch with DECISIONS_BY_SCRIPT decisions or more appends them with one EVAL (one
+    reply of EXEC, the stream capped once); the entries hold what plain XADDs write."""
+    r = _client(redis_url)
+    n = commit.DECISIONS_BY_SCRIPT + 5
+    keys = [f"shard-{i:05d}" for i in range(n)]
+    rc = RecordColumns(keys, np.array([i % 3 - 1 for i in range(n)], dtype=np.int8),
+                       np.full(n, 2, dtype=np.int8), np.linspace(-9.5, 9.5, n),
+                       np.arange(n, dtype=np.int32) % 40, np.zeros(n, dtype=np.int32),
+                       np.zeros(n, dtype=bool), ("north", "south"), STATUS_NAMES)
+    for count, ns, name in ((n, "tmany", "EVAL"), (10, "tfew", "XADD")):
+        pos = list(range(count))
+        plan = build_commit(Keys(ns), Caps(10, 100_000, 10), records=rc, decisions=pos,
+                            questions=None, dead=[], journal=None, snapshot=None, meta={},
+                            acks={}, group="g", pack_questions=False)
+        stream = Keys(ns).decisions
+        assert plan.names()[:2] == ["HSET", name] and plan.names().count(name) == (
+            1 if name == "EVAL" else count)
+        execute(r, plan)
+        rows = decision_values(rc, pos)
+        want = [dict(zip(DECISION_FIELDS, map(str, rows[i:i + 6]), strict=True))
+                for i in range(0, len(rows), 6)]
+        assert _entries(r, stream) == want
