@@ -845,7 +845,8 @@ def main(argv: list[str] | None = None) -> int:
                    help="checkout whose worker to run (default: this one); the rest of the "
                         "benchmark stays the same, for before/after comparisons (a "
                         "checkout from before 54afb21 has no setting nice: add "
-                        "--worker-nice 0, and run this one at 0 too)")
+                        "--worker-nice 0, and run this one at 0 too; one from before "
+                        "e36b7e0 reads fixed batches of --batch, and has no hold_ms)")
     p.add_argument("--snapshot-every", type=float, default=120.0,
                    help="the workers' snapshot_every in seconds (default: 120, where the "
                         "worker's own is 30: a pause of 0.1-0.3 s every 30 s is under 1%% "
