@@ -179,6 +179,16 @@ def read_streams(client: redis.Redis, command: tuple[Any, ...]) -> list[Any]:
 _CONN_ERRORS = (redis.ConnectionError, redis.TimeoutError, ConnectionError, TimeoutError)
 
 
+def may_run_time(client: redis.Redis) -> bool:
+    """Whether Redis lets this user run TIME, which starts and ends every sized batch's
+    transaction (an ACL refusal there would abort the whole transaction)."""
+    try:
+        client.execute_command("TIME")
+    except redis.exceptions.NoPermissionError:
+        return False
+    return True
+
+
 def _transient(exc: BaseException) -> bool:
     """Worth a reload and a retry: a lost connection, or Redis refusing writes at maxmemory.
 
@@ -300,6 +310,11 @@ class Worker:
         client = recovery.connect(self.settings)
         client.ping()
         recovery.tune_socket(client)
+        if not self.sizer.fixed and not may_run_time(client):
+            self._log.warning("the Redis user may not run TIME (allow +time): every read "
+                              "asks for batch entries, not sized by hold_ms",
+                              batch=self.settings.batch)
+            self.sizer = ReadSizer(self.settings.batch, 0.0)
         try:
             self._take_lease(client)
             t0 = time.monotonic()
