@@ -21,9 +21,9 @@ def settle(sizer: ReadSizer, us_per_entry: float, fixed_us: float, rounds: int =
 def test_reads_settle_where_a_transaction_takes_the_hold_time(per: float, fixed: float,
                                                               hold_ms: float) -> None:
     """With Redis's time linear in the entries (a fixed part plus a cost per entry), the
-    count settles at the entries whose transaction takes hold_ms, (hold - fixed) / per
-    (the fixed point of count = hold / (time / count), solved by hand), clamped to
-    [min(most, 100), most]."""
+    count settles at the entries whose transaction takes hold_ms, (hold - fixed) / per,
+    clamped to [min(most, 100), most]: the fixed point of count = hold / (time / count)
+    for time = fixed + per x count (our own algebra; no outside source)."""
     sizer = ReadSizer(2000, hold_ms)
     want = max(LEAST, min(2000, (hold_ms * 1000 - fixed) / per))
     got = settle(sizer, per, fixed)

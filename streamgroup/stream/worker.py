@@ -533,7 +533,6 @@ class Worker:
             out = process(self.state, keys.items, items, keys.answers, answers,
                           int(now * 1000))
             built = self._build(out, items, answers, now, t0)
-            built.entries = n
         if held is not None:
             try:
                 if ahead:  # the read went out before the transaction: its reply comes first
@@ -620,7 +619,7 @@ class Worker:
             lease=lease.take_command(keys, self.holder, self._lease_ms),
             timed=snapshot is None and not self.sizer.fixed,  # a snapshot's SET is no guide
         )
-        return _Held(plan, out, now, t0)
+        return _Held(plan, out, now, t0, len(items) + len(answers))
 
     def _snapshot(self, now: float) -> tuple[bytes, int]:
         """The state's snapshot and the batch number it covers (what the commit's guard
@@ -669,7 +668,7 @@ class _Held:
     out: Outcome
     now: float
     t0: float
-    entries: int = 0  # input entries the batch consumed
+    entries: int  # input entries the batch consumed (what the read sizer weighs)
 
 
 class _Stopped(Exception):
