@@ -58,6 +58,8 @@ def test_config_path_from_environment(tmp_path: Path) -> None:
     ({"question_timeout": "inf"}, {}, None, "question_timeout"),
     ({"nice": "-5"}, {}, None, "nice: must be in [0, 19]"),
     ({}, {"STREAMGROUP_NICE": "20"}, None, "nice: must be in [0, 19]"),
+    ({"hold_ms": "-0.5"}, {}, None, "hold_ms: must be 0"),
+    ({}, {"STREAMGROUP_HOLD_MS": "nan"}, None, "hold_ms: must be 0"),
     ({}, {}, "alpha = [1\n", "config file"),
 ])
 def test_bad_settings_are_one_clear_error(tmp_path: Path, flags, env, text, message) -> None:
