@@ -846,7 +846,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--hold-ms", type=float, default=None,
                    help="the workers' hold_ms: Redis's time per batch transaction that "
                         "sizes their reads (default: the worker's own, "
-                        f"{Settings.hold_ms}; 0: every read asks for --batch)"),
+                        f"{Settings.hold_ms}; 0: every read asks for --batch)")
     p.add_argument("--warmup", type=float, default=6.0)
     p.add_argument("--seconds", type=float, default=10.0, help="measurement window per run")
     p.add_argument("--raw-entries", type=int, default=200_000)
