@@ -565,13 +565,9 @@ def decision_entries(key: str, cap: int, rc: RecordColumns,
     ``xadd_script(DECISION_FIELDS)`` instead (the module's docstring says why)."""
     n = len(positions)
     if n >= DECISIONS_BY_SCRIPT:
-        head = (f"*{5 + len(DECISION_FIELDS) * n}\r\n$4\r\nEVAL\r\n{_bulk(_DECISION_SCRIPT)}"
-                f"$1\r\n1\r\n{_bulk(key)}{_bulk(str(cap))}")
-        text = _decision_rows(_SCRIPT_LEADS, rc, positions)
-        body = text(len)
-        if not body.isascii():
-            body = text(_utf8_len)
-        return [Prepacked("EVAL", (head + body).encode(), 1)]
+        head = _resp_start(("EVAL", _DECISION_SCRIPT, 1, key, cap), len(DECISION_FIELDS) * n)
+        body = _measured(_decision_rows(_SCRIPT_LEADS, rc, positions))
+        return [Prepacked("EVAL", head + body.encode(), 1)]
     return _prepacked(key, cap, n, _decision_rows(_field_leads(key, DECISION_FIELDS), rc,
                                                   positions))
 
@@ -626,7 +622,8 @@ def _count_pieces(lead: str, counts: np.ndarray) -> list[str]:
 
 
 _LEAD_TABLE = max(MAX_KEY_BYTES, MAX_ID_BYTES) + 1  # lengths up to the longest key or id
-_SCRIPT_LEADS = tuple(("$", [f"${n}" for n in range(_LEAD_TABLE)]) for _ in DECISION_FIELDS)
+# a script's arguments have no field names: each lead is only the length's "$"
+_SCRIPT_LEADS = (("$", [f"${n}" for n in range(_LEAD_TABLE)]),) * len(DECISION_FIELDS)
 
 
 @functools.lru_cache(maxsize=64)
@@ -655,10 +652,8 @@ def _prepacked(key: str, cap: int, count: int,
     """The ``count`` XADDs that ``formatted(size)`` writes (``size``: a text's length in
     bytes, as RESP counts), as one :class:`Prepacked`, then the trim of ``key`` to ``cap``
     (0 = none)."""
-    text = formatted(len)  # lengths in characters are lengths in bytes while it is ASCII
-    if not text.isascii():
-        text = formatted(_utf8_len)
-    out: list[Command | Prepacked] = [Prepacked("XADD", text.encode(), count)]
+    out: list[Command | Prepacked] = [Prepacked("XADD", _measured(formatted).encode(),
+                                                 count)]
     if cap:
         out.append(("XTRIM", key, "MAXLEN", "~", cap))
     return out
@@ -666,6 +661,13 @@ def _prepacked(key: str, cap: int, count: int,
 
 _BULK_HEADS = {b"": [b"$%d" % n for n in range(4096)],
                b"\r\n": [b"$%d\r\n" % n for n in range(4096)]}
+
+
+def _measured(formatted: Callable[[Callable[[str], int]], str]) -> str:
+    """``formatted(size)`` with lengths in bytes, as RESP counts them: lengths in characters
+    while the text is ASCII (the usual case, measured once), in UTF-8 bytes otherwise."""
+    text = formatted(len)
+    return text if text.isascii() else formatted(_utf8_len)
 
 
 def _bulk_heads(args: Sequence[bytes], end: bytes = b"") -> list[bytes]:
