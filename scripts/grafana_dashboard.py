@@ -131,6 +131,12 @@ def dashboard() -> dict[str, Any]:
             "matcher": {"id": "byName", "options": "entries per read"},
             "properties": [{"id": "unit", "value": "short"},
                            {"id": "custom.axisPlacement", "value": "right"}]}]}})
+    g.add("timeseries", "Records waiting to be published", [
+        (q("max(streamgroup_records_unpublished{SEL})"), "records")], w=12, unit="short",
+        desc="Changed assignment records the next batches will publish: a wave of "
+             "decisions after the sources are re-learnt goes out a few hundred a batch, "
+             "so that no transaction holds Redis long. Above zero for more than a few "
+             "seconds means the worker is not keeping up.")
 
     g.row("Streams and Redis")
     g.add("timeseries", "Consumer lag", [

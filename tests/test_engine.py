@@ -283,6 +283,45 @@ def test_updates_hold_every_item_whose_record_changed_and_no_other() -> None:
     assert stats["revisions"] >= 1 and stats["items"]["unresolved"] >= 1  # both paths taken
 
 
+def test_limited_takes_hand_out_every_change_and_a_restore_takes_the_same() -> None:
+    """take_update_columns(limit): at most ``limit`` records a call, the lowest item numbers
+    first, the rest left for later calls (``unpublished``); every change is handed out in
+    the end, each record as it stands when taken; and an engine restored from a snapshot
+    taken with records still left takes the same ones, call after call."""
+    crowd = Crowd(400, sources=mixed_sources(8), seed=12)
+    eng = Engine(EngineConfig(max_outstanding=300, inflight=2, alpha=0.05))
+    eng.add_items((k, None) for k in crowd.keys)
+    now, handed = 0, set()
+    twin = None
+    for rnd in range(300):
+        if eng.done() and not eng.unpublished():
+            break
+        flagged = eng.items.view("dirty").nonzero()[0]
+        out, moved = eng.take_update_columns(limit=40)
+        assert out.at.tolist() == flagged[:40].tolist()  # the lowest numbers first
+        assert eng.unpublished() == max(0, len(flagged) - 40)  # exact after a take
+        assert eng.items.view("dirty").nonzero()[0].tolist() == flagged[40:].tolist()
+        for pos, i in enumerate(out.at.tolist()):  # each record as it stands now
+            assert out.rows([pos])[0] == eng.record(crowd.keys[i])
+        handed.update(out.at.tolist())
+        if twin is not None:
+            got, got_moved = twin.take_update_columns(limit=40)
+            assert got.at.tolist() == out.at.tolist() and got_moved == moved
+        if rnd == 5:
+            assert eng.unpublished()  # the snapshot below holds records not handed out
+            twin = Engine.restore(eng.snapshot())
+        qs = eng.plan(now)
+        answers = crowd.answer_now(qs)
+        eng.add_answers(answers, now)
+        if twin is not None:
+            assert twin.plan(now) == qs
+            twin.add_answers(answers, now)
+        now += 1000
+    assert eng.done() and not eng.unpublished()
+    assert handed == set(range(len(crowd.keys)))
+    assert not eng.items.view("dirty").any()
+
+
 def test_updates_never_taken_keep_a_bounded_list_of_marks() -> None:
     """An engine whose updates nobody takes (a tool, a benchmark) holds marks in proportion
     to its items, not to the answers it has seen, and still hands every change out."""

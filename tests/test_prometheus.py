@@ -95,6 +95,7 @@ def drive(m: WorkerMetrics) -> None:
     for why in ("seed", "place", "check"):
         m.questions_issued.labels(why=why).inc(3)
     m.questions_outstanding.set(6)
+    m.records_unpublished.set(0)
     m.set_items({"waiting": 10, "asking": 20, "placed": 8, "unresolved": 2})
     m.spend.set(5)
     m.budget.set(1000)

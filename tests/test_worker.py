@@ -24,6 +24,7 @@ from streamgroup.keys import GROUP, Keys
 from streamgroup.serve.metrics import WorkerMetrics
 from streamgroup.settings import Settings
 from streamgroup.sim.crowd import Crowd
+from streamgroup.stream import batch as batch_mod
 from streamgroup.stream.adapter import SimAdapter
 from streamgroup.stream.codec import answer_fields, pack_answer_columns, pack_answers
 from streamgroup.stream.recovery import load_state
@@ -274,6 +275,69 @@ def test_restart_resumes_exactly_from_snapshot_and_journal(redis_url: str) -> No
     assert (w2.state.engine.stats(), w2.state.seq, dict(w2.state.counters)) == before
     for col in ("shown_side", "shown_status"):
         assert (w2.state.engine.items.view(col) == w.state.engine.items.view(col)).all()
+    w2.close()
+
+
+def test_a_wave_of_changed_records_goes_out_over_several_batches(redis_url: str,
+                                                                monkeypatch) -> None:
+    """With a batch allowed to publish 7 records (in service: 256 beyond what its own
+    input changes, so that the wave of decisions after a refit does not hold Redis for
+    tens of ms), the worker publishes the rest in the batches after, in empty batches
+    when no input comes, and across a restart that replays the journal (which must take
+    the same records as the batches published): in the end every item's record in
+    {NS}:assign is the engine's, and no batch published more than 7."""
+    import streamgroup.stream.worker as worker_mod
+    from streamgroup.stream.commit import assign_value
+
+    monkeypatch.setattr(batch_mod, "publish_limit", lambda answers, items, questions: 7)
+    published: list[int] = []
+    real_process = worker_mod.process
+
+    def process(*args: Any, **kw: Any) -> Any:
+        out = real_process(*args, **kw)
+        published.append(len(out.records))
+        return out
+
+    monkeypatch.setattr(worker_mod, "process", process)
+    r = redis.Redis.from_url(redis_url)
+    crowd = Crowd(180, delta=0.6, sources=[0.6] * 10, seed=8)
+    labelled, unlabelled = crowd.keys[:120], crowd.keys[120:]
+    pipe = r.pipeline(transaction=False)
+    for k in labelled:  # placed as they come: nothing left to ask, nothing to plan
+        pipe.xadd(K.items, {"key": k, "side": crowd.label_of(k)})
+    pipe.execute()
+    slow_snapshots = dict(batch=50, snapshot_every=60)  # a restart replays the journal
+    w = Worker(settings(redis_url, **slow_snapshots))
+    assert w.run_until(lambda wk: wk.state is not None and wk.state.seq >= 3, 30)
+    assert w.state.engine.done()
+    w.close()  # the items' records are not all out: the next worker must publish them
+    assert 0 < r.hlen(K.assign) < len(labelled)
+
+    def same_records(eng: Any, keys: list[str]) -> None:
+        stored = r.hgetall(K.assign)
+        assert len(stored) == len(keys)
+        for k in keys:  # (llr as it was at the record's last change: a refit that
+            # moves every item's evidence a little does not republish every record)
+            got, want = msgpack.unpackb(stored[k.encode()]), msgpack.unpackb(
+                assign_value(eng.record(k)))
+            assert {**got, "llr": 0} == {**want, "llr": 0}, (k, got, want)
+
+    w2 = Worker(settings(redis_url, **slow_snapshots))  # no input now: empty batches
+    assert w2.run_until(lambda wk: wk.state is not None and not wk.state.engine.unpublished()
+                        and wk._held is None, 30)
+    same_records(w2.state.engine, labelled)
+    push_items(r, unlabelled)  # then items to ask about, with decisions to publish
+    adapter = SimAdapter(r, NS, crowd)
+
+    def all_out(wk: Worker) -> bool:
+        adapter.step()
+        return (wk.state is not None and len(wk.state.engine) == len(crowd.keys)
+                and wk.state.engine.done() and not wk.state.engine.unpublished()
+                and wk._held is None)
+
+    assert w2.run_until(all_out, 60)
+    same_records(w2.state.engine, crowd.keys)
+    assert max(published) == 7 and len(published) > len(crowd.keys) // 7
     w2.close()
 
 

@@ -202,11 +202,19 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         cols, moved = self.take_update_columns()
         return cols.rows(), cols.rows(moved)
 
-    def take_update_columns(self) -> tuple[RecordColumns, list[int]]:
-        """:meth:`take_updates` as columns: (changed records, positions of the decisions)."""
+    def take_update_columns(self, limit: int = 0) -> tuple[RecordColumns, list[int]]:
+        """:meth:`take_updates` as columns: (changed records, positions of the decisions).
+
+        ``limit`` > 0 takes at most that many records, those of the lowest item numbers;
+        the others stay for the next calls (:meth:`unpublished`). Which ones are taken
+        depends only on the set of changed items, which a snapshot keeps, so a replay
+        takes the same ones."""
         it = self.items
         marks, self._dirty_marks, self._dirty_count = self._dirty_marks, [], 0
         dirty = uniq(np.concatenate(marks)) if marks else np.zeros(0, dtype=np.int64)
+        if 0 < limit < len(dirty):
+            dirty, rest = dirty[:limit], dirty[limit:]
+            self._dirty_marks, self._dirty_count = [rest], len(rest)
         out = self._record_columns(dirty)
         side, status = out.side, out.status
         seen = it["shown_status"][dirty]
@@ -216,6 +224,11 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         it["shown_side"][dirty] = side
         it["shown_status"][dirty] = status
         return out, moved.nonzero()[0].tolist()
+
+    def unpublished(self) -> int:
+        """Changed records not taken yet (see take_update_columns): 0 when none; right
+        after a take, exactly how many it left (before, marks may repeat an item)."""
+        return self._dirty_count
 
     def take_latencies(self) -> list[float]:
         """Seconds from first question to commit, for items committed since the last call."""

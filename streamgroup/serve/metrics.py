@@ -57,6 +57,10 @@ class WorkerMetrics:
             "(lookups wait behind it; snapshot batches not included).",
             buckets=(0.0001, 0.00025, 0.0005, 0.00075, 0.001, 0.0015, 0.002, 0.003, 0.005,
                      0.01, float("inf")), registry=r)
+        self.records_unpublished = Gauge(
+            p + "records_unpublished", "Changed assignment records waiting for the next "
+            "batches (a wave of decisions after the sources are re-learnt goes out a few "
+            "hundred a batch).", registry=r)
         self.read_count = Gauge(p + "read_entries", "Entries the worker asks for per read "
                                 "(sized so that a transaction takes about hold_ms).",
                                 registry=r)

@@ -102,6 +102,7 @@ class Progress:
         m.set_items(st["items"])
         m.spend.set(st["spend"])
         m.questions_outstanding.set(st["outstanding"])
+        m.records_unpublished.set(state.engine.unpublished())
         m.noise_pooled.set(st["pooled_delta"])
         rev = int(st["revisions"])
         if rev > self._revisions_seen:

@@ -497,7 +497,10 @@ class Worker:
             ids, block = "0", None
         else:
             ids = ">"
-            block = None if (self._held is not None or self._stop) else s.block_ms
+            # (records left to publish: a read that finds nothing returns at once, and the
+            # empty batch after it publishes them)
+            block = None if (self._held is not None or self._stop
+                             or self.state.engine.unpublished()) else s.block_ms
         t0 = time.perf_counter()
         items: list[Any] = []
         answers: list[Any] = []
@@ -528,7 +531,8 @@ class Worker:
         built = None
         if n == 0 and self._pending_first:
             self._pending_first = False
-        elif n or (now >= self._next_plan and self._worth_planning()):
+        elif (n or self.state.engine.unpublished()
+              or (now >= self._next_plan and self._worth_planning())):
             now = self.clock()
             out = process(self.state, keys.items, items, keys.answers, answers,
                           int(now * 1000))
