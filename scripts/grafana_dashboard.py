@@ -134,7 +134,7 @@ def dashboard() -> dict[str, Any]:
     g.add("timeseries", "Records waiting to be published", [
         (q("max(streamgroup_records_unpublished{SEL})"), "records")], w=12, unit="short",
         desc="Changed assignment records the next batches will publish: a wave of "
-             "decisions after the sources are re-learnt goes out a few hundred a batch, "
+             "decisions after the sources are re-learnt goes out over several batches, "
              "so that no transaction holds Redis long. Above zero for more than a few "
              "seconds means the worker is not keeping up.")
 

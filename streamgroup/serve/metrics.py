@@ -59,8 +59,8 @@ class WorkerMetrics:
                      0.01, float("inf")), registry=r)
         self.records_unpublished = Gauge(
             p + "records_unpublished", "Changed assignment records waiting for the next "
-            "batches (a wave of decisions after the sources are re-learnt goes out a few "
-            "hundred a batch).", registry=r)
+            "batches (a wave of decisions after the sources are re-learnt goes out over "
+            "several batches).", registry=r)
         self.read_count = Gauge(p + "read_entries", "Entries the worker asks for per read "
                                 "(sized so that a transaction takes about hold_ms).",
                                 registry=r)

@@ -199,20 +199,21 @@ def _decoded(out: Outcome, kind: str, stream: str, entries: list[Entry], dec: De
 # Records a batch publishes beyond what its own input can change. After the sources are
 # re-learnt, the engine looks at every item again and may decide thousands at once (8,700
 # decisions in one batch of a plain drain over 200,000 items, whose transaction held
-# Redis for 39 ms while lookups waited); with this bound such a wave goes out a few hundred
-# records a batch instead, a fraction of a second late, and transactions stay short.
+# Redis for 39 ms while lookups waited); with this bound such a wave goes out about a
+# thousand records a batch instead (plain batches), a fraction of a second late.
 PUBLISH_EXTRA = 256
 
 
 def publish_limit(answers: int, items: int, questions: int) -> int:
-    """The most records a batch publishes: about as many as its own input changes (an
-    answer changes the record of the item it counts for, mostly one; a question that of
-    the item asked about, mostly one already counted; an item its own), plus
-    ``PUBLISH_EXTRA`` left over from earlier batches. Where a batch changes more (answers
-    counting for both their items), the rest waits for the next batches; the records left
-    over are a set of items, so they never outnumber the items, and every batch takes at
-    least ``PUBLISH_EXTRA`` of them."""
-    return PUBLISH_EXTRA + max(answers, questions) + items
+    """The most records a batch publishes: every record its own input can change (an
+    answer changes those of its two items at most, a question those of its two, an item
+    its own), plus ``PUBLISH_EXTRA`` left over from earlier batches. The records left over
+    are a set of items, and each batch takes at least ``PUBLISH_EXTRA`` more than its own
+    input can add to it, so once a wave is over the set shrinks by that much a batch at
+    least: no record waits for long, however the items are numbered. (A run-phase batch
+    changes about 1.1 records a question or answer, whichever are more: the rest of the
+    bound goes to what earlier batches left.)"""
+    return PUBLISH_EXTRA + 2 * (answers + questions) + items
 
 
 def process(state: WorkerState, items_stream: str, items: list[Entry],
