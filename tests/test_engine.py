@@ -283,41 +283,62 @@ def test_updates_hold_every_item_whose_record_changed_and_no_other() -> None:
     assert stats["revisions"] >= 1 and stats["items"]["unresolved"] >= 1  # both paths taken
 
 
-def test_limited_takes_hand_out_every_change_and_a_restore_takes_the_same() -> None:
-    """take_update_columns(limit): at most ``limit`` records a call, the lowest item numbers
-    first, the rest left for later calls (``unpublished``); every change is handed out in
-    the end, each record as it stands when taken; and an engine restored from a snapshot
-    taken with records still left takes the same ones, call after call."""
-    crowd = Crowd(400, sources=mixed_sources(8), seed=12)
-    eng = Engine(EngineConfig(max_outstanding=300, inflight=2, alpha=0.05))
+def test_a_refits_wave_of_records_is_handed_out_a_few_at_a_time() -> None:
+    """take_update_columns(extra): the records a refit's look at every item changes are
+    left over, and each take hands out every other change plus at most ``extra`` of
+    those left over, so what is left shrinks by ``extra`` a round; every change is handed
+    out in the end, each record as it stands when taken; and an engine restored from a
+    snapshot taken with records left over takes the same ones, round after round. (In
+    service a wave is thousands of records; this small crowd's refits move few, so one
+    wave of every item is made the way a refit's look makes it.)"""
+    crowd = Crowd(2000, sources=mixed_sources(20), seed=12)
+    eng = Engine(EngineConfig(max_outstanding=300, inflight=2, alpha=1e-2))
     eng.add_items((k, None) for k in crowd.keys)
-    now, handed = 0, set()
-    twin = None
-    for rnd in range(300):
+    now, handed, twin = 0, set(), None
+    waves = []
+    real_decide = eng._decide
+
+    def decide(touched: np.ndarray, ordered: bool = False) -> None:
+        if ordered and eng.phase == "run":  # (the look at every item after a refit)
+            waves.append(eng._marking_later)
+        real_decide(touched, ordered)
+
+    eng._decide = decide  # type: ignore[method-assign]
+    for rnd in range(2000):
         if eng.done() and not eng.unpublished():
             break
-        flagged = eng.items.view("dirty").nonzero()[0]
-        out, moved = eng.take_update_columns(limit=40)
-        assert out.at.tolist() == flagged[:40].tolist()  # the lowest numbers first
-        assert eng.unpublished() == max(0, len(flagged) - 40)  # exact after a take
-        assert eng.items.view("dirty").nonzero()[0].tolist() == flagged[40:].tolist()
-        for pos, i in enumerate(out.at.tolist()):  # each record as it stands now
-            assert out.rows([pos])[0] == eng.record(crowd.keys[i])
-        handed.update(out.at.tolist())
-        if twin is not None:
-            got, got_moved = twin.take_update_columns(limit=40)
-            assert got.at.tolist() == out.at.tolist() and got_moved == moved
-        if rnd == 5:
-            assert eng.unpublished()  # the snapshot below holds records not handed out
-            twin = Engine.restore(eng.snapshot())
+        if rnd == 30:  # a wave: every item's record left over
+            eng._marking_later = True
+            eng._mark_dirty(np.arange(len(crowd.keys)))
+            eng._marking_later = False
+        before = eng.unpublished() if rnd > 30 else None
+        refits = len(waves)
         qs = eng.plan(now)
         answers = crowd.answer_now(qs)
         eng.add_answers(answers, now)
         if twin is not None:
             assert twin.plan(now) == qs
             twin.add_answers(answers, now)
+        out, moved = eng.take_update_columns(extra=40)
+        left = eng.unpublished()
+        flagged = eng.items.view("dirty").nonzero()[0]
+        assert len(flagged) == left and not set(flagged) & set(out.at.tolist())
+        if before is not None and len(waves) == refits:  # no new wave this round
+            assert left <= max(0, before - 40)
+        for pos, i in enumerate(out.at.tolist()):  # each record as it stands now
+            assert out.rows([pos])[0] == eng.record(crowd.keys[i])
+        handed.update(out.at.tolist())
+        if twin is not None:
+            got, got_moved = twin.take_update_columns(extra=40)
+            assert got.at.tolist() == out.at.tolist() and got_moved == moved
+        elif rnd == 32:
+            assert left > 1000  # restored with the wave still going out
+            twin = Engine.restore(eng.snapshot())
         now += 1000
-    assert eng.done() and not eng.unpublished()
+    assert eng.done() and not eng.unpublished() and twin is not None
+    # every refit's look marked its changes as left over (the first look: the bootstrap's
+    # end, whose records go out at once)
+    assert len(waves) > 1 and not waves[0] and all(waves[1:])
     assert handed == set(range(len(crowd.keys)))
     assert not eng.items.view("dirty").any()
 

@@ -130,6 +130,12 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         # _dirty_count of them in all
         self._dirty_marks: list[np.ndarray] = []
         self._dirty_count = 0
+        # records left over for later takes (take_update_columns with ``extra``): those a
+        # take left (``_backlog``: sorted, distinct) and those marked while the engine
+        # looks at every item after a refit (``_later``: a wave, published a few at a time)
+        self._backlog = np.zeros(0, dtype=np.int64)
+        self._later: list[np.ndarray] = []
+        self._marking_later = False
         self.q = Columns(_Q_FIELDS, 64)
         self.q_low = 0  # every qid below this is answered or expired
         self.keys = KeyIndex(cache_size_for(self.config.max_outstanding))
@@ -202,19 +208,32 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         cols, moved = self.take_update_columns()
         return cols.rows(), cols.rows(moved)
 
-    def take_update_columns(self, limit: int = 0) -> tuple[RecordColumns, list[int]]:
+    def take_update_columns(self, extra: int | None = None
+                            ) -> tuple[RecordColumns, list[int]]:
         """:meth:`take_updates` as columns: (changed records, positions of the decisions).
 
-        ``limit`` > 0 takes at most that many records, those of the lowest item numbers;
-        the others stay for the next calls (:meth:`unpublished`). Which ones are taken
-        depends only on the set of changed items, which a snapshot keeps, so a replay
-        takes the same ones."""
+        ``extra`` (a number): every record changed since the last call, except those of a
+        refit's wave, plus at most ``extra`` of the records left over (the wave's, and
+        what earlier calls left), lowest item numbers first; the others stay for the next
+        calls (:meth:`unpublished`). What is left over after a call is exactly the set of
+        changed items, which a snapshot keeps, so a replay takes the same records."""
         it = self.items
-        marks, self._dirty_marks, self._dirty_count = self._dirty_marks, [], 0
+        marks, self._dirty_marks = self._dirty_marks, []
+        later, self._later = self._later, []
         dirty = uniq(np.concatenate(marks)) if marks else np.zeros(0, dtype=np.int64)
-        if 0 < limit < len(dirty):
-            dirty, rest = dirty[:limit], dirty[limit:]
-            self._dirty_marks, self._dirty_count = [rest], len(rest)
+        left = self._backlog
+        if later:
+            left = uniq(np.concatenate([left, *later]))
+        if extra is None:
+            dirty = uniq(np.concatenate([dirty, left])) if len(left) else dirty
+            self._backlog = np.zeros(0, dtype=np.int64)
+        else:
+            if len(left) and len(dirty):
+                left = left[~np.isin(left, dirty, assume_unique=True)]
+            self._backlog = left[extra:]
+            if len(left):
+                dirty = np.union1d(dirty, left[:extra])
+        self._dirty_count = len(self._backlog)
         out = self._record_columns(dirty)
         side, status = out.side, out.status
         seen = it["shown_status"][dirty]
@@ -428,7 +447,12 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         if self.phase == "run":
             if self._counted() >= max(REFIT_MIN, self.counted_at_fit * (1 + REFIT_GROWTH)):
                 self._refit(current=True)
-                self._decide(np.arange(len(self.keys)), ordered=True)
+                # the wave of records this may change waits among those left over
+                self._marking_later = True
+                try:
+                    self._decide(np.arange(len(self.keys)), ordered=True)
+                finally:
+                    self._marking_later = False
             else:
                 self._decide(targets)
         return fresh
@@ -440,7 +464,7 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         """Items whose record must be published again (by take_update_columns)."""
         self.items["dirty"][idx] = True
         idx = np.asarray(idx, dtype=np.int64)
-        self._dirty_marks.append(idx)
+        (self._later if self._marking_later else self._dirty_marks).append(idx)
         self._dirty_count += len(idx)
         if self._dirty_count > max(len(self.keys), self.dirty_marks_floor):
             # nobody took the updates for a while (tools, benchmarks): the marks are
@@ -448,9 +472,28 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
             self._reset_dirty_marks()
 
     def _reset_dirty_marks(self) -> None:
-        """The marks as the flags give them (after a restore, or when they grew large)."""
+        """The marks folded into sets when they grew large (nobody took the updates for a
+        while): what is left over stays so, the rest are the flags that remain."""
         flagged = self.items.view("dirty").nonzero()[0]
-        self._dirty_marks, self._dirty_count = [flagged], len(flagged)
+        left = uniq(np.concatenate([self._backlog, *self._later]))
+        self._later = [left] if len(left) else []
+        self._backlog = np.zeros(0, dtype=np.int64)
+        fresh = flagged[~np.isin(flagged, left, assume_unique=True)] if len(left) else flagged
+        self._dirty_marks, self._dirty_count = [fresh], len(flagged)
+
+    def left_over(self) -> np.ndarray:
+        """The records left over for later takes (sorted item numbers), for a snapshot."""
+        return uniq(np.concatenate([self._backlog, *self._later]))
+
+    def _restore_dirty(self, left: np.ndarray | None) -> None:
+        """After a restore: the flagged records, those in ``left`` left over (a snapshot
+        without it, written before there were any, holds none)."""
+        flagged = self.items.view("dirty").nonzero()[0].astype(np.int64)
+        self._backlog = np.zeros(0, dtype=np.int64) if left is None else left
+        self._later = []
+        fresh = (flagged[~np.isin(flagged, self._backlog, assume_unique=True)]
+                 if len(self._backlog) else flagged)
+        self._dirty_marks, self._dirty_count = [fresh], len(flagged)
 
     def _touch(self, idx: np.ndarray) -> None:
         """Waiting items that are asked about, or answered, are asking now."""

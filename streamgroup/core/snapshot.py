@@ -51,6 +51,7 @@ def capture(self: Engine) -> dict[str, Any]:
         "block_state": self.block_state.tobytes(),
         "counters": [self.counted_at_fit, *self.issued, self.spend, self.duplicates,
                      self.revisions, self.outstanding, self.now_ms, self.q_low, self.pool_base],
+        "left": self.left_over().tobytes(),  # records left over (take_update_columns)
         "ledger": self.ledger.to_state(),
         "items": self.items.to_state(),
         "q": self.q.to_state(),
@@ -103,7 +104,8 @@ def load(cls: type[Engine], data: bytes) -> Engine:
         eng.issued = [s0, s1, s2]
         eng.ledger = Ledger.from_state(st["ledger"])
         eng.items.load_state(st["items"])
-        eng._reset_dirty_marks()
+        left = st.get("left")
+        eng._restore_dirty(None if left is None else np.frombuffer(left, dtype=np.int64).copy())
         eng.q.load_state(st["q"])
         carry, eng.cursor = st["work"]
         eng.carry = SortedQueue(np.frombuffer(carry, dtype=np.int64))

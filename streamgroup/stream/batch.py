@@ -196,24 +196,20 @@ def _decoded(out: Outcome, kind: str, stream: str, entries: list[Entry], dec: De
     return dec
 
 
-# Records a batch publishes beyond what its own input can change. After the sources are
-# re-learnt, the engine looks at every item again and may decide thousands at once (8,700
-# decisions in one batch of a plain drain over 200,000 items, whose transaction held
-# Redis for 39 ms while lookups waited); with this bound such a wave goes out about a
-# thousand records a batch instead (plain batches), a fraction of a second late.
-PUBLISH_EXTRA = 256
+# Records left over that a batch publishes beside every record its own input changed, at
+# the least. After the sources are re-learnt, the engine looks at every item again and may
+# decide thousands at once (8,700 decisions in one batch of a plain drain over 200,000
+# items, whose transaction held Redis for 39 ms while lookups waited); such a wave is left
+# over and goes out a little with each batch, a fraction of a second late.
+PUBLISH_EXTRA = 64
 
 
-def publish_limit(answers: int, items: int, questions: int) -> int:
-    """The most records a batch publishes: every record its own input can change (an
-    answer changes those of its two items at most, a question those of its two, an item
-    its own), plus ``PUBLISH_EXTRA`` left over from earlier batches. The records left over
-    are a set of items, and each batch takes at least ``PUBLISH_EXTRA`` more than its own
-    input can add to it, so once a wave is over the set shrinks by that much a batch at
-    least: no record waits for long, however the items are numbered. (A run-phase batch
-    changes about 1.1 records a question or answer, whichever are more: the rest of the
-    bound goes to what earlier batches left.)"""
-    return PUBLISH_EXTRA + 2 * (answers + questions) + items
+def publish_extra(answers: int, items: int, questions: int) -> int:
+    """How many records left over a batch publishes besides its own: ``PUBLISH_EXTRA``
+    and a quarter as many again as its answers, questions and items (so that a wave
+    costs a transaction about a quarter more, whatever the size of the batches: a few
+    hundred records a plain batch, thousands a packed one)."""
+    return PUBLISH_EXTRA + (answers + questions + items) // 4
 
 
 def process(state: WorkerState, items_stream: str, items: list[Entry],
@@ -235,8 +231,8 @@ def process(state: WorkerState, items_stream: str, items: list[Entry],
         if len(got):
             _apply_answers(state, got, da.aids, da.origins, answers_stream, now_ms, out)
     out.questions = state.engine.plan_columns(now_ms)
-    out.batch.publish = publish_limit(answered, added, len(out.questions))
-    out.records, moved = state.engine.take_update_columns(out.batch.publish)
+    out.batch.extra = publish_extra(answered, added, len(out.questions))
+    out.records, moved = state.engine.take_update_columns(out.batch.extra)
     for k in [k for k, v in counts.items() if not v]:
         del counts[k]
     out.batch.counts = counts

@@ -101,13 +101,13 @@ class Batch:
     ops: list[list[Any]] = field(default_factory=list)  # [[op, payload], ...]
     aids: list[str] = field(default_factory=list)
     counts: Counter[str] = field(default_factory=Counter)
-    publish: int = 0  # records the batch published at most (0: every changed one)
+    extra: int | None = None  # records left over it published besides its own (None: all)
 
     def journal_bytes(self) -> bytes:
         data = msgpack.packb(
             {"v": JOURNAL_VERSION, "s": self.seq, "t": self.now_ms, "ops": self.ops,
              "aids": self.aids, "c": dict(self.counts),
-             **({"p": self.publish} if self.publish else {})},
+             **({"e": self.extra} if self.extra is not None else {})},
             use_bin_type=True,
         )
         return data if len(data) < JOURNAL_COMPRESS_FROM else _JOURNAL_ZSTD.compress(data)
@@ -123,8 +123,9 @@ class Batch:
         if m.get("v") != JOURNAL_VERSION:
             raise StateError(f"journal entry has version {m.get('v')!r}; "
                              f"this worker reads version {JOURNAL_VERSION}")
+        extra = m.get("e")
         return Batch(int(m["s"]), int(m["t"]), m["ops"], m["aids"], Counter(m["c"]),
-                     int(m.get("p", 0)))
+                     None if extra is None else int(extra))
 
 
 def answers_payload(answers: Sequence[Answer]) -> list[list[Any]]:
@@ -248,7 +249,7 @@ class WorkerState:
                 raise StateError(f"journal entry {batch.seq} does not apply to the state "
                                  f"before it (op {op!r}: {exc})") from None
         self.engine.plan_columns(batch.now_ms)
-        self.engine.take_update_columns(batch.publish)  # the same records as it published
+        self.engine.take_update_columns(batch.extra)  # the same records as it published
         self.finish(batch)
 
     def _replay_op(self, op: str, payload: Any, now_ms: int) -> None:
