@@ -474,12 +474,10 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
     def _reset_dirty_marks(self) -> None:
         """The marks folded into sets when they grew large (nobody took the updates for a
         while): what is left over stays so, the rest are the flags that remain."""
-        flagged = self.items.view("dirty").nonzero()[0]
-        left = uniq(np.concatenate([self._backlog, *self._later]))
+        left = self.left_over()
         self._later = [left] if len(left) else []
         self._backlog = np.zeros(0, dtype=np.int64)
-        fresh = flagged[~np.isin(flagged, left, assume_unique=True)] if len(left) else flagged
-        self._dirty_marks, self._dirty_count = [fresh], len(flagged)
+        self._mark_flagged_but(left)
 
     def left_over(self) -> np.ndarray:
         """The records left over for later takes (sorted item numbers), for a snapshot."""
@@ -488,11 +486,14 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
     def _restore_dirty(self, left: np.ndarray | None) -> None:
         """After a restore: the flagged records, those in ``left`` left over (a snapshot
         without it, written before there were any, holds none)."""
-        flagged = self.items.view("dirty").nonzero()[0].astype(np.int64)
         self._backlog = np.zeros(0, dtype=np.int64) if left is None else left
         self._later = []
-        fresh = (flagged[~np.isin(flagged, self._backlog, assume_unique=True)]
-                 if len(self._backlog) else flagged)
+        self._mark_flagged_but(self._backlog)
+
+    def _mark_flagged_but(self, left: np.ndarray) -> None:
+        """The marks: every flagged item that is not left over (``left``, sorted)."""
+        flagged = self.items.view("dirty").nonzero()[0].astype(np.int64)
+        fresh = flagged[~np.isin(flagged, left, assume_unique=True)] if len(left) else flagged
         self._dirty_marks, self._dirty_count = [fresh], len(flagged)
 
     def _touch(self, idx: np.ndarray) -> None:
