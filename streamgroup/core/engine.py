@@ -219,20 +219,14 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
         changed items, which a snapshot keeps, so a replay takes the same records."""
         it = self.items
         marks, self._dirty_marks = self._dirty_marks, []
-        later, self._later = self._later, []
         dirty = uniq(np.concatenate(marks)) if marks else np.zeros(0, dtype=np.int64)
-        left = self._backlog
-        if later:
-            left = uniq(np.concatenate([left, *later]))
-        if extra is None:
-            dirty = uniq(np.concatenate([dirty, left])) if len(left) else dirty
-            self._backlog = np.zeros(0, dtype=np.int64)
-        else:
-            if len(left) and len(dirty):
-                left = left[~np.isin(left, dirty, assume_unique=True)]
-            self._backlog = left[extra:]
-            if len(left):
-                dirty = np.union1d(dirty, left[:extra])
+        left, self._later = self.left_over(), []
+        if len(left) and len(dirty):
+            left = left[~np.isin(left, dirty, assume_unique=True)]
+        cut = len(left) if extra is None else extra
+        self._backlog = left[cut:]
+        if cut and len(left):
+            dirty = np.union1d(dirty, left[:cut])
         self._dirty_count = len(self._backlog)
         out = self._record_columns(dirty)
         side, status = out.side, out.status
@@ -481,6 +475,8 @@ class Engine(IntakeMixin, DecideMixin, BlockMixin, QuestionsMixin):
 
     def left_over(self) -> np.ndarray:
         """The records left over for later takes (sorted item numbers), for a snapshot."""
+        if not self._later:
+            return self._backlog
         return uniq(np.concatenate([self._backlog, *self._later]))
 
     def _restore_dirty(self, left: np.ndarray | None) -> None:
