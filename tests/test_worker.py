@@ -278,15 +278,10 @@ def test_restart_resumes_exactly_from_snapshot_and_journal(redis_url: str) -> No
     w2.close()
 
 
-def test_a_wave_of_changed_records_goes_out_over_several_batches(redis_url: str,
-                                                                monkeypatch) -> None:
-    """The records a refit's look at every item changes (a wave: thousands in service)
-    go out a few with each batch after, in empty batches when no input comes, and across
-    a restart that replays the journal (which must take the same records as the batches
-    published): in the end every item's record in {NS}:assign is the engine's. Here each
-    refit's look marks every item, and a batch publishes 7 records left over."""
+def _every_refit_a_wave(monkeypatch) -> None:
+    """Each refit's look at every item changes every record, and a batch publishes 7 of
+    the records left over (in service a wave is thousands of records)."""
     from streamgroup.core.engine import Engine
-    from streamgroup.stream.commit import assign_value
 
     monkeypatch.setattr(batch_mod, "publish_extra", lambda answers, items, questions: 7)
     real_decide = Engine._decide
@@ -297,6 +292,27 @@ def test_a_wave_of_changed_records_goes_out_over_several_batches(redis_url: str,
             self._mark_dirty(np.arange(len(self.keys)))
 
     monkeypatch.setattr(Engine, "_decide", decide)
+
+
+def _records_are_the_engines(r: redis.Redis, w: Worker, keys: list[str]) -> None:
+    from streamgroup.stream.commit import assign_value
+
+    stored = r.hgetall(K.assign)
+    assert len(stored) == len(keys)
+    for k in keys:  # (llr as it was at the record's last change: a refit that moves every
+        # item's evidence a little does not republish every record)
+        got, want = msgpack.unpackb(stored[k.encode()]), msgpack.unpackb(
+            assign_value(w.state.engine.record(k)))
+        assert {**got, "llr": 0} == {**want, "llr": 0}, (k, got, want)
+
+
+def test_a_wave_of_changed_records_goes_out_over_several_batches(redis_url: str,
+                                                                monkeypatch) -> None:
+    """The records a refit's look at every item changes go out a few with each batch
+    after, and across a restart that replays the journal (which must take the same records
+    as the batches published): in the end every item's record in {NS}:assign is the
+    engine's."""
+    _every_refit_a_wave(monkeypatch)
     r = redis.Redis.from_url(redis_url)
     crowd = Crowd(120, delta=0.6, sources=[0.6] * 10, seed=8)
     push_items(r, crowd.keys)
@@ -328,16 +344,39 @@ def test_a_wave_of_changed_records_goes_out_over_several_batches(redis_url: str,
                 and not wk.state.engine.unpublished() and wk._held is None)
 
     assert w2.run_until(all_out, 60)
-    eng = w2.state.engine
-    stored = r.hgetall(K.assign)
-    assert len(stored) == len(crowd.keys)
-    for k in crowd.keys:  # (llr as it was at the record's last change: a refit that
-        # moves every item's evidence a little does not republish every record)
-        got, want = msgpack.unpackb(stored[k.encode()]), msgpack.unpackb(
-            assign_value(eng.record(k)))
-        assert {**got, "llr": 0} == {**want, "llr": 0}, (k, got, want)
+    _records_are_the_engines(r, w2, crowd.keys)
     assert left["most"] > 30  # a wave was left over (the checks above are not vacuous)
     w2.close()
+
+
+def test_records_left_over_go_out_when_no_input_comes(redis_url: str, monkeypatch) -> None:
+    """A wave left over when the answers stop is published by empty batches of the worker's
+    own: with no input, no question to plan and no restart, every record reaches
+    {NS}:assign within a few turns, and none of those turns reads an entry."""
+    _every_refit_a_wave(monkeypatch)
+    r = redis.Redis.from_url(redis_url)
+    crowd = Crowd(120, delta=0.6, sources=[0.6] * 10, seed=8)
+    push_items(r, crowd.keys)
+    adapter = SimAdapter(r, NS, crowd)
+    w = Worker(settings(redis_url, batch=50, block_ms=1000))
+
+    def mid_wave(wk: Worker) -> bool:
+        adapter.step()
+        return wk.state is not None and wk.state.engine.unpublished() > 30
+
+    assert w.run_until(mid_wave, 30)  # the answers stop here: the adapter is not stepped
+    monkeypatch.setattr(Worker, "_worth_planning", lambda self: False)  # no planning turns
+    while w.step():  # the answers already on the stream
+        pass
+    w._flush()  # nothing in flight: the next read decides alone whether to wait for input
+    left, read, t0 = w.state.engine.unpublished(), 0, time.monotonic()
+    assert left > 14  # still a wave to publish (the checks below are not vacuous)
+    while (w.state.engine.unpublished() or w._held is not None) and time.monotonic() - t0 < 10:
+        read += w.step()
+    assert read == 0 and w.state.engine.unpublished() == 0 and w._held is None
+    assert time.monotonic() - t0 < 0.5  # all the shares in less than one block time
+    _records_are_the_engines(r, w, crowd.keys)
+    w.close()
 
 
 def test_a_restart_counts_the_stored_journal_and_snapshot_against_the_journal_bound(
