@@ -279,9 +279,10 @@ def test_restart_resumes_exactly_from_snapshot_and_journal(redis_url: str) -> No
     w2.close()
 
 
-def _every_refit_a_wave(monkeypatch) -> None:
-    """Each refit's look at every item changes every record, and a batch publishes 7 of
-    the records left over (in service a wave is thousands of records)."""
+def _wave_scene(redis_url: str, monkeypatch) -> tuple[redis.Redis, Crowd, SimAdapter]:
+    """120 items pushed and a crowd adapter, where each refit's look at every item changes
+    every record and a batch publishes 7 of the records left over (in service a wave is
+    thousands of records)."""
     from streamgroup.core.engine import Engine
 
     monkeypatch.setattr(batch_mod, "publish_extra", lambda answers, items, questions: 7)
@@ -293,6 +294,10 @@ def _every_refit_a_wave(monkeypatch) -> None:
             self._mark_dirty(np.arange(len(self.keys)))
 
     monkeypatch.setattr(Engine, "_decide", decide)
+    r = redis.Redis.from_url(redis_url)
+    crowd = Crowd(120, delta=0.6, sources=[0.6] * 10, seed=8)
+    push_items(r, crowd.keys)
+    return r, crowd, SimAdapter(r, NS, crowd)
 
 
 def _records_are_the_engines(r: redis.Redis, w: Worker, keys: list[str]) -> None:
@@ -313,11 +318,7 @@ def test_a_wave_of_changed_records_goes_out_over_several_batches(redis_url: str,
     after, and across a restart that replays the journal (which must take the same records
     as the batches published): in the end every item's record in {NS}:assign is the
     engine's."""
-    _every_refit_a_wave(monkeypatch)
-    r = redis.Redis.from_url(redis_url)
-    crowd = Crowd(120, delta=0.6, sources=[0.6] * 10, seed=8)
-    push_items(r, crowd.keys)
-    adapter = SimAdapter(r, NS, crowd)
+    r, crowd, adapter = _wave_scene(redis_url, monkeypatch)
     slow_snapshots = dict(batch=50, snapshot_every=60)  # a restart replays the journal
     w = Worker(settings(redis_url, **slow_snapshots))
     left = {"most": 0}
@@ -354,11 +355,7 @@ def test_records_left_over_go_out_when_no_input_comes(redis_url: str, monkeypatc
     """A wave left over when the answers stop is published by empty batches of the worker's
     own: with no input, no question to plan and no restart, every record reaches
     {NS}:assign within a few turns, and none of those turns reads an entry."""
-    _every_refit_a_wave(monkeypatch)
-    r = redis.Redis.from_url(redis_url)
-    crowd = Crowd(120, delta=0.6, sources=[0.6] * 10, seed=8)
-    push_items(r, crowd.keys)
-    adapter = SimAdapter(r, NS, crowd)
+    r, crowd, adapter = _wave_scene(redis_url, monkeypatch)
     w = Worker(settings(redis_url, batch=50))
 
     def mid_wave(wk: Worker) -> bool:
